@@ -1,0 +1,30 @@
+module github.com/plenum-engine/plenum
+
+go 1.26.8
+
+require (
+	github.com/creack/pty v1.1.24
+	github.com/eclipse/paho.mqtt.golang v1.5.1
+	github.com/influxdata/line-protocol/v2 v2.2.1
+	github.com/mochi-mqtt/server/v2 v2.7.9
+	github.com/prometheus/client_golang v1.25.0
+	github.com/prometheus/common v0.73.1
+	go.bug.st/serial v1.8.0
+	go.yaml.in/yaml/v3 v3.0.6
+	golang.org/x/sys v0.50.0
+	pgregory.net/rapid v1.3.0
+)
+
+require (
+	github.com/beorn7/perks v1.0.1 // indirect
+	github.com/cespare/xxhash/v2 v2.3.0 // indirect
+	github.com/gorilla/websocket v1.5.3 // indirect
+	github.com/munnerz/goautoneg v0.0.0-20191010083416-a7dc8b61c822 // indirect
+	github.com/pandatix/go-abnf v0.5.3 // indirect
+	github.com/prometheus/client_model v0.6.3 // indirect
+	github.com/prometheus/procfs v0.22.0 // indirect
+	github.com/rs/xid v1.4.0 // indirect
+	golang.org/x/net v0.61.0 // indirect
+	golang.org/x/sync v0.22.0 // indirect
+	google.golang.org/protobuf v1.36.12 // indirect
+)
