@@ -1,0 +1,224 @@
+package pipeline
+
+import (
+	"context"
+	"math"
+	"sync/atomic"
+	"time"
+)
+
+// Pipeline is the core: drivers Put samples (fan-in), one ingest goroutine
+// validates them, stores them, runs the dependent derivations and fans out
+// every accepted and derived sample to the subscriptions.
+type Pipeline struct {
+	reg    *Registry
+	store  *Store
+	graph  *Graph
+	chans  []Channel
+	in     chan Sample
+	evIn   chan Event
+	fan    fanout
+	done   chan struct{}
+	health *HealthSet
+
+	accepted  atomic.Uint64
+	flagged   atomic.Uint64
+	derived   atomic.Uint64
+	rejected  atomic.Uint64
+	inDropped atomic.Uint64
+}
+
+// Options tune a pipeline.
+type Options struct {
+	// QueueSize bounds the fan-in queue between drivers and the ingest loop.
+	QueueSize int
+}
+
+// New builds a pipeline over reg with the derivation graph g (which may be nil).
+// All channels, including derived ones, must be registered before New.
+func New(reg *Registry, g *Graph, opt Options) *Pipeline {
+	if opt.QueueSize <= 0 {
+		opt.QueueSize = 8192
+	}
+	if g == nil {
+		g = &Graph{}
+	}
+	return &Pipeline{
+		reg:    reg,
+		store:  NewStore(reg.Len()),
+		graph:  g,
+		chans:  reg.Channels(),
+		in:     make(chan Sample, opt.QueueSize),
+		evIn:   make(chan Event, 256),
+		done:   make(chan struct{}),
+		health: NewHealthSet(),
+	}
+}
+
+// Registry returns the pipeline's channel registry.
+func (p *Pipeline) Registry() *Registry { return p.reg }
+
+// Store returns the latest-value store.
+func (p *Pipeline) Store() *Store { return p.store }
+
+// Health returns the per-source health set.
+func (p *Pipeline) Health() *HealthSet { return p.health }
+
+// Subscribe adds a consumer with a queue of size samples. Subscribe before Run
+// to see every sample from the start.
+func (p *Pipeline) Subscribe(name string, size int) *Subscription {
+	return p.fan.subscribe(name, size)
+}
+
+// Subscriptions lists the consumers, for drop counters.
+func (p *Pipeline) Subscriptions() []*Subscription { return p.fan.list() }
+
+// Put hands a sample to the pipeline. It blocks only while the fan-in queue is
+// full, and returns false once the pipeline has stopped.
+func (p *Pipeline) Put(s Sample) bool {
+	select {
+	case <-p.done:
+		p.inDropped.Add(1)
+		return false
+	default:
+	}
+	select {
+	case p.in <- s:
+		return true
+	case <-p.done:
+		p.inDropped.Add(1)
+		return false
+	}
+}
+
+// Emit hands an event to the pipeline for fan-out.
+func (p *Pipeline) Emit(e Event) {
+	select {
+	case p.evIn <- e:
+	case <-p.done:
+	}
+}
+
+// Counters is a snapshot of the pipeline's own counters.
+type Counters struct {
+	Accepted, Flagged, Derived, Rejected, DroppedAfterStop uint64
+}
+
+// Counters returns the pipeline's counters.
+func (p *Pipeline) Counters() Counters {
+	return Counters{
+		Accepted:         p.accepted.Load(),
+		Flagged:          p.flagged.Load(),
+		Derived:          p.derived.Load(),
+		Rejected:         p.rejected.Load(),
+		DroppedAfterStop: p.inDropped.Load(),
+	}
+}
+
+// Run is the ingest loop. It returns when ctx is done, after processing what
+// was already queued, and closes the pipeline for further Puts.
+func (p *Pipeline) Run(ctx context.Context) error {
+	defer close(p.done)
+	for {
+		select {
+		case s := <-p.in:
+			p.Process(s)
+		case e := <-p.evIn:
+			p.fan.event(e)
+		case <-ctx.Done():
+			for {
+				select {
+				case s := <-p.in:
+					p.Process(s)
+				case e := <-p.evIn:
+					p.fan.event(e)
+				default:
+					return nil
+				}
+			}
+		}
+	}
+}
+
+// Process runs one sample through validation, the store, the derivations and
+// the fan-out synchronously. Run calls it for every queued sample; replay and
+// benchmarks may call it directly from a single goroutine.
+func (p *Pipeline) Process(s Sample) {
+	if int(s.Channel) >= len(p.chans) {
+		p.rejected.Add(1)
+		return
+	}
+	c := &p.chans[s.Channel]
+	if s.Quality == OK {
+		if math.IsNaN(s.Value) || math.IsInf(s.Value, 0) {
+			s.Quality = SensorFault
+		} else if (c.Min != 0 || c.Max != 0) && (s.Value < c.Min || s.Value > c.Max) {
+			s.Quality = OutOfRange
+		}
+	}
+	if s.Quality != OK {
+		p.flagged.Add(1)
+	}
+	p.accepted.Add(1)
+	p.store.Set(s)
+	p.fan.sample(s)
+	if int(s.Channel) < len(p.graph.dependents) {
+		for _, n := range p.graph.dependents[s.Channel] {
+			p.evaluate(n, s.Time)
+		}
+	}
+}
+
+func (p *Pipeline) evaluate(n *node, t time.Time) {
+	for i, id := range n.in {
+		if id == noChannel {
+			n.inBuf[i] = math.NaN()
+			continue
+		}
+		v := p.store.Get(id)
+		if !v.Set || !v.Quality.Usable() || t.Sub(v.Time) > n.inAge[i] {
+			if n.inOpt[i] {
+				n.inBuf[i] = math.NaN()
+				continue
+			}
+			// A required input is missing, stale or faulty: no value, and the
+			// previous outputs must not be taken as current downstream.
+			for _, o := range n.out {
+				p.store.MarkStale(o)
+			}
+			return
+		}
+		n.inBuf[i] = v.Value
+	}
+	written := n.d.Derive(t, n.inBuf, n.outBuf)
+	for i, id := range n.out {
+		if written&(1<<uint(i)) == 0 {
+			continue
+		}
+		v := n.outBuf[i]
+		q := OK
+		if math.IsNaN(v) || math.IsInf(v, 0) {
+			continue
+		}
+		ds := Sample{Channel: id, Quality: q, Time: t, Value: v}
+		p.derived.Add(1)
+		p.store.Set(ds)
+		p.fan.sample(ds)
+	}
+}
+
+// EventSink is implemented by derivations that emit events; the pipeline hands
+// them an emitter before Run. The emitter must only be called from Derive.
+type EventSink interface {
+	SetEmitter(func(Event))
+}
+
+// BindEmitters gives every derivation of g that is an EventSink a function that
+// fans its events out synchronously from the ingest goroutine.
+func (p *Pipeline) BindEmitters() {
+	for _, n := range p.graph.nodes {
+		if es, ok := n.d.(EventSink); ok {
+			es.SetEmitter(p.fan.event)
+		}
+	}
+}
