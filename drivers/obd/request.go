@@ -16,11 +16,11 @@ type service uint8
 
 // The read services, and nothing else.
 const (
-	svcCurrentData    service = 0x01 // SAE J1979 service 01: current powertrain data
-	svcFreezeFrame    service = 0x02 // SAE J1979 service 02: freeze frame data
-	svcStoredDTCs     service = 0x03 // SAE J1979 service 03: confirmed emission DTCs
-	svcPendingDTCs    service = 0x07 // SAE J1979 service 07: pending emission DTCs
-	svcVehicleInfo    service = 0x09 // SAE J1979 service 09: vehicle information
+	svcCurrentData     service = 0x01 // SAE J1979 service 01: current powertrain data
+	svcFreezeFrame     service = 0x02 // SAE J1979 service 02: freeze frame data
+	svcStoredDTCs      service = 0x03 // SAE J1979 service 03: confirmed emission DTCs
+	svcPendingDTCs     service = 0x07 // SAE J1979 service 07: pending emission DTCs
+	svcVehicleInfo     service = 0x09 // SAE J1979 service 09: vehicle information
 	svcReadDataByIdent service = 0x22 // ISO 14229-1 service 22: ReadDataByIdentifier
 )
 
