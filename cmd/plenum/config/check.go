@@ -1,0 +1,287 @@
+package config
+
+import (
+	"fmt"
+	"net"
+	"net/url"
+	"sort"
+	"strconv"
+	"strings"
+
+	"go.yaml.in/yaml/v3"
+
+	"github.com/plenum-engine/plenum/pipeline"
+)
+
+// Fuels are the fuel names the config accepts.
+var fuelNames = []string{"gasoline", "diesel", "e85", "e100", "methanol", "lpg", "cng"}
+
+// lineOf finds the line of the node at path (map keys and sequence indexes)
+// below root, or of the deepest node found on the way.
+func lineOf(root *yaml.Node, path ...any) int {
+	n := root
+	if n.Kind == yaml.DocumentNode && len(n.Content) > 0 {
+		n = n.Content[0]
+	}
+	line := n.Line
+	for _, p := range path {
+		switch k := p.(type) {
+		case string:
+			if n.Kind != yaml.MappingNode {
+				return line
+			}
+			found := false
+			for i := 0; i+1 < len(n.Content); i += 2 {
+				if n.Content[i].Value == k {
+					line = n.Content[i].Line
+					n = n.Content[i+1]
+					found = true
+					break
+				}
+			}
+			if !found {
+				return line
+			}
+		case int:
+			if n.Kind != yaml.SequenceNode || k >= len(n.Content) {
+				return line
+			}
+			n = n.Content[k]
+			line = n.Line
+		}
+	}
+	return line
+}
+
+func fieldName(path []any) string {
+	var b strings.Builder
+	for _, p := range path {
+		switch k := p.(type) {
+		case string:
+			if b.Len() > 0 {
+				b.WriteByte('.')
+			}
+			b.WriteString(k)
+		case int:
+			b.WriteString("[" + strconv.Itoa(k) + "]")
+		}
+	}
+	return b.String()
+}
+
+type checker struct {
+	file string
+	root *yaml.Node
+	errs Errors
+}
+
+func (c *checker) fail(msg string, path ...any) {
+	c.errs = append(c.errs, &Error{File: c.file, Line: lineOf(c.root, path...), Field: fieldName(path), Msg: msg})
+}
+
+func (cfg *Config) check(file string, root *yaml.Node) Errors {
+	c := &checker{file: file, root: root}
+	if cfg.Vehicle == "" {
+		c.fail("must name the vehicle or cell (a topic segment, e.g. brackenfell-rs)", "vehicle")
+	} else if strings.ContainsAny(cfg.Vehicle, "/+# ") {
+		c.fail("must not contain '/', '+', '#' or spaces", "vehicle")
+	}
+	e := cfg.Engine
+	if e.DisplacementL <= 0 || e.DisplacementL > 20 {
+		c.fail("must be between 0 and 20 litres", "engine", "displacement_l")
+	}
+	if !contains(fuelNames, e.Fuel) {
+		c.fail(fmt.Sprintf("unknown fuel %q (one of %s)", e.Fuel, strings.Join(fuelNames, ", ")), "engine", "fuel")
+	}
+	if e.VETable == nil && (e.VE <= 0 || e.VE > 1.6) {
+		c.fail("needs a volumetric_efficiency in (0, 1.6] or a ve_table", "engine", "volumetric_efficiency")
+	}
+	if t := e.VETable; t != nil {
+		checkAxis(c, t.SpeedsRPM, "engine", "ve_table", "engine_speeds_rpm")
+		checkAxis(c, t.PressuresKPa, "engine", "ve_table", "manifold_pressures_kpa")
+		if len(t.Values) != len(t.SpeedsRPM) {
+			c.fail(fmt.Sprintf("has %d rows, want one per engine speed (%d)", len(t.Values), len(t.SpeedsRPM)), "engine", "ve_table", "values")
+		}
+		for i, row := range t.Values {
+			if len(row) != len(t.PressuresKPa) {
+				c.fail(fmt.Sprintf("has %d values, want one per pressure (%d)", len(row), len(t.PressuresKPa)), "engine", "ve_table", "values", i)
+			}
+			for _, v := range row {
+				if v <= 0 || v > 1.6 {
+					c.fail(fmt.Sprintf("value %g outside (0, 1.6]", v), "engine", "ve_table", "values", i)
+					break
+				}
+			}
+		}
+	}
+	if e.BaroKPa < 50 || e.BaroKPa > 110 {
+		c.fail("must be between 50 and 110 kPa", "engine", "baro_kpa")
+	}
+	if w := e.Wideband; w != (Wideband{}) {
+		if w.VoltsHigh <= w.VoltsLow || w.LambdaHigh <= w.LambdaLow || w.LambdaLow <= 0 {
+			c.fail("needs volts_low < volts_high and 0 < lambda_low < lambda_high", "engine", "wideband")
+		}
+	}
+	names := map[string]bool{}
+	for i, s := range cfg.Serial {
+		if s.Name == "" {
+			c.fail("every serial source needs a name", "serial", i, "name")
+		} else if names[s.Name] {
+			c.fail(fmt.Sprintf("source name %q used twice", s.Name), "serial", i, "name")
+		}
+		names[s.Name] = true
+		if s.Device == "" && cfg.Sim == nil {
+			c.fail("needs a device path (prefer /dev/serial/by-id/...)", "serial", i, "device")
+		}
+		if s.Format != "framed" && s.Format != "delimited" {
+			c.fail(`must be "framed" or "delimited"`, "serial", i, "format")
+		}
+		if s.Format == "delimited" && s.Delimiter != "" && s.Delimiter != "," && s.Delimiter != "tab" && s.Delimiter != "space" && s.Delimiter != ";" {
+			c.fail(`must be ",", ";", "tab" or "space"`, "serial", i, "delimiter")
+		}
+		if s.ADCBits < 8 || s.ADCBits > 24 {
+			c.fail("must be between 8 and 24", "serial", i, "adc_bits")
+		}
+		if s.Baud <= 0 {
+			c.fail("must be positive", "serial", i, "baud")
+		}
+		fields := map[string]bool{}
+		for j, in := range s.Inputs {
+			p := []any{"serial", i, "inputs", j}
+			if _, ok := pipeline.Standard(in.Channel); !ok {
+				c.fail(fmt.Sprintf("unknown channel %q (one of %s)", in.Channel, strings.Join(pipeline.StandardNames(), ", ")), append(p, "channel")...)
+			}
+			key := in.Field
+			if s.Format == "delimited" {
+				if in.Column < 1 {
+					c.fail("delimited inputs need a column (1-based)", append(p, "column")...)
+				}
+				key = strconv.Itoa(in.Column)
+			} else if in.Field == "" {
+				c.fail("framed inputs need the reading's field name, e.g. a0", append(p, "field")...)
+			}
+			if fields[key] {
+				c.fail(fmt.Sprintf("field %q mapped twice", key), p...)
+			}
+			fields[key] = true
+			checkCalibration(c, in, append(p, "calibration"))
+		}
+	}
+	if cfg.MQTT.Broker != "embedded" {
+		u, err := url.Parse(cfg.MQTT.Broker)
+		if err != nil || (u.Scheme != "tcp" && u.Scheme != "ssl" && u.Scheme != "tls" && u.Scheme != "mqtt" && u.Scheme != "mqtts") || u.Host == "" {
+			c.fail(`must be "embedded" or a URL such as tcp://host:1883 or ssl://host:8883`, "mqtt", "broker")
+		}
+	}
+	if _, _, err := net.SplitHostPort(cfg.MQTT.Listen); err != nil {
+		c.fail("must be host:port", "mqtt", "listen")
+	}
+	if _, _, err := net.SplitHostPort(cfg.HTTP.Listen); err != nil {
+		c.fail("must be host:port", "http", "listen")
+	}
+	if cfg.MQTT.MaxRateHz < 0 || cfg.MQTT.MaxRateHz > 1000 {
+		c.fail("must be between 0 and 1000", "mqtt", "max_rate_hz")
+	}
+	if (cfg.MQTT.CertFile == "") != (cfg.MQTT.KeyFile == "") {
+		c.fail("cert_file and key_file go together", "mqtt", "cert_file")
+	}
+	if cfg.Sim != nil && (cfg.Sim.TimeScale < 0 || cfg.Sim.TimeScale > 100) {
+		c.fail("must be between 0 and 100", "simulator", "time_scale")
+	}
+	sort.SliceStable(c.errs, func(i, j int) bool { return c.errs[i].Line < c.errs[j].Line })
+	return c.errs
+}
+
+func checkAxis(c *checker, axis []float64, path ...any) {
+	if len(axis) < 2 {
+		c.fail("needs at least two points", path...)
+		return
+	}
+	for i := 1; i < len(axis); i++ {
+		if axis[i] <= axis[i-1] {
+			c.fail(fmt.Sprintf("must increase strictly (%g after %g)", axis[i], axis[i-1]), append(path, i)...)
+			return
+		}
+	}
+}
+
+func checkCalibration(c *checker, in SerialInput, p []any) {
+	cal := in.Calibration
+	kinds := 0
+	for _, set := range []bool{cal.Linear != nil, cal.Table != nil, cal.NTCBeta != nil, cal.NTCSH != nil} {
+		if set {
+			kinds++
+		}
+	}
+	if kinds != 1 {
+		c.fail("needs exactly one of linear, table, ntc_beta, ntc_steinhart_hart", p...)
+		return
+	}
+	ch, _ := pipeline.Standard(in.Channel)
+	if _, err := ToCanonical(cal.Unit, ch.Unit, 0); err != nil && ch.Name != "" {
+		c.fail(err.Error(), append(p, "unit")...)
+	}
+	switch {
+	case cal.Linear != nil:
+		if cal.Linear.InMV[0] == cal.Linear.InMV[1] {
+			c.fail("the two in_mv points must differ", append(p, "linear", "in_mv")...)
+		}
+	case cal.Table != nil:
+		checkAxis(c, cal.Table.InMV, append(p, "table", "in_mv")...)
+		if len(cal.Table.Out) != len(cal.Table.InMV) {
+			c.fail("out needs one value per in_mv point", append(p, "table", "out")...)
+		}
+	case cal.NTCBeta != nil:
+		b := cal.NTCBeta
+		if b.R0Ohm <= 0 || b.Beta <= 0 || b.PullupOhm <= 0 {
+			c.fail("r0_ohm, beta_k and pullup_ohm must be positive", append(p, "ntc_beta")...)
+		}
+	case cal.NTCSH != nil:
+		if cal.NTCSH.PullupOhm <= 0 || cal.NTCSH.B == 0 {
+			c.fail("pullup_ohm must be positive and b non-zero", append(p, "ntc_steinhart_hart")...)
+		}
+	}
+	if cal.NTCBeta != nil || cal.NTCSH != nil {
+		if cal.Unit != "" && cal.Unit != "c" {
+			c.fail(`thermistors give degrees Celsius: unit must be "c" or empty`, append(p, "unit")...)
+		}
+	}
+}
+
+func contains(list []string, s string) bool {
+	for _, x := range list {
+		if x == s {
+			return true
+		}
+	}
+	return false
+}
+
+// ToCanonical converts v from a config unit to the canonical unit want.
+func ToCanonical(unit string, want pipeline.Unit, v float64) (float64, error) {
+	type conv struct {
+		to    pipeline.Unit
+		scale float64
+		off   float64
+	}
+	table := map[string]conv{
+		"pa": {pipeline.Pascal, 1, 0}, "kpa": {pipeline.Pascal, 1000, 0}, "bar": {pipeline.Pascal, 1e5, 0},
+		"psi": {pipeline.Pascal, 6894.757293168, 0}, // NIST SP 811: 1 psi = 6.894 757 kPa
+		"c":   {pipeline.Celsius, 1, 0}, "k": {pipeline.Celsius, 1, -273.15},
+		"f": {pipeline.Celsius, 5.0 / 9, -32 * 5.0 / 9},
+		"v": {pipeline.Volts, 1, 0}, "mv": {pipeline.Volts, 0.001, 0},
+		"ratio": {pipeline.Ratio, 1, 0}, "percent": {pipeline.Ratio, 0.01, 0},
+		"rpm": {pipeline.RPM, 1, 0}, "nm": {pipeline.NewtonMetres, 1, 0}, "": {"", 1, 0},
+	}
+	cv, ok := table[strings.ToLower(unit)]
+	if !ok {
+		return 0, fmt.Errorf("unknown unit %q", unit)
+	}
+	if unit == "" {
+		cv.to = want
+	}
+	if cv.to != want {
+		return 0, fmt.Errorf("unit %q does not measure %s", unit, want)
+	}
+	return v*cv.scale + cv.off, nil
+}

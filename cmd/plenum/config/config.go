@@ -1,0 +1,282 @@
+// Package config loads and checks Plenum's YAML configuration. Unknown keys
+// are errors, and every error names the file, the line and the field.
+// Values are written in the units their key names (displacement_l, baro_kpa,
+// ...); the loader converts them to the pipeline's canonical units.
+package config
+
+import (
+	"bytes"
+	"errors"
+	"fmt"
+	"io"
+	"os"
+	"regexp"
+	"strconv"
+	"strings"
+	"time"
+
+	"go.yaml.in/yaml/v3"
+)
+
+// Config is the whole configuration of one daemon.
+type Config struct {
+	Vehicle string     `yaml:"vehicle"`
+	Engine  Engine     `yaml:"engine"`
+	Serial  []Serial   `yaml:"serial"`
+	MQTT    MQTT       `yaml:"mqtt"`
+	HTTP    HTTP       `yaml:"http"`
+	Sim     *Simulator `yaml:"simulator"`
+}
+
+// Engine describes the engine for the physics.
+type Engine struct {
+	DisplacementL float64  `yaml:"displacement_l"`
+	Fuel          string   `yaml:"fuel"`
+	VE            float64  `yaml:"volumetric_efficiency"`
+	VETable       *VETable `yaml:"ve_table"`
+	BaroKPa       float64  `yaml:"baro_kpa"` // used while no barometric channel is fresh
+	Wideband      Wideband `yaml:"wideband"`
+}
+
+// VETable is volumetric efficiency over engine speed (rows) and MAP (columns).
+type VETable struct {
+	SpeedsRPM    []float64   `yaml:"engine_speeds_rpm"`
+	PressuresKPa []float64   `yaml:"manifold_pressures_kpa"`
+	Values       [][]float64 `yaml:"values"`
+}
+
+// Wideband is the linear analog output of a wideband lambda controller.
+type Wideband struct {
+	VoltsLow   float64 `yaml:"volts_low"`
+	LambdaLow  float64 `yaml:"lambda_low"`
+	VoltsHigh  float64 `yaml:"volts_high"`
+	LambdaHigh float64 `yaml:"lambda_high"`
+}
+
+// Serial is one microcontroller on a serial line.
+type Serial struct {
+	Name      string        `yaml:"name"`
+	Device    string        `yaml:"device"`
+	Baud      int           `yaml:"baud"`
+	Format    string        `yaml:"format"`    // "framed" (Plenum's line protocol) or "delimited"
+	Delimiter string        `yaml:"delimiter"` // delimited format only: ",", "tab" or "space"
+	ADCBits   int           `yaml:"adc_bits"`
+	ADCRefMV  float64       `yaml:"adc_ref_mv"`
+	Inputs    []SerialInput `yaml:"inputs"`
+}
+
+// SerialInput maps one reading of a microcontroller to a channel.
+type SerialInput struct {
+	Field       string      `yaml:"field"`  // framed: the reading's key, e.g. "a0"
+	Column      int         `yaml:"column"` // delimited: 1-based column
+	Channel     string      `yaml:"channel"`
+	MaxAge      Duration    `yaml:"max_age"`
+	Calibration Calibration `yaml:"calibration"`
+}
+
+// Calibration turns a raw reading into a physical value. Exactly one of the
+// kinds is set.
+type Calibration struct {
+	Unit       string      `yaml:"unit"` // unit of Out values: kpa, bar, psi, pa, c, f, k, v, ratio, percent, rpm, ...
+	Linear     *Linear     `yaml:"linear"`
+	Table      *Table      `yaml:"table"`
+	NTCBeta    *NTCBeta    `yaml:"ntc_beta"`
+	NTCSH      *NTCSH      `yaml:"ntc_steinhart_hart"`
+	FaultBelow *float64    `yaml:"fault_below_mv"` // open/short-circuit rails, in mV
+	FaultAbove *float64    `yaml:"fault_above_mv"`
+	Range      *[2]float64 `yaml:"range"` // plausible output range, in Unit
+}
+
+// Linear is a two-point calibration: raw In[0]→Out[0], In[1]→Out[1].
+type Linear struct {
+	InMV [2]float64 `yaml:"in_mv"`
+	Out  [2]float64 `yaml:"out"`
+}
+
+// Table is an interpolated calibration over raw millivolts.
+type Table struct {
+	InMV []float64 `yaml:"in_mv"`
+	Out  []float64 `yaml:"out"`
+}
+
+// NTCBeta is an NTC thermistor described by its Beta, read through a divider
+// with a pull-up to the ADC reference.
+type NTCBeta struct {
+	R0Ohm     float64 `yaml:"r0_ohm"`
+	T0C       float64 `yaml:"t0_c"`
+	Beta      float64 `yaml:"beta_k"`
+	PullupOhm float64 `yaml:"pullup_ohm"`
+}
+
+// NTCSH is an NTC thermistor described by Steinhart–Hart coefficients.
+type NTCSH struct {
+	A, B, C   float64
+	PullupOhm float64 `yaml:"pullup_ohm"`
+}
+
+// MQTT configures publishing.
+type MQTT struct {
+	Broker        string   `yaml:"broker"` // "embedded" (default) or tcp://host:port, ssl://host:port
+	Listen        string   `yaml:"listen"` // embedded broker's address
+	Username      string   `yaml:"username"`
+	PasswordFile  string   `yaml:"password_file"`
+	CAFile        string   `yaml:"ca_file"`
+	CertFile      string   `yaml:"cert_file"`
+	KeyFile       string   `yaml:"key_file"`
+	Prefix        string   `yaml:"prefix"`
+	MaxRateHz     float64  `yaml:"max_rate_hz"`
+	SnapshotEvery Duration `yaml:"snapshot_every"`
+	Anonymous     *bool    `yaml:"anonymous_read"`
+}
+
+// HTTP configures the metrics listener.
+type HTTP struct {
+	Listen string `yaml:"listen"`
+}
+
+// Simulator runs the built-in engine simulator as the serial device.
+type Simulator struct {
+	TimeScale float64 `yaml:"time_scale"`
+	Seed      uint64  `yaml:"seed"`
+}
+
+// Duration is a time.Duration written as "250ms", "2s".
+type Duration time.Duration
+
+// UnmarshalYAML parses a Go duration string.
+func (d *Duration) UnmarshalYAML(n *yaml.Node) error {
+	v, err := time.ParseDuration(n.Value)
+	if err != nil {
+		return fmt.Errorf("line %d: %q is not a duration like 250ms or 2s", n.Line, n.Value)
+	}
+	*d = Duration(v)
+	return nil
+}
+
+// Error is a configuration error at a place in a file.
+type Error struct {
+	File  string
+	Line  int
+	Field string
+	Msg   string
+}
+
+func (e *Error) Error() string {
+	var b strings.Builder
+	b.WriteString(e.File)
+	if e.Line > 0 {
+		b.WriteString(":" + strconv.Itoa(e.Line))
+	}
+	if e.Field != "" {
+		b.WriteString(": " + e.Field)
+	}
+	b.WriteString(": " + e.Msg)
+	return b.String()
+}
+
+// Errors is every problem found in one file.
+type Errors []*Error
+
+func (es Errors) Error() string {
+	var s []string
+	for _, e := range es {
+		s = append(s, e.Error())
+	}
+	return strings.Join(s, "\n")
+}
+
+// Load reads and checks the file at path.
+func Load(path string) (*Config, error) {
+	data, err := os.ReadFile(path)
+	if err != nil {
+		return nil, fmt.Errorf("config: %w", err)
+	}
+	return Parse(path, data)
+}
+
+var lineRE = regexp.MustCompile(`line (\d+): (.*)`)
+
+// Parse decodes and checks data, naming the file as name in errors.
+func Parse(name string, data []byte) (*Config, error) {
+	var root yaml.Node
+	dec := yaml.NewDecoder(bytes.NewReader(data))
+	if err := dec.Decode(&root); err != nil {
+		if errors.Is(err, io.EOF) {
+			return nil, &Error{File: name, Msg: "empty configuration"}
+		}
+		return nil, yamlError(name, err)
+	}
+	var cfg Config
+	dec = yaml.NewDecoder(bytes.NewReader(data))
+	dec.KnownFields(true)
+	if err := dec.Decode(&cfg); err != nil {
+		return nil, yamlError(name, err)
+	}
+	cfg.defaults()
+	if errs := cfg.check(name, &root); len(errs) > 0 {
+		return nil, errs
+	}
+	return &cfg, nil
+}
+
+func yamlError(name string, err error) error {
+	var te *yaml.TypeError
+	var out Errors
+	msgs := []string{err.Error()}
+	if errors.As(err, &te) {
+		msgs = te.Errors
+	}
+	for _, m := range msgs {
+		m = strings.TrimPrefix(m, "yaml: ")
+		e := &Error{File: name, Msg: m}
+		if sm := lineRE.FindStringSubmatch(m); sm != nil {
+			e.Line, _ = strconv.Atoi(sm[1])
+			e.Msg = sm[2]
+			if f := regexp.MustCompile(`field (\S+) not found in type config\.(\S+)`).FindStringSubmatch(e.Msg); f != nil {
+				e.Field = f[1]
+				e.Msg = "unknown key in " + strings.ToLower(f[2])
+			}
+		}
+		out = append(out, e)
+	}
+	return out
+}
+
+func (c *Config) defaults() {
+	if c.Engine.Fuel == "" {
+		c.Engine.Fuel = "gasoline"
+	}
+	if c.Engine.BaroKPa == 0 {
+		c.Engine.BaroKPa = 101.325 // ISO 2533 sea-level pressure
+	}
+	if c.MQTT.Broker == "" {
+		c.MQTT.Broker = "embedded"
+	}
+	if c.MQTT.Listen == "" {
+		c.MQTT.Listen = "127.0.0.1:1883"
+	}
+	if c.MQTT.Prefix == "" {
+		c.MQTT.Prefix = "plenum"
+	}
+	if c.MQTT.MaxRateHz == 0 {
+		c.MQTT.MaxRateHz = 10
+	}
+	if c.HTTP.Listen == "" {
+		c.HTTP.Listen = "127.0.0.1:9108"
+	}
+	for i := range c.Serial {
+		s := &c.Serial[i]
+		if s.Baud == 0 {
+			s.Baud = 115200
+		}
+		if s.Format == "" {
+			s.Format = "framed"
+		}
+		if s.ADCBits == 0 {
+			s.ADCBits = 10
+		}
+		if s.ADCRefMV == 0 {
+			s.ADCRefMV = 5000
+		}
+	}
+}

@@ -1,0 +1,89 @@
+package config
+
+import (
+	"math"
+	"strings"
+	"testing"
+
+	"github.com/plenum-engine/plenum/pipeline"
+)
+
+func TestLoadGood(t *testing.T) {
+	cfg, err := Load("testdata/good.yaml")
+	if err != nil {
+		t.Fatal(err)
+	}
+	if cfg.Vehicle != "brackenfell-rs" || len(cfg.Serial) != 1 || len(cfg.Serial[0].Inputs) != 2 {
+		t.Fatalf("decoded %+v", cfg)
+	}
+	if cfg.Serial[0].Baud != 115200 || cfg.MQTT.Prefix != "plenum" {
+		t.Fatalf("defaults not applied: %+v", cfg.Serial[0])
+	}
+}
+
+func TestErrorsNameFileLineAndField(t *testing.T) {
+	cases := []struct {
+		name, yaml, want string
+	}{
+		{"unknown key", "vehicle: x\nengine:\n  displacement_l: 2\n  volumetric_efficiency: 0.9\n  turbo_size: 3\n",
+			"bad.yaml:5: turbo_size: unknown key in engine"},
+		{"negative displacement", "vehicle: x\nengine:\n  displacement_l: -2\n  volumetric_efficiency: 0.9\n",
+			"bad.yaml:3: engine.displacement_l: must be between 0 and 20 litres"},
+		{"bad fuel", "vehicle: x\nengine:\n  displacement_l: 2\n  volumetric_efficiency: 0.9\n  fuel: kerosene\n",
+			`bad.yaml:5: engine.fuel: unknown fuel "kerosene"`},
+		{"wrong type", "vehicle: x\nengine:\n  displacement_l: two\n",
+			"bad.yaml:3: cannot unmarshal"},
+		{"unknown channel", "vehicle: x\nengine: {displacement_l: 2, volumetric_efficiency: 0.9}\nserial:\n  - name: m\n    device: /dev/x\n    inputs:\n      - field: a0\n        channel: boost_thing\n        calibration: {linear: {in_mv: [0, 5000], out: [0, 1]}}\n",
+			`bad.yaml:8: serial[0].inputs[0].channel: unknown channel "boost_thing"`},
+		{"unit mismatch", "vehicle: x\nengine: {displacement_l: 2, volumetric_efficiency: 0.9}\nserial:\n  - name: m\n    device: /dev/x\n    inputs:\n      - field: a0\n        channel: manifold_pressure\n        calibration:\n          unit: c\n          linear: {in_mv: [0, 5000], out: [0, 1]}\n",
+			`bad.yaml:10: serial[0].inputs[0].calibration.unit: unit "c" does not measure pascals`},
+		{"non-monotonic table", "vehicle: x\nengine:\n  displacement_l: 2\n  ve_table:\n    engine_speeds_rpm: [1000, 900]\n    manifold_pressures_kpa: [30, 100]\n    values: [[0.5, 0.6], [0.7, 0.8]]\n",
+			"bad.yaml:5: engine.ve_table.engine_speeds_rpm[1]: must increase strictly"},
+		{"missing vehicle", "engine: {displacement_l: 2, volumetric_efficiency: 0.9}\n", "bad.yaml:1: vehicle: must name"},
+		{"bad broker", "vehicle: x\nengine: {displacement_l: 2, volumetric_efficiency: 0.9}\nmqtt:\n  broker: http://x\n", "bad.yaml:4: mqtt.broker"},
+	}
+	for _, c := range cases {
+		t.Run(c.name, func(t *testing.T) {
+			_, err := Parse("bad.yaml", []byte(c.yaml))
+			if err == nil || !strings.Contains(err.Error(), c.want) {
+				t.Fatalf("err = %v\nwant it to contain %q", err, c.want)
+			}
+		})
+	}
+}
+
+func TestToCanonical(t *testing.T) {
+	cases := []struct {
+		unit string
+		to   pipeline.Unit
+		in   float64
+		want float64
+	}{
+		{"kpa", pipeline.Pascal, 101.325, 101325},
+		{"psi", pipeline.Pascal, 14.696, 101325}, // NIST SP 811: 1 psi = 6.894757 kPa; 14.696 psi = 1 atm
+		{"f", pipeline.Celsius, 212, 100},        // water boils at 212 °F = 100 °C (definition of the scales)
+		{"k", pipeline.Celsius, 273.15, 0},
+		{"percent", pipeline.Ratio, 50, 0.5},
+	}
+	for _, c := range cases {
+		got, err := ToCanonical(c.unit, c.to, c.in)
+		if err != nil || math.Abs(got-c.want) > 0.5 {
+			t.Errorf("%g %s = %g (%v), want %g", c.in, c.unit, got, err, c.want)
+		}
+	}
+}
+
+func FuzzParse(f *testing.F) {
+	for _, s := range []string{"vehicle: x\n", "engine: {displacement_l: 2}\n", "serial: [{name: a, inputs: [{field: a0}]}]\n", "::\n", "vehicle: [\n"} {
+		f.Add([]byte(s))
+	}
+	f.Fuzz(func(t *testing.T, data []byte) {
+		cfg, err := Parse("fuzz.yaml", data)
+		if err == nil && cfg == nil {
+			t.Fatal("nil config without error")
+		}
+		if err != nil && !strings.HasPrefix(err.Error(), "fuzz.yaml") {
+			t.Fatalf("error does not name the file: %v", err)
+		}
+	})
+}
