@@ -222,3 +222,7 @@ func (p *Pipeline) BindEmitters() {
 		}
 	}
 }
+
+// AdoptHealth makes h the pipeline's health set, so that sources created
+// before the pipeline report into the same set the exporters read.
+func (p *Pipeline) AdoptHealth(h *HealthSet) { p.health = h }

@@ -1,0 +1,254 @@
+package main
+
+import (
+	"context"
+	"crypto/tls"
+	"crypto/x509"
+	"errors"
+	"fmt"
+	"io"
+	"log/slog"
+	"net"
+	"net/http"
+	"os"
+	"strings"
+	"sync"
+	"time"
+
+	"github.com/plenum-engine/plenum/cmd/plenum/config"
+	"github.com/plenum-engine/plenum/pipeline"
+	"github.com/plenum-engine/plenum/pipeline/broker"
+	"github.com/plenum-engine/plenum/pipeline/mqttpub"
+	"github.com/plenum-engine/plenum/pipeline/promexport"
+)
+
+// source is anything that feeds the pipeline until its context ends.
+type source interface {
+	Name() string
+	Run(ctx context.Context) error
+}
+
+// runDaemon assembles sources, derivations, the pipeline and the publishers
+// from cfg and runs them until ctx is done.
+func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *slog.Logger) error {
+	fmt.Fprintln(stdout, Safety)
+	reg := pipeline.NewRegistry()
+	// The pipeline is created after all channels are known, but the sources
+	// need somewhere to put samples: they get a forwarding sink.
+	sink := &lateSink{}
+	health := pipeline.NewHealthSet()
+	srcs, cleanup, err := buildSources(ctx, cfg, reg, sink, health, log)
+	if err != nil {
+		return err
+	}
+	defer cleanup()
+	ds, err := buildDerivations(cfg, reg)
+	if err != nil {
+		return err
+	}
+	g, err := pipeline.BuildGraph(reg, ds)
+	if err != nil {
+		return fmt.Errorf("derivations: %w", err)
+	}
+	p := pipeline.New(reg, g, pipeline.Options{})
+	p.AdoptHealth(health)
+	p.BindEmitters()
+	sink.set(p)
+
+	// Metrics.
+	col, err := promexport.New(p, time.Now)
+	if err != nil {
+		return err
+	}
+	h, err := promexport.Handler(col)
+	if err != nil {
+		return err
+	}
+	mux := http.NewServeMux()
+	mux.Handle("/metrics", h)
+	mux.HandleFunc("/", func(w http.ResponseWriter, r *http.Request) {
+		if r.URL.Path != "/" {
+			http.NotFound(w, r)
+			return
+		}
+		fmt.Fprintf(w, "plenum %s for %s\n/metrics  Prometheus exposition\n\n%s\n", version, cfg.Vehicle, Safety)
+	})
+	ln, err := net.Listen("tcp", cfg.HTTP.Listen)
+	if err != nil {
+		return fmt.Errorf("http listen %s: %w", cfg.HTTP.Listen, err)
+	}
+	srv := &http.Server{Handler: mux, ReadHeaderTimeout: 5 * time.Second}
+
+	// MQTT: the embedded broker unless an external one is configured.
+	mcfg := mqttpub.Config{
+		Prefix: cfg.MQTT.Prefix, Vehicle: cfg.Vehicle, MaxRate: cfg.MQTT.MaxRateHz,
+		SnapshotEvery: time.Duration(cfg.MQTT.SnapshotEvery), Version: version, Logger: log,
+	}
+	var brk *broker.Broker
+	if cfg.MQTT.Broker == "embedded" {
+		anon := cfg.MQTT.Anonymous == nil || *cfg.MQTT.Anonymous
+		brk, err = broker.Start(ctx, broker.Config{Addr: cfg.MQTT.Listen, Anonymous: anon, Prefix: cfg.MQTT.Prefix, Logger: quiet(log)})
+		if err != nil {
+			ln.Close()
+			return err
+		}
+		mcfg.Broker = "tcp://" + brk.Addr().String()
+		mcfg.Username, mcfg.Password = brk.Credentials()
+	} else {
+		mcfg.Broker = cfg.MQTT.Broker
+		mcfg.Username = cfg.MQTT.Username
+		if cfg.MQTT.PasswordFile != "" {
+			b, err := os.ReadFile(cfg.MQTT.PasswordFile)
+			if err != nil {
+				ln.Close()
+				return fmt.Errorf("mqtt password_file: %w", err)
+			}
+			mcfg.Password = strings.TrimSpace(string(b))
+		}
+		if mcfg.TLS, err = tlsConfig(cfg.MQTT); err != nil {
+			ln.Close()
+			return err
+		}
+	}
+	pub, err := mqttpub.New(mcfg, reg, p.Subscribe("mqtt", 1<<14))
+	if err != nil {
+		ln.Close()
+		return err
+	}
+	pub.SetStore(p.Store())
+
+	fmt.Fprintf(stdout, "metrics:  http://%s/metrics\n", ln.Addr())
+	if brk != nil {
+		fmt.Fprintf(stdout, "mqtt:     mqtt://%s  (subscribe to %s/%s/#, read-only)\n", brk.Addr(), cfg.MQTT.Prefix, cfg.Vehicle)
+	} else {
+		fmt.Fprintf(stdout, "mqtt:     publishing to %s under %s/%s/\n", cfg.MQTT.Broker, cfg.MQTT.Prefix, cfg.Vehicle)
+	}
+
+	runCtx, cancel := context.WithCancel(ctx)
+	defer cancel()
+	var wg sync.WaitGroup
+	errs := make(chan error, len(srcs)+4)
+	start := func(name string, f func(context.Context) error, c context.Context) {
+		wg.Add(1)
+		go func() {
+			defer wg.Done()
+			if err := f(c); err != nil && !errors.Is(err, context.Canceled) {
+				log.Error("component stopped", "component", name, "err", err)
+				errs <- fmt.Errorf("%s: %w", name, err)
+			}
+		}()
+	}
+	// The pipeline and the publisher stop after the sources, so that what the
+	// sources took last is still processed and published.
+	pipeCtx, pipeCancel := context.WithCancel(context.Background())
+	defer pipeCancel()
+	pipeDone := make(chan struct{})
+	go func() { p.Run(pipeCtx); close(pipeDone) }()
+	pubCtx, pubCancel := context.WithCancel(context.Background())
+	defer pubCancel()
+	pubDone := make(chan struct{})
+	go func() { pub.Run(pubCtx); close(pubDone) }()
+	go func() {
+		if err := srv.Serve(ln); err != nil && !errors.Is(err, http.ErrServerClosed) {
+			errs <- fmt.Errorf("http: %w", err)
+		}
+	}()
+	for _, s := range srcs {
+		start(s.Name(), s.Run, runCtx)
+	}
+
+	var runErr error
+	select {
+	case <-ctx.Done():
+	case runErr = <-errs:
+	}
+	log.Info("shutting down")
+	cancel()
+	waitTimeout(&wg, shutdownGrace)
+	pipeCancel()
+	<-pipeDone
+	pubCancel()
+	select {
+	case <-pubDone:
+	case <-time.After(shutdownGrace):
+	}
+	sctx, scancel := context.WithTimeout(context.Background(), time.Second)
+	srv.Shutdown(sctx)
+	scancel()
+	if brk != nil {
+		brk.Close()
+	}
+	return runErr
+}
+
+func waitTimeout(wg *sync.WaitGroup, d time.Duration) {
+	done := make(chan struct{})
+	go func() { wg.Wait(); close(done) }()
+	select {
+	case <-done:
+	case <-time.After(d):
+	}
+}
+
+// quiet turns the broker's info chatter down to warnings.
+func quiet(log *slog.Logger) *slog.Logger {
+	return slog.New(levelFilter{log.Handler(), slog.LevelWarn})
+}
+
+type levelFilter struct {
+	slog.Handler
+	min slog.Level
+}
+
+func (f levelFilter) Enabled(ctx context.Context, l slog.Level) bool {
+	return l >= f.min && f.Handler.Enabled(ctx, l)
+}
+
+func tlsConfig(m config.MQTT) (*tls.Config, error) {
+	if m.CAFile == "" && m.CertFile == "" {
+		return nil, nil
+	}
+	tc := &tls.Config{MinVersion: tls.VersionTLS12}
+	if m.CAFile != "" {
+		pem, err := os.ReadFile(m.CAFile)
+		if err != nil {
+			return nil, fmt.Errorf("mqtt ca_file: %w", err)
+		}
+		pool := x509.NewCertPool()
+		if !pool.AppendCertsFromPEM(pem) {
+			return nil, fmt.Errorf("mqtt ca_file %s: no certificates found", m.CAFile)
+		}
+		tc.RootCAs = pool
+	}
+	if m.CertFile != "" {
+		cert, err := tls.LoadX509KeyPair(m.CertFile, m.KeyFile)
+		if err != nil {
+			return nil, fmt.Errorf("mqtt client certificate: %w", err)
+		}
+		tc.Certificates = []tls.Certificate{cert}
+	}
+	return tc, nil
+}
+
+// lateSink forwards samples to the pipeline once it exists.
+type lateSink struct {
+	mu sync.RWMutex
+	p  *pipeline.Pipeline
+}
+
+func (s *lateSink) set(p *pipeline.Pipeline) {
+	s.mu.Lock()
+	s.p = p
+	s.mu.Unlock()
+}
+
+// Put forwards a sample; before the pipeline exists it is dropped.
+func (s *lateSink) Put(x pipeline.Sample) bool {
+	s.mu.RLock()
+	p := s.p
+	s.mu.RUnlock()
+	if p == nil {
+		return false
+	}
+	return p.Put(x)
+}

@@ -1,0 +1,142 @@
+// Command plenum captures an engine's sensors live, derives what the raw
+// signals mean and publishes the result over MQTT and Prometheus.
+//
+// Usage:
+//
+//	plenum demo  [-http ADDR] [-mqtt ADDR] [-for DURATION]   simulated engine, embedded broker
+//	plenum run   -config FILE                                 the daemon, on real hardware
+//	plenum check -config FILE                                 check a configuration (exit 2 if bad)
+//	plenum version
+//
+// Plenum is advisory only: it is not a safety system.
+package main
+
+import (
+	"context"
+	"errors"
+	"flag"
+	"fmt"
+	"io"
+	"log/slog"
+	"os"
+	"os/signal"
+	"syscall"
+	"time"
+
+	"github.com/plenum-engine/plenum/cmd/plenum/config"
+)
+
+// version is set at build time with -ldflags "-X main.version=...".
+var version = "0.1.0-dev"
+
+// Safety is printed at start-up and in the README.
+const Safety = `Plenum is advisory only and is not a safety system. Never watch a screen while
+driving on a public road. Follow your dyno cell's and track's safety rules. Plenum only
+reads from the ECU and never alters emissions equipment; defer to local law and licensed practice.`
+
+func main() {
+	os.Exit(run(os.Args[1:], os.Stdout, os.Stderr))
+}
+
+// usageError is a bad command line: exit status 2.
+type usageError struct{ msg string }
+
+func (e usageError) Error() string { return e.msg }
+
+func run(args []string, stdout, stderr io.Writer) int {
+	if len(args) == 0 {
+		fmt.Fprintln(stderr, "usage: plenum demo|run|check|version [flags]")
+		return 2
+	}
+	ctx, stop := signal.NotifyContext(context.Background(), os.Interrupt, syscall.SIGTERM)
+	defer stop()
+	log := slog.New(slog.NewTextHandler(stderr, &slog.HandlerOptions{Level: slog.LevelInfo}))
+	var err error
+	switch args[0] {
+	case "version":
+		fmt.Fprintln(stdout, "plenum", version)
+		return 0
+	case "check":
+		err = cmdCheck(args[1:], stdout)
+	case "demo":
+		err = cmdDemo(ctx, args[1:], stdout, log)
+	case "run":
+		err = cmdRun(ctx, args[1:], stdout, log)
+	default:
+		err = usageError{fmt.Sprintf("unknown command %q: want demo, run, check or version", args[0])}
+	}
+	if err == nil {
+		return 0
+	}
+	fmt.Fprintln(stderr, "plenum:", err)
+	var ue usageError
+	var ce config.Errors
+	var ce1 *config.Error
+	if errors.As(err, &ue) || errors.As(err, &ce) || errors.As(err, &ce1) || errors.Is(err, flag.ErrHelp) {
+		return 2
+	}
+	return 1
+}
+
+func cmdCheck(args []string, stdout io.Writer) error {
+	fs := flag.NewFlagSet("check", flag.ContinueOnError)
+	path := fs.String("config", "", "configuration file")
+	if err := fs.Parse(args); err != nil {
+		return usageError{err.Error()}
+	}
+	if *path == "" {
+		return usageError{"check needs -config FILE"}
+	}
+	cfg, err := config.Load(*path)
+	if err != nil {
+		return err
+	}
+	fmt.Fprintf(stdout, "%s: ok (vehicle %s, %d serial source(s))\n", *path, cfg.Vehicle, len(cfg.Serial))
+	return nil
+}
+
+func cmdDemo(ctx context.Context, args []string, stdout io.Writer, log *slog.Logger) error {
+	fs := flag.NewFlagSet("demo", flag.ContinueOnError)
+	httpAddr := fs.String("http", "127.0.0.1:9108", "metrics listen address")
+	mqttAddr := fs.String("mqtt", "127.0.0.1:1883", "embedded MQTT broker listen address")
+	dur := fs.Duration("for", 0, "stop by itself after this long (0: run until interrupted)")
+	scale := fs.Float64("time-scale", 1, "simulated seconds per real second")
+	if err := fs.Parse(args); err != nil {
+		return usageError{err.Error()}
+	}
+	cfg, err := config.Parse("demo.yaml (embedded)", demoConfig)
+	if err != nil {
+		return fmt.Errorf("embedded demo config: %w", err)
+	}
+	cfg.HTTP.Listen = *httpAddr
+	cfg.MQTT.Listen = *mqttAddr
+	if cfg.Sim == nil {
+		cfg.Sim = &config.Simulator{}
+	}
+	cfg.Sim.TimeScale = *scale
+	if *dur > 0 {
+		var cancel context.CancelFunc
+		ctx, cancel = context.WithTimeout(ctx, *dur)
+		defer cancel()
+	}
+	return runDaemon(ctx, cfg, stdout, log)
+}
+
+func cmdRun(ctx context.Context, args []string, stdout io.Writer, log *slog.Logger) error {
+	fs := flag.NewFlagSet("run", flag.ContinueOnError)
+	path := fs.String("config", "", "configuration file")
+	if err := fs.Parse(args); err != nil {
+		return usageError{err.Error()}
+	}
+	if *path == "" {
+		return usageError{"run needs -config FILE"}
+	}
+	cfg, err := config.Load(*path)
+	if err != nil {
+		return err
+	}
+	return runDaemon(ctx, cfg, stdout, log)
+}
+
+// shutdownGrace bounds how long the daemon waits for its parts to stop.
+const shutdownGrace = 5 * time.Second
