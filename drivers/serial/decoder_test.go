@@ -1,0 +1,229 @@
+package serial
+
+import (
+	"errors"
+	"math"
+	"os"
+	"path/filepath"
+	"sync"
+	"testing"
+	"time"
+
+	"github.com/creack/pty"
+
+	"github.com/plenum-engine/plenum/drivers/calib"
+	"github.com/plenum-engine/plenum/pipeline"
+)
+
+type collect struct {
+	mu sync.Mutex
+	s  []pipeline.Sample
+}
+
+func (c *collect) Put(s pipeline.Sample) bool {
+	c.mu.Lock()
+	c.s = append(c.s, s)
+	c.mu.Unlock()
+	return true
+}
+
+func (c *collect) len() int {
+	c.mu.Lock()
+	defer c.mu.Unlock()
+	return len(c.s)
+}
+
+func mapSensor() calib.Sensor {
+	return calib.Sensor{Curve: calib.Linear{MV0: 400, Out0: 20000, MV1: 4650, Out1: 300000},
+		FaultBelowMV: 100, FaultAboveMV: 4900, Min: 20000, Max: 250000, ADCMax: 1023, RefMV: 5000}
+}
+
+func newTestDecoder(t testing.TB, sink Sink) (*Decoder, *pipeline.Health) {
+	h := pipeline.NewHealthSet().Source("mcu")
+	d, err := NewDecoder(Framed, 0, []Input{
+		{Key: "a0", Channel: 0, Sensor: mapSensor()},
+		{Key: "a1", Channel: 1, Sensor: calib.Sensor{Curve: calib.NTCBeta{Divider: calib.Divider{PullupOhm: 2490, RefMV: 5000}, R0Ohm: 2500, T0C: 25, Beta: 3950}, ADCMax: 1023, RefMV: 5000}},
+	}, sink, NewCounters(h))
+	if err != nil {
+		t.Fatal(err)
+	}
+	return d, h
+}
+
+func count(h *pipeline.Health, name string) uint64 { return h.Counter(name).Load() }
+
+func TestDecoderBadInputIsCountedNotFatal(t *testing.T) {
+	var c collect
+	d, h := newTestDecoder(t, &c)
+	now := time.Unix(100, 0)
+	lines := []string{
+		frameLine("P1,1,1000,a0=2525m,a1=512"), // good: 160 kPa; NTC at mid-scale
+		"P1,2,1010,a0=2525m*0000",              // bad checksum
+		"P1,3,1020,a0=25",                      // truncated
+		frameLine("P1,4,1030,a0=2525m,zz=3"),   // unknown field: a0 kept
+		frameLine("P1,5,1040,a0=4800m"),        // out of range (> 250 kPa)
+		frameLine("P1,6,1050,a0=50m"),          // open circuit: sensor fault
+		frameLine("P1,9,1060,a0=2525m"),        // sequence gap
+	}
+	var errs int
+	for _, l := range lines {
+		if err := d.Line([]byte(l), now); err != nil {
+			errs++
+		}
+		now = now.Add(10 * time.Millisecond)
+	}
+	if errs != 3 {
+		t.Errorf("%d lines reported errors, want 3 (checksum, truncated, unknown field)", errs)
+	}
+	for name, want := range map[string]uint64{"frames": 5, "bad_checksums": 1, "truncated_lines": 1, "unknown_fields": 1,
+		"out_of_range_readings": 1, "sensor_faults": 1, "sequence_gaps": 2} {
+		if got := count(h, name); got != want {
+			t.Errorf("%s = %d, want %d", name, got, want)
+		}
+	}
+	if len(c.s) != 6 {
+		t.Fatalf("%d samples, want 6", len(c.s))
+	}
+	if v := c.s[0].Value; math.Abs(v-160000) > 1e-6 || c.s[0].Quality != pipeline.OK {
+		t.Errorf("MAP = %v %v, want 160000 Pa ok", v, c.s[0].Quality)
+	}
+	// 512 of 1023 counts is 2502.4 mV: R = 2490·2502.4/2497.6 = 2494.8 Ω, just
+	// under R0 = 2500 Ω, so a little above 25 °C (Beta equation, derived).
+	if v := c.s[1].Value; v < 25 || v > 25.2 {
+		t.Errorf("IAT = %v °C, want just above 25", v)
+	}
+	if c.s[3].Quality != pipeline.OutOfRange || c.s[4].Quality != pipeline.SensorFault {
+		t.Errorf("qualities %v %v", c.s[3].Quality, c.s[4].Quality)
+	}
+	var ue *UnknownFieldError
+	if err := d.Line([]byte(frameLine("P1,10,1070,qq=1")), now); !errors.As(err, &ue) || ue.Key != "qq" {
+		t.Errorf("unknown field error = %v", err)
+	}
+}
+
+func TestDeviceClockMapping(t *testing.T) {
+	var c collect
+	d, _ := newTestDecoder(t, &c)
+	host := time.Unix(1000, 0)
+	d.Line([]byte(frameLine("P1,1,5000,a0=2000m")), host)
+	// The next frame arrives 30 ms late on the host but was taken 10 ms after
+	// the first by the device: its time follows the device counter.
+	d.Line([]byte(frameLine("P1,2,5010,a0=2000m")), host.Add(40*time.Millisecond))
+	if got := c.s[1].Time.Sub(c.s[0].Time); got != 10*time.Millisecond {
+		t.Fatalf("device spacing %v, want 10ms", got)
+	}
+	// A device reset (counter back to 0) re-anchors on the host clock.
+	d.Line([]byte(frameLine("P1,1,0,a0=2000m")), host.Add(time.Second))
+	if got := c.s[2].Time; !got.Equal(host.Add(time.Second)) {
+		t.Fatalf("after reset time %v, want host time", got)
+	}
+}
+
+func TestDelimitedDecoder(t *testing.T) {
+	var c collect
+	h := pipeline.NewHealthSet().Source("sketch")
+	d, err := NewDecoder(Delimited, ',', []Input{{Column: 2, Channel: 5, Sensor: mapSensor()}}, &c, NewCounters(h))
+	if err != nil {
+		t.Fatal(err)
+	}
+	if err := d.Line([]byte("17,2525,99\r"), time.Unix(1, 0)); err != nil {
+		t.Fatal(err)
+	}
+	if len(c.s) != 1 || c.s[0].Channel != 5 || math.Abs(c.s[0].Value-160000) > 1e-6 {
+		t.Fatalf("samples %+v", c.s)
+	}
+	if err := d.Line([]byte("17,abc"), time.Unix(1, 0)); err == nil || count(h, "malformed_lines") != 1 {
+		t.Fatalf("bad delimited line: err %v, counted %d", err, count(h, "malformed_lines"))
+	}
+}
+
+// TestPtyDriverSurvivesVanishingDevice runs the real driver on a real
+// pseudo-terminal, pulls the "cable" (closes the pty) and plugs a new one in
+// at the same path.
+func TestPtyDriverSurvivesVanishingDevice(t *testing.T) {
+	dir := t.TempDir()
+	link := filepath.Join(dir, "mcu")
+	var c collect
+	dec, h := newTestDecoder(t, &c)
+	plug := func() *os.File {
+		master, tty, err := pty.Open()
+		if err != nil {
+			t.Fatal(err)
+		}
+		tty.Close() // the driver opens the slave by path
+		os.Remove(link)
+		if err := os.Symlink(tty.Name(), link); err != nil {
+			t.Fatal(err)
+		}
+		return master
+	}
+	master := plug()
+	drv := NewDriver(Config{Name: "mcu", Path: link, Baud: 115200, MinBackoff: 20 * time.Millisecond, MaxBackoff: 100 * time.Millisecond}, dec, h)
+	ctx, cancel := contextWithCancel()
+	done := make(chan error, 1)
+	go func() { done <- drv.Run(ctx) }()
+	defer func() { cancel(); <-done }()
+
+	write := func(m *os.File, seq uint32) {
+		m.Write(AppendFrame(nil, seq, seq*10, []Reading{NewReading("a0", 2525, true)}))
+	}
+	waitFor(t, "first samples", func() bool { write(master, 1); return c.len() > 0 && h.Up() })
+	// Pull the cable.
+	os.Remove(link)
+	master.Close()
+	start := time.Now()
+	waitFor(t, "source down", func() bool { return !h.Up() })
+	if d := time.Since(start); d > time.Second {
+		t.Errorf("vanished device noticed after %v, want within 1 s", d)
+	}
+	// Plug it back in.
+	n := c.len()
+	master = plug()
+	defer master.Close()
+	waitFor(t, "samples after reopen", func() bool { write(master, 2); return c.len() > n && h.Up() })
+	if count(h, "reopens") < 1 {
+		t.Errorf("reopens = %d", count(h, "reopens"))
+	}
+}
+
+func waitFor(t *testing.T, what string, cond func() bool) {
+	t.Helper()
+	deadline := time.Now().Add(5 * time.Second)
+	for time.Now().Before(deadline) {
+		if cond() {
+			return
+		}
+		time.Sleep(20 * time.Millisecond)
+	}
+	t.Fatalf("timed out waiting for %s", what)
+}
+
+func TestMissingDeviceAtStartIsRetried(t *testing.T) {
+	var c collect
+	dec, h := newTestDecoder(t, &c)
+	drv := NewDriver(Config{Name: "mcu", Path: filepath.Join(t.TempDir(), "absent"), MinBackoff: 10 * time.Millisecond, MaxBackoff: 20 * time.Millisecond}, dec, h)
+	ctx, cancel := contextWithTimeout(200 * time.Millisecond)
+	defer cancel()
+	if err := drv.Run(ctx); err == nil || h.Up() {
+		t.Fatalf("Run = %v, up %v: want the context's error and down", err, h.Up())
+	}
+}
+
+type nullSink struct{ n int }
+
+func (s *nullSink) Put(pipeline.Sample) bool { s.n++; return true }
+
+func BenchmarkParseCalibrate(b *testing.B) {
+	var sink nullSink
+	d, _ := newTestDecoder(b, &sink)
+	line := []byte(frameLine("P1,42,123456,a0=2525m,a1=512"))
+	now := time.Unix(0, 0)
+	b.ReportAllocs()
+	b.ResetTimer()
+	for i := 0; i < b.N; i++ {
+		if err := d.Line(line, now); err != nil {
+			b.Fatal(err)
+		}
+	}
+	b.ReportMetric(float64(b.N)/b.Elapsed().Seconds(), "lines/s")
+}
