@@ -87,7 +87,9 @@ func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *s
 	var brk *broker.Broker
 	if cfg.MQTT.Broker == "embedded" {
 		anon := cfg.MQTT.Anonymous == nil || *cfg.MQTT.Anonymous
-		brk, err = broker.Start(ctx, broker.Config{Addr: cfg.MQTT.Listen, Anonymous: anon, Prefix: cfg.MQTT.Prefix, Logger: quiet(log)})
+		// The broker outlives the publisher's last "offline" message: it is
+		// closed at the end of the shutdown, not by ctx.
+		brk, err = broker.Start(context.Background(), broker.Config{Addr: cfg.MQTT.Listen, Anonymous: anon, Prefix: cfg.MQTT.Prefix, Logger: quiet(log)})
 		if err != nil {
 			ln.Close()
 			return err
@@ -132,7 +134,7 @@ func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *s
 		wg.Add(1)
 		go func() {
 			defer wg.Done()
-			if err := f(c); err != nil && !errors.Is(err, context.Canceled) {
+			if err := f(c); err != nil && c.Err() == nil {
 				log.Error("component stopped", "component", name, "err", err)
 				errs <- fmt.Errorf("%s: %w", name, err)
 			}

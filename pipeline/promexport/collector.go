@@ -13,6 +13,7 @@ import (
 	"fmt"
 	"net/http"
 	"regexp"
+	"strings"
 	"sync"
 	"time"
 
@@ -23,10 +24,12 @@ import (
 	"github.com/plenum-engine/plenum/pipeline"
 )
 
-// MetricName returns the Prometheus metric name of a channel.
+// MetricName returns the Prometheus metric name of a channel: plenum_,
+// the quantity, and the unit unless the quantity already ends in it
+// (plenum_air_fuel_ratio, not plenum_air_fuel_ratio_ratio).
 func MetricName(c pipeline.Channel) string {
 	name := "plenum_" + c.Quantity
-	if c.Unit != pipeline.None {
+	if c.Unit != pipeline.None && !strings.HasSuffix(name, "_"+string(c.Unit)) {
 		name += "_" + string(c.Unit)
 	}
 	return name

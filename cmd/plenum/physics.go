@@ -1,0 +1,176 @@
+package main
+
+import (
+	"fmt"
+	"math"
+	"time"
+
+	"github.com/plenum-engine/plenum/cmd/plenum/config"
+	"github.com/plenum-engine/plenum/derive"
+	"github.com/plenum-engine/plenum/pipeline"
+)
+
+// The derivations wire derive/'s pure functions into the pipeline graph.
+// Each declares what it reads and writes; Derive does not allocate.
+
+// airflow computes speed-density air mass flow from MAP, IAT and engine speed.
+type airflow struct {
+	displacement float64
+	ve           float64
+	table        *derive.VETable
+}
+
+func (d *airflow) Name() string { return "speed_density" }
+func (d *airflow) Inputs() []pipeline.Input {
+	return []pipeline.Input{{Name: "manifold_pressure"}, {Name: "intake_air_temp"}, {Name: "engine_speed"}}
+}
+func (d *airflow) Outputs() []pipeline.Channel {
+	return []pipeline.Channel{
+		{Name: "air_mass_flow", Quantity: "mass_flow", Unit: pipeline.KilogramsPerSec, Sensor: "speed_density", Min: 0, Max: 5},
+		{Name: "volumetric_efficiency", Quantity: "volumetric_efficiency", Unit: pipeline.Ratio, Sensor: "model"},
+	}
+}
+func (d *airflow) Derive(_ time.Time, in, out []float64) uint64 {
+	ve := d.ve
+	if d.table != nil {
+		ve = d.table.At(in[2], in[0])
+	}
+	out[0] = derive.SpeedDensity(in[0], in[1], in[2], d.displacement, ve)
+	out[1] = ve
+	return 0b11
+}
+
+// boost computes manifold gauge pressure and the compressor pressure ratio,
+// from a barometric channel when fresh, else from the configured pressure.
+type boost struct{ baro float64 }
+
+func (d *boost) Name() string { return "boost" }
+func (d *boost) Inputs() []pipeline.Input {
+	return []pipeline.Input{{Name: "manifold_pressure"}, {Name: "baro_pressure", Optional: true}}
+}
+func (d *boost) Outputs() []pipeline.Channel {
+	return []pipeline.Channel{
+		{Name: "boost_pressure", Quantity: "pressure", Unit: pipeline.Pascal, Sensor: "boost", Min: -110000, Max: 500000},
+		{Name: "manifold_pressure_ratio", Quantity: "pressure_ratio", Unit: pipeline.Ratio, Sensor: "manifold_to_ambient"},
+	}
+}
+func (d *boost) Derive(_ time.Time, in, out []float64) uint64 {
+	baro := in[1]
+	if math.IsNaN(baro) {
+		baro = d.baro
+	}
+	out[0] = derive.Boost(in[0], baro)
+	out[1] = derive.PressureRatio(in[0], baro)
+	return 0b11
+}
+
+// mixture turns the wideband controller's voltage into λ and AFR.
+type mixture struct {
+	wb     derive.Wideband
+	stoich float64
+}
+
+func (d *mixture) Name() string { return "mixture" }
+func (d *mixture) Inputs() []pipeline.Input {
+	return []pipeline.Input{{Name: "wideband_voltage"}}
+}
+func (d *mixture) Outputs() []pipeline.Channel {
+	return []pipeline.Channel{
+		{Name: "lambda", Quantity: "lambda", Unit: pipeline.Ratio, Sensor: "wideband", Min: 0.5, Max: 2},
+		{Name: "air_fuel_ratio", Quantity: "air_fuel_ratio", Unit: pipeline.Ratio, Sensor: "wideband"},
+	}
+}
+func (d *mixture) Derive(_ time.Time, in, out []float64) uint64 {
+	out[0] = d.wb.Lambda(in[0])
+	out[1] = derive.AFR(out[0], d.stoich)
+	return 0b11
+}
+
+// fuelFlow computes fuel mass and volume flow from air mass flow and λ.
+type fuelFlow struct{ fuel derive.Fuel }
+
+func (d *fuelFlow) Name() string { return "fuel_flow" }
+func (d *fuelFlow) Inputs() []pipeline.Input {
+	return []pipeline.Input{{Name: "air_mass_flow"}, {Name: "lambda"}}
+}
+func (d *fuelFlow) Outputs() []pipeline.Channel {
+	return []pipeline.Channel{
+		{Name: "fuel_mass_flow", Quantity: "mass_flow", Unit: pipeline.KilogramsPerSec, Sensor: "fuel"},
+		{Name: "fuel_volume_flow", Quantity: "volume_flow", Unit: pipeline.CubicMetresPerS, Sensor: "fuel"},
+	}
+}
+func (d *fuelFlow) Derive(_ time.Time, in, out []float64) uint64 {
+	out[0] = derive.FuelMassFlow(in[0], in[1], d.fuel.Stoich)
+	out[1] = derive.FuelVolumeFlow(out[0], d.fuel.Density)
+	return 0b11
+}
+
+// compressorRatio is the compressor's outlet over inlet pressure, when an
+// outlet sensor exists; the inlet is a pre-compressor sensor or barometric.
+type compressorRatio struct{ baro float64 }
+
+func (d *compressorRatio) Name() string { return "compressor_ratio" }
+func (d *compressorRatio) Inputs() []pipeline.Input {
+	return []pipeline.Input{{Name: "compressor_outlet_pressure"}, {Name: "compressor_inlet_pressure", Optional: true}, {Name: "baro_pressure", Optional: true}}
+}
+func (d *compressorRatio) Outputs() []pipeline.Channel {
+	return []pipeline.Channel{{Name: "compressor_pressure_ratio", Quantity: "pressure_ratio", Unit: pipeline.Ratio, Sensor: "compressor"}}
+}
+func (d *compressorRatio) Derive(_ time.Time, in, out []float64) uint64 {
+	inlet := in[1]
+	if math.IsNaN(inlet) {
+		inlet = in[2]
+	}
+	if math.IsNaN(inlet) {
+		inlet = d.baro
+	}
+	out[0] = derive.PressureRatio(in[0], inlet)
+	return 1
+}
+
+// buildDerivations returns the derivations the configured channels allow.
+func buildDerivations(cfg *config.Config, reg *pipeline.Registry) ([]pipeline.Derivation, error) {
+	has := func(names ...string) bool {
+		for _, n := range names {
+			if _, ok := reg.Lookup(n); !ok {
+				return false
+			}
+		}
+		return true
+	}
+	e := cfg.Engine
+	baro := e.BaroKPa * 1000
+	fuel, err := derive.LookupFuel(e.Fuel)
+	if err != nil {
+		return nil, fmt.Errorf("engine.fuel: %w", err)
+	}
+	var ds []pipeline.Derivation
+	if has("manifold_pressure", "intake_air_temp", "engine_speed") {
+		af := &airflow{displacement: e.DisplacementL / 1000, ve: e.VE}
+		if t := e.VETable; t != nil {
+			tb := &derive.VETable{Speeds: t.SpeedsRPM, Values: t.Values}
+			for _, p := range t.PressuresKPa {
+				tb.Pressures = append(tb.Pressures, p*1000)
+			}
+			if err := tb.Validate(); err != nil {
+				return nil, fmt.Errorf("engine.ve_table: %w", err)
+			}
+			af.table = tb
+		}
+		ds = append(ds, af)
+	}
+	if has("manifold_pressure") {
+		ds = append(ds, &boost{baro: baro})
+	}
+	if has("wideband_voltage") && e.Wideband != (config.Wideband{}) {
+		w := e.Wideband
+		ds = append(ds, &mixture{wb: derive.Wideband{VoltsLow: w.VoltsLow, LambdaLow: w.LambdaLow, VoltsHigh: w.VoltsHigh, LambdaHigh: w.LambdaHigh}, stoich: fuel.Stoich})
+		if has("manifold_pressure", "intake_air_temp", "engine_speed") {
+			ds = append(ds, &fuelFlow{fuel: fuel})
+		}
+	}
+	if has("compressor_outlet_pressure") {
+		ds = append(ds, &compressorRatio{baro: baro})
+	}
+	return ds, nil
+}

@@ -1,0 +1,521 @@
+package isotp
+
+import (
+	"context"
+	"errors"
+	"fmt"
+	"sync"
+	"sync/atomic"
+	"time"
+
+	"github.com/plenum-engine/plenum/drivers/can"
+)
+
+// Clock supplies time to a Conn, so tests can inject their own.
+type Clock interface {
+	Now() time.Time
+	After(d time.Duration) <-chan time.Time
+}
+
+type systemClock struct{}
+
+func (systemClock) Now() time.Time                         { return time.Now() }
+func (systemClock) After(d time.Duration) <-chan time.Time { return time.After(d) }
+
+// PadMode selects how frames shorter than 8 bytes are sent.
+type PadMode uint8
+
+const (
+	// PadDefault pads every frame to DLC 8 with DefaultPadding (0xCC).
+	PadDefault PadMode = iota
+	// PadWith pads every frame to DLC 8 with Config.PadValue.
+	PadWith
+	// PadNone sends frames with the shortest DLC (DLC optimisation).
+	PadNone
+)
+
+// Config configures a Conn. TxID and RxID form the primary link: Send
+// transmits on TxID and the peer answers (messages and FC) on RxID. Accept
+// adds more responders, for functional requests answered by several ECUs.
+type Config struct {
+	// TxID is the CAN ID Send transmits on; FC for messages received on RxID goes here too.
+	TxID uint32
+	// RxID is the CAN ID the peer sends on.
+	RxID uint32
+	// Extended selects 29-bit identifiers for every ID of this Conn.
+	Extended bool
+	// Accept, when set, accepts messages from further CAN IDs: it returns the
+	// ID to send flow control on for a message arriving on rxID, and false to
+	// ignore rxID. A multi-frame SendTo(txID) accepts FC from any rxID that
+	// Accept maps to txID.
+	Accept func(rxID uint32) (fcTxID uint32, ok bool)
+
+	// BlockSize and STmin are announced in our FC frames when receiving.
+	BlockSize uint8
+	STmin     time.Duration
+	// MaxLength is the longest message accepted (default 4095).
+	MaxLength uint32
+	// MaxWaits is how many consecutive FC Wait frames a send accepts before
+	// it fails with ErrWaitLimit (default 10: Plenum's choice, ISO 15765-2
+	// leaves N_WFTmax to the system, from memory).
+	MaxWaits int
+
+	// NBs is how long a send waits for each FC; NCr how long a receive waits
+	// for the next CF. Defaults: GenericNBs, GenericNCr (1000 ms); use
+	// OBDNBs/OBDNCr on an ISO 15765-4 OBD bus.
+	NBs, NCr time.Duration
+
+	// Padding and PadValue select frame padding (default 0xCC to DLC 8).
+	// Received padding is never checked.
+	Padding  PadMode
+	PadValue byte
+	// StrictDLC ignores received frames whose DLC is not 8.
+	StrictDLC bool
+
+	// Clock supplies time for STmin and timeouts (default the wall clock).
+	Clock Clock
+	// Queue is the number of completed messages buffered for Receive
+	// (default 64); when full, the oldest is dropped and counted.
+	Queue int
+}
+
+// Message is one received ISO-TP message and the CAN ID it came from.
+type Message struct {
+	ID      uint32
+	Payload []byte
+}
+
+// Stats counts what a Conn saw.
+type Stats struct {
+	FramesIn, FramesOut uint64
+	MessagesIn          uint64
+	MessagesOut         uint64
+	Ignored             uint64 // frames ignored (ErrIgnored) from accepted IDs
+	Aborted             uint64 // receptions aborted: wrong SN, short CF, N_Cr timeout, interrupted, too long
+	Dropped             uint64 // completed messages dropped because Receive was not keeping up
+}
+
+// Conn is an ISO-TP endpoint over a can.Bus. It reads the bus in its own
+// goroutine from NewConn until Close; it must be the bus's only reader.
+//
+// Concurrency: Send/SendTo calls are serialised (one message in flight at a
+// time); Receive may run concurrently with them.
+type Conn struct {
+	bus   can.Bus
+	cfg   Config
+	clock Clock
+	stmin byte
+
+	ctx    context.Context
+	cancel context.CancelFunc
+	wg     sync.WaitGroup
+
+	sendMu sync.Mutex
+	fcWant atomic.Int64 // tx ID whose FC the current send waits for, or -1
+	fcCh   chan FlowControl
+
+	results chan result
+	stats   struct {
+		framesIn, framesOut, msgsIn, msgsOut, ignored, aborted, dropped atomic.Uint64
+	}
+}
+
+type result struct {
+	m   Message
+	err error
+}
+
+type peerRx struct {
+	r    *Receiver
+	fcTx uint32
+	last time.Time
+}
+
+// NewConn validates cfg and starts reading bus.
+func NewConn(bus can.Bus, cfg Config) (*Conn, error) {
+	limit := can.MaxStandardID
+	if cfg.Extended {
+		limit = can.MaxExtendedID
+	}
+	if cfg.TxID > limit || cfg.RxID > limit {
+		return nil, fmt.Errorf("isotp: config TxID 0x%X / RxID 0x%X exceed 0x%X", cfg.TxID, cfg.RxID, limit)
+	}
+	if cfg.TxID == cfg.RxID {
+		return nil, fmt.Errorf("isotp: config TxID and RxID are both 0x%X", cfg.TxID)
+	}
+	stmin, err := EncodeSTmin(cfg.STmin)
+	if err != nil {
+		return nil, fmt.Errorf("isotp: config STmin: %w", err)
+	}
+	if cfg.Padding > PadNone {
+		return nil, fmt.Errorf("isotp: config Padding %d unknown", cfg.Padding)
+	}
+	if cfg.MaxWaits < 0 || cfg.NBs < 0 || cfg.NCr < 0 || cfg.Queue < 0 {
+		return nil, errors.New("isotp: config MaxWaits, NBs, NCr and Queue must not be negative")
+	}
+	if cfg.MaxLength == 0 {
+		cfg.MaxLength = Max12BitLength
+	}
+	if cfg.MaxWaits == 0 {
+		cfg.MaxWaits = 10
+	}
+	if cfg.NBs == 0 {
+		cfg.NBs = GenericNBs
+	}
+	if cfg.NCr == 0 {
+		cfg.NCr = GenericNCr
+	}
+	if cfg.Queue == 0 {
+		cfg.Queue = 64
+	}
+	if cfg.Clock == nil {
+		cfg.Clock = systemClock{}
+	}
+	c := &Conn{
+		bus: bus, cfg: cfg, clock: cfg.Clock, stmin: stmin,
+		fcCh:    make(chan FlowControl, 4),
+		results: make(chan result, cfg.Queue),
+	}
+	c.fcWant.Store(-1)
+	c.ctx, c.cancel = context.WithCancel(context.Background())
+	frames := make(chan can.Frame, 64)
+	busErr := make(chan error, 1)
+	c.wg.Add(2)
+	go c.read(frames, busErr)
+	go c.engine(frames, busErr)
+	return c, nil
+}
+
+// Stats returns a snapshot of the counters.
+func (c *Conn) Stats() Stats {
+	return Stats{
+		FramesIn: c.stats.framesIn.Load(), FramesOut: c.stats.framesOut.Load(),
+		MessagesIn: c.stats.msgsIn.Load(), MessagesOut: c.stats.msgsOut.Load(),
+		Ignored: c.stats.ignored.Load(), Aborted: c.stats.aborted.Load(), Dropped: c.stats.dropped.Load(),
+	}
+}
+
+// Close stops the Conn's goroutines; it does not close the bus. Blocked and
+// later calls return ErrClosed.
+func (c *Conn) Close() error {
+	c.cancel()
+	c.wg.Wait()
+	return nil
+}
+
+// Receive returns the next message from the peer or any accepted responder,
+// or an error for a reception that failed (ErrWrongSN, ErrTimeout,
+// ErrShortFrame, ErrInterrupted, ErrTooLong, or a bus error); later
+// messages still arrive after an error. The payload belongs to the caller.
+func (c *Conn) Receive(ctx context.Context) (Message, error) {
+	select {
+	case r := <-c.results:
+		return r.m, r.err
+	case <-ctx.Done():
+		return Message{}, ctx.Err()
+	case <-c.ctx.Done():
+		return Message{}, ErrClosed
+	}
+}
+
+// Send transmits payload to the primary peer (on TxID).
+func (c *Conn) Send(ctx context.Context, payload []byte) error {
+	return c.SendTo(ctx, c.cfg.TxID, payload)
+}
+
+// SendTo transmits payload as one ISO-TP message on CAN ID txID. Up to 7
+// bytes go as a single frame (the only kind a functional request may use);
+// longer payloads go as FF and CFs, paced by the FC frames of the peer that
+// answers on RxID (for txID == TxID) or on an ID Accept maps to txID.
+// It returns once the last frame was handed to the bus.
+func (c *Conn) SendTo(ctx context.Context, txID uint32, payload []byte) error {
+	n := len(payload)
+	if n == 0 {
+		return errors.New("isotp: send: empty payload")
+	}
+	if uint64(n) > MaxLength {
+		return fmt.Errorf("isotp: send: payload of %d bytes exceeds %d", n, uint64(MaxLength))
+	}
+	c.sendMu.Lock()
+	defer c.sendMu.Unlock()
+	if c.ctx.Err() != nil {
+		return ErrClosed
+	}
+	ctx, stop := c.joinCtx(ctx)
+	defer stop()
+	if n <= MaxSingleFrame {
+		var d [8]byte
+		d[0] = byte(n)
+		copy(d[1:], payload)
+		if err := c.put(ctx, txID, d[:], 1+n); err != nil {
+			return err
+		}
+		c.stats.msgsOut.Add(1)
+		return nil
+	}
+	// Drain stale FC, then announce which FC we wait for.
+	for len(c.fcCh) > 0 {
+		<-c.fcCh
+	}
+	c.fcWant.Store(int64(txID))
+	defer c.fcWant.Store(-1)
+
+	var d [8]byte
+	var off int
+	if n <= Max12BitLength {
+		d[0], d[1] = pciFF<<4|byte(n>>8), byte(n)
+		off = copy(d[2:], payload)
+	} else {
+		d[0], d[1] = pciFF<<4, 0
+		d[2], d[3], d[4], d[5] = byte(n>>24), byte(n>>16), byte(n>>8), byte(n)
+		off = copy(d[6:], payload)
+	}
+	if err := c.put(ctx, txID, d[:], 8); err != nil {
+		return err
+	}
+	sn := byte(1)
+	for off < n {
+		fc, err := c.awaitCTS(ctx, txID)
+		if err != nil {
+			return err
+		}
+		gap := DecodeSTmin(fc.STmin)
+		for sent := 0; off < n && (fc.BlockSize == 0 || sent < int(fc.BlockSize)); sent++ {
+			if sent > 0 && gap > 0 {
+				select {
+				case <-c.clock.After(gap):
+				case <-ctx.Done():
+					return c.ctxErr(ctx)
+				}
+			}
+			d = [8]byte{pciCF<<4 | sn}
+			k := copy(d[1:], payload[off:])
+			if err := c.put(ctx, txID, d[:], 1+k); err != nil {
+				return err
+			}
+			off += k
+			sn = (sn + 1) & 0xF
+		}
+	}
+	c.stats.msgsOut.Add(1)
+	return nil
+}
+
+// awaitCTS waits for a ContinueToSend FC, following Wait frames.
+func (c *Conn) awaitCTS(ctx context.Context, txID uint32) (FlowControl, error) {
+	waits := 0
+	for {
+		select {
+		case fc := <-c.fcCh:
+			switch fc.Status {
+			case ContinueToSend:
+				return fc, nil
+			case Wait:
+				waits++
+				if waits > c.cfg.MaxWaits {
+					return fc, fmt.Errorf("isotp: send on %X: %d FC Wait frames, limit %d: %w", txID, waits, c.cfg.MaxWaits, ErrWaitLimit)
+				}
+			case Overflow:
+				return fc, fmt.Errorf("isotp: send on %X: %w", txID, ErrOverflow)
+			default:
+				return fc, fmt.Errorf("isotp: send on %X: FS %d: %w", txID, fc.Status, ErrInvalidFS)
+			}
+		case <-c.clock.After(c.cfg.NBs):
+			return FlowControl{}, fmt.Errorf("isotp: send on %X: no FC within N_Bs %v: %w", txID, c.cfg.NBs, ErrTimeout)
+		case <-ctx.Done():
+			return FlowControl{}, c.ctxErr(ctx)
+		}
+	}
+}
+
+// joinCtx returns a context cancelled by ctx or by Close.
+func (c *Conn) joinCtx(ctx context.Context) (context.Context, func()) {
+	ctx, cancel := context.WithCancel(ctx)
+	stop := context.AfterFunc(c.ctx, cancel)
+	return ctx, func() { stop(); cancel() }
+}
+
+func (c *Conn) ctxErr(ctx context.Context) error {
+	if c.ctx.Err() != nil {
+		return ErrClosed
+	}
+	return ctx.Err()
+}
+
+// put sends data[:n] on id, padded as configured.
+func (c *Conn) put(ctx context.Context, id uint32, data []byte, n int) error {
+	f := can.Frame{ID: id, Extended: c.cfg.Extended, DLC: uint8(n)}
+	copy(f.Data[:n], data[:n])
+	if c.cfg.Padding != PadNone {
+		pad := DefaultPadding
+		if c.cfg.Padding == PadWith {
+			pad = c.cfg.PadValue
+		}
+		for i := n; i < 8; i++ {
+			f.Data[i] = pad
+		}
+		f.DLC = 8
+	}
+	if err := c.bus.Send(ctx, f); err != nil {
+		if c.ctx.Err() != nil {
+			return ErrClosed
+		}
+		return fmt.Errorf("isotp: send frame %v: %w", f, err)
+	}
+	c.stats.framesOut.Add(1)
+	return nil
+}
+
+func (c *Conn) read(frames chan<- can.Frame, busErr chan<- error) {
+	defer c.wg.Done()
+	for {
+		f, err := c.bus.Receive(c.ctx)
+		if err != nil {
+			if c.ctx.Err() != nil {
+				return
+			}
+			if errors.Is(err, can.ErrClosed) {
+				busErr <- err
+				return
+			}
+			c.deliver(result{err: fmt.Errorf("isotp: bus receive: %w", err)})
+			select { // back off before retrying a failing bus
+			case <-c.clock.After(10 * time.Millisecond):
+			case <-c.ctx.Done():
+				return
+			}
+			continue
+		}
+		select {
+		case frames <- f:
+		case <-c.ctx.Done():
+			return
+		}
+	}
+}
+
+func (c *Conn) accept(id uint32) (uint32, bool) {
+	if id == c.cfg.RxID {
+		return c.cfg.TxID, true
+	}
+	if c.cfg.Accept != nil {
+		return c.cfg.Accept(id)
+	}
+	return 0, false
+}
+
+func (c *Conn) engine(frames <-chan can.Frame, busErr <-chan error) {
+	defer c.wg.Done()
+	peers := make(map[uint32]*peerRx)
+	var timer <-chan time.Time
+	for {
+		select {
+		case <-c.ctx.Done():
+			return
+		case err := <-busErr:
+			c.deliver(result{err: fmt.Errorf("isotp: bus: %w", err)})
+			return
+		case <-timer:
+			timer = nil
+			now := c.clock.Now()
+			var next time.Duration
+			for id, p := range peers {
+				if !p.r.Busy() {
+					continue
+				}
+				if left := c.cfg.NCr - now.Sub(p.last); left > 0 {
+					if next == 0 || left < next {
+						next = left
+					}
+					continue
+				}
+				got := len(p.r.Message())
+				p.r.Reset()
+				c.stats.aborted.Add(1)
+				c.deliver(result{m: Message{ID: id}, err: fmt.Errorf("isotp: receive from %X: no CF within N_Cr %v after %d bytes: %w", id, c.cfg.NCr, got, ErrTimeout)})
+			}
+			if next > 0 {
+				timer = c.clock.After(next)
+			}
+		case f := <-frames:
+			c.stats.framesIn.Add(1)
+			if f.Extended != c.cfg.Extended || f.Remote {
+				continue
+			}
+			fcTx, ok := c.accept(f.ID)
+			if !ok {
+				continue
+			}
+			if f.DLC > 0 && f.Data[0]>>4 == pciFC {
+				c.flowControl(f, fcTx)
+				continue
+			}
+			p := peers[f.ID]
+			if p == nil {
+				p = &peerRx{r: NewReceiver(ReceiverConfig{BlockSize: c.cfg.BlockSize, STmin: c.stmin, MaxLength: c.cfg.MaxLength, StrictDLC: c.cfg.StrictDLC}), fcTx: fcTx}
+				peers[f.ID] = p
+			}
+			act, err := p.r.Feed(f)
+			if err != nil {
+				if errors.Is(err, ErrIgnored) {
+					c.stats.ignored.Add(1)
+				} else {
+					c.stats.aborted.Add(1)
+					c.deliver(result{m: Message{ID: f.ID}, err: fmt.Errorf("isotp: receive from %X: %w", f.ID, err)})
+				}
+			}
+			switch act {
+			case ActionFlowControl:
+				fc := p.r.FlowControl()
+				d := [3]byte{pciFC<<4 | byte(fc.Status), fc.BlockSize, fc.STmin}
+				if err := c.put(c.ctx, p.fcTx, d[:], 3); err != nil && c.ctx.Err() == nil {
+					p.r.Reset()
+					c.stats.aborted.Add(1)
+					c.deliver(result{m: Message{ID: f.ID}, err: fmt.Errorf("isotp: receive from %X: flow control: %w", f.ID, err)})
+				}
+			case ActionComplete:
+				c.stats.msgsIn.Add(1)
+				c.deliver(result{m: Message{ID: f.ID, Payload: append([]byte(nil), p.r.Message()...)}})
+			}
+			if p.r.Busy() {
+				p.last = c.clock.Now()
+				if timer == nil {
+					timer = c.clock.After(c.cfg.NCr)
+				}
+			}
+		}
+	}
+}
+
+func (c *Conn) flowControl(f can.Frame, fcTx uint32) {
+	fc, err := parseFlowControl(f.Data[:f.DLC])
+	if err != nil && !errors.Is(err, ErrInvalidFS) {
+		c.stats.ignored.Add(1)
+		return
+	}
+	if c.fcWant.Load() != int64(fcTx) {
+		c.stats.ignored.Add(1)
+		return
+	}
+	select {
+	case c.fcCh <- fc:
+	default:
+		c.stats.ignored.Add(1)
+	}
+}
+
+// deliver queues r for Receive, dropping the oldest result when full.
+func (c *Conn) deliver(r result) {
+	for {
+		select {
+		case c.results <- r:
+			return
+		default:
+		}
+		select {
+		case <-c.results:
+			c.stats.dropped.Add(1)
+		default:
+		}
+	}
+}
