@@ -120,7 +120,7 @@ func buildTable() *table {
 	// All formulas: SAE J1979 / ISO 15031-5 Service $01 scalings as listed in
 	// reference-facts §1.1 (cross-checked against [WP-PIDs] and, for C*
 	// rows, the Scapy OBD PID definitions), converted to canonical units.
-	for p := PID(0x00); p <= 0xE0; p += 0x20 { // supported-PID bitmaps
+	for p := 0x00; p <= 0xE0; p += 0x20 { // supported-PID bitmaps
 		t.pids[p] = pidSpec{known: true, bitmap: true, length: 4}
 	}
 	// 01: monitor status: A7 = MIL, A6..A0 = confirmed DTC count (C* Scapy).

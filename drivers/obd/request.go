@@ -25,7 +25,7 @@ const (
 )
 
 // MaxPIDsPerRequest is the most PIDs one service 01 request may carry on
-// ISO 15765-4 (reference-facts §1.2, M for SAE J1979 / ISO 15031-5).
+// ISO 15765-4 (SAE J1979 / ISO 15031-5, from memory: no citable text read).
 const MaxPIDsPerRequest = 6
 
 // ErrZeroRequest is returned when the zero Request, built by no constructor, is encoded.
@@ -97,7 +97,7 @@ func (r Request) NumPIDs() int {
 // PID returns the i-th PID of a service 01 request, or the PID of a service 02
 // or 09 request when i is 0.
 func (r Request) PID(i int) PID {
-	if i < 0 || i >= int(r.n) {
+	if i < 0 || i >= int(r.n) || r.svc == svcReadDataByIdent {
 		return 0
 	}
 	return PID(r.arg[i])

@@ -8,7 +8,7 @@ import (
 // NRC is an ISO 14229-1 negative response code.
 type NRC uint8
 
-// Negative response codes (ISO 14229-1:2013 NRC table, reference-facts §1.5).
+// Negative response codes (ISO 14229-1:2013 NRC table).
 const (
 	NRCGeneralReject                           NRC = 0x10
 	NRCServiceNotSupported                     NRC = 0x11
@@ -255,7 +255,7 @@ func DecodeDTCs(data []byte, fn func(DTC)) error {
 const VINLength = 17
 
 // DecodeVIN decodes service 09 InfoType 02 response data (after the 0x49):
-// `02 01` then 17 ASCII characters (reference-facts §1.3). Characters must be
+// `02 01` then 17 ASCII characters (SAE J1979 service 09). Characters must be
 // digits or capital letters other than I, O and Q (ISO 3779, from memory).
 func DecodeVIN(data []byte) (string, error) {
 	if len(data) != 2+VINLength {
