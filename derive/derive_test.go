@@ -92,8 +92,8 @@ func TestFuelsAndFlow(t *testing.T) {
 	}{
 		{"gasoline", 14.7}, // common value; Heywood App. D: 14.6 for CH1.87
 		{"diesel", 14.5},
-		{"e100", 9.0},  // C2H5OH: 3 O2 per mole → 3·4.76·28.97/46.07 = 8.98
-		{"cng", 17.2},  // CH4: 2·4.76·28.97/16.04 = 17.19
+		{"e100", 9.0}, // C2H5OH: 3 O2 per mole → 3·4.76·28.97/46.07 = 8.98
+		{"cng", 17.2}, // CH4: 2·4.76·28.97/16.04 = 17.19
 		{"methanol", 6.47},
 	}
 	for _, c := range cases {

@@ -161,6 +161,7 @@ type Error struct {
 	Msg   string
 }
 
+// Error formats the error as file:line: field: message.
 func (e *Error) Error() string {
 	var b strings.Builder
 	b.WriteString(e.File)
@@ -177,6 +178,7 @@ func (e *Error) Error() string {
 // Errors is every problem found in one file.
 type Errors []*Error
 
+// Error joins the errors, one per line.
 func (es Errors) Error() string {
 	var s []string
 	for _, e := range es {
