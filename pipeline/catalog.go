@@ -21,7 +21,7 @@ var standard = map[string]Channel{
 	"coolant_temp":               {Quantity: "temperature", Unit: Celsius, Sensor: "coolant", Min: -40, Max: 150},
 	"oil_temp":                   {Quantity: "temperature", Unit: Celsius, Sensor: "oil", Min: -40, Max: 180},
 	"exhaust_temp":               {Quantity: "temperature", Unit: Celsius, Sensor: "exhaust", Min: -40, Max: 1200},
-	"oil_pressure":               {Quantity: "gauge_pressure", Unit: Pascal, Sensor: "oil", Min: -10000, Max: 1200000},
+	"oil_pressure":               {Quantity: "relative_pressure", Unit: Pascal, Sensor: "oil", Min: -10000, Max: 1200000},
 	"wideband_voltage":           {Quantity: "voltage", Unit: Volts, Sensor: "wideband", Min: -0.1, Max: 5.2},
 	"dyno_torque":                {Quantity: "torque", Unit: NewtonMetres, Sensor: "dyno", Min: -2000, Max: 5000},
 	"gear":                       {Quantity: "gear", Unit: None, Sensor: "gearbox", Min: -1, Max: 10},

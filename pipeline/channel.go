@@ -11,7 +11,8 @@ import (
 // conversion to kPa, bar, psi or °F happens only at the publishing edges.
 type Unit string
 
-// Canonical units.
+// Canonical units. Mass flow is in grams per second, the Prometheus base
+// unit of mass; everything else is SI.
 const (
 	Pascal          Unit = "pascals"
 	Celsius         Unit = "celsius"

@@ -162,22 +162,22 @@ func TestDemoEndToEnd(t *testing.T) {
 	for time.Now().Before(deadline) {
 		fams, _ := scrape(t, httpAddr)
 		for _, k := range []struct{ name, sensor string }{
-			{"plenum_mass_flow_kilograms_per_second", "speed_density"},
-			{"plenum_pressure_pascals", "boost"},
+			{"plenum_mass_flow_grams_per_second", "speed_density"},
+			{"plenum_relative_pressure_pascals", "boost"},
 			{"plenum_lambda_ratio", "wideband"},
 		} {
 			if v, ok := gauge(fams, k.name, k.sensor); ok {
 				seen[k.name] = append(seen[k.name], v)
 			}
 		}
-		if spans(seen["plenum_mass_flow_kilograms_per_second"], 0.03) && spans(seen["plenum_pressure_pascals"], 60000) && spans(seen["plenum_lambda_ratio"], 0.1) {
+		if spans(seen["plenum_mass_flow_grams_per_second"], 30) && spans(seen["plenum_relative_pressure_pascals"], 60000) && spans(seen["plenum_lambda_ratio"], 0.1) {
 			break
 		}
 		time.Sleep(250 * time.Millisecond)
 	}
 	// Idle to a pull: air mass flow from a few g/s to over 30 g/s more, boost
 	// from manifold vacuum to over 60 kPa more, lambda from 1 to rich.
-	for n, span := range map[string]float64{"plenum_mass_flow_kilograms_per_second": 0.03, "plenum_pressure_pascals": 60000, "plenum_lambda_ratio": 0.1} {
+	for n, span := range map[string]float64{"plenum_mass_flow_grams_per_second": 30, "plenum_relative_pressure_pascals": 60000, "plenum_lambda_ratio": 0.1} {
 		if !spans(seen[n], span) {
 			t.Errorf("%s did not change by %g as the drive cycle ran: %v", n, span, seen[n])
 		}

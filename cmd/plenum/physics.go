@@ -26,7 +26,7 @@ func (d *airflow) Inputs() []pipeline.Input {
 }
 func (d *airflow) Outputs() []pipeline.Channel {
 	return []pipeline.Channel{
-		{Name: "air_mass_flow", Quantity: "mass_flow", Unit: pipeline.KilogramsPerSec, Sensor: "speed_density", Min: 0, Max: 5},
+		{Name: "air_mass_flow", Quantity: "mass_flow", Unit: pipeline.GramsPerSec, Sensor: "speed_density", Min: 0, Max: 5000},
 		{Name: "volumetric_efficiency", Quantity: "volumetric_efficiency", Unit: pipeline.Ratio, Sensor: "model"},
 	}
 }
@@ -35,7 +35,7 @@ func (d *airflow) Derive(_ time.Time, in, out []float64) uint64 {
 	if d.table != nil {
 		ve = d.table.At(in[2], in[0])
 	}
-	out[0] = derive.SpeedDensity(in[0], in[1], in[2], d.displacement, ve)
+	out[0] = derive.SpeedDensity(in[0], in[1], in[2], d.displacement, ve) * 1000 // g/s, the Prometheus base unit
 	out[1] = ve
 	return 0b11
 }
@@ -50,7 +50,7 @@ func (d *boost) Inputs() []pipeline.Input {
 }
 func (d *boost) Outputs() []pipeline.Channel {
 	return []pipeline.Channel{
-		{Name: "boost_pressure", Quantity: "pressure", Unit: pipeline.Pascal, Sensor: "boost", Min: -110000, Max: 500000},
+		{Name: "boost_pressure", Quantity: "relative_pressure", Unit: pipeline.Pascal, Sensor: "boost", Min: -110000, Max: 500000},
 		{Name: "manifold_pressure_ratio", Quantity: "pressure_ratio", Unit: pipeline.Ratio, Sensor: "manifold_to_ambient"},
 	}
 }
@@ -86,7 +86,8 @@ func (d *mixture) Derive(_ time.Time, in, out []float64) uint64 {
 	return 0b11
 }
 
-// fuelFlow computes fuel mass and volume flow from air mass flow and λ.
+// fuelFlow computes fuel mass flow (g/s) and volume flow (m³/s) from air
+// mass flow (g/s) and λ.
 type fuelFlow struct{ fuel derive.Fuel }
 
 func (d *fuelFlow) Name() string { return "fuel_flow" }
@@ -95,13 +96,13 @@ func (d *fuelFlow) Inputs() []pipeline.Input {
 }
 func (d *fuelFlow) Outputs() []pipeline.Channel {
 	return []pipeline.Channel{
-		{Name: "fuel_mass_flow", Quantity: "mass_flow", Unit: pipeline.KilogramsPerSec, Sensor: "fuel"},
+		{Name: "fuel_mass_flow", Quantity: "mass_flow", Unit: pipeline.GramsPerSec, Sensor: "fuel"},
 		{Name: "fuel_volume_flow", Quantity: "volume_flow", Unit: pipeline.CubicMetresPerS, Sensor: "fuel"},
 	}
 }
 func (d *fuelFlow) Derive(_ time.Time, in, out []float64) uint64 {
-	out[0] = derive.FuelMassFlow(in[0], in[1], d.fuel.Stoich)
-	out[1] = derive.FuelVolumeFlow(out[0], d.fuel.Density)
+	out[0] = derive.FuelMassFlow(in[0], in[1], d.fuel.Stoich) // g/s in, g/s out
+	out[1] = derive.FuelVolumeFlow(out[0]/1000, d.fuel.Density)
 	return 0b11
 }
 

@@ -138,7 +138,7 @@ func buildTable() *table {
 	t.add(0x0D, 1, u8("ecu_vehicle_speed", "speed", pipeline.MetresPerSecond, 0, 1/3.6, 0))
 	t.add(0x0E, 1, u8("ecu_timing_advance", "angle", pipeline.Degrees, 0, 0.5, -64)) // A/2 − 64 ° BTDC
 	t.add(0x0F, 1, u8("ecu_intake_air_temperature", "temperature", degC, 0, 1, -40))
-	t.add(0x10, 2, u16("ecu_mass_air_flow", "mass_flow", pipeline.KilogramsPerSec, 0, 0.01e-3, 0)) // (256A+B)/100 g/s
+	t.add(0x10, 2, u16("ecu_mass_air_flow", "mass_flow", pipeline.GramsPerSec, 0, 0.01, 0)) // (256A+B)/100 g/s
 	t.add(0x11, 1, u8("ecu_throttle_position", "position", ratio, 0, 1.0/255, 0))
 	t.add(0x1F, 2, u16("ecu_run_time", "time", pipeline.Seconds, 0, 1, 0))
 	t.add(0x22, 2, u16("ecu_fuel_rail_pressure_relative", "pressure", pa, 0, 79, 0)) // 0.079 kPa/bit

@@ -50,8 +50,8 @@ var pidCases = []struct {
 	{0x0E, []byte{0xFF}, map[string]float64{"ecu_timing_advance": 63.5}},
 	{0x0F, []byte{0x00}, map[string]float64{"ecu_intake_air_temperature": -40}},
 	{0x0F, []byte{0xFF}, map[string]float64{"ecu_intake_air_temperature": 215}},
-	{0x10, []byte{0x01, 0xF4}, map[string]float64{"ecu_mass_air_flow": 0.005}},
-	{0x10, []byte{0xFF, 0xFF}, map[string]float64{"ecu_mass_air_flow": 0.65535}},
+	{0x10, []byte{0x01, 0xF4}, map[string]float64{"ecu_mass_air_flow": 5}},
+	{0x10, []byte{0xFF, 0xFF}, map[string]float64{"ecu_mass_air_flow": 655.35}},
 	{0x11, []byte{0xFF}, map[string]float64{"ecu_throttle_position": 1}},
 	{0x11, []byte{0x00}, map[string]float64{"ecu_throttle_position": 0}},
 	{0x1F, []byte{0x0E, 0x10}, map[string]float64{"ecu_run_time": 3600}},
@@ -221,7 +221,7 @@ func TestO2SensorsAll(t *testing.T) {
 }
 
 func TestChannelDefinitions(t *testing.T) {
-	canonical := map[pipeline.Unit]bool{pipeline.Pascal: true, pipeline.Celsius: true, pipeline.KilogramsPerSec: true,
+	canonical := map[pipeline.Unit]bool{pipeline.Pascal: true, pipeline.Celsius: true, pipeline.GramsPerSec: true,
 		pipeline.Seconds: true, pipeline.Ratio: true, pipeline.Volts: true, pipeline.Amperes: true, pipeline.RPM: true,
 		pipeline.MetresPerSecond: true, pipeline.NewtonMetres: true, pipeline.Degrees: true, pipeline.CubicMetresPerS: true,
 		pipeline.Count: true, pipeline.None: true}
