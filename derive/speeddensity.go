@@ -1,8 +1,3 @@
-// Package derive holds Plenum's engine physics and event detectors as pure
-// code: no I/O and no clocks. Quantities are in SI-coherent units (pascals,
-// kelvin or degrees Celsius as each name says, kilograms per second, cubic
-// metres); time comes in with the samples, so the same code runs live and in
-// replay.
 package derive
 
 import (
@@ -63,8 +58,8 @@ func PressureRatio(outlet, inlet float64) float64 {
 // manifold pressure (columns, Pa), interpolated bilinearly and held at the
 // edges.
 type VETable struct {
-	Speeds    []float64
-	Pressures []float64
+	Speeds    []float64   // engine speed axis, rpm, strictly increasing
+	Pressures []float64   // manifold pressure axis, Pa, strictly increasing
 	Values    [][]float64 // Values[i][j] at Speeds[i], Pressures[j]
 }
 
@@ -105,9 +100,16 @@ func increasing(name string, axis []float64) error {
 }
 
 // At returns the interpolated volumetric efficiency at rpm and MAP (Pa).
+// A table that fails Validate's shape checks gives NaN.
 func (t *VETable) At(rpm, mapPa float64) float64 {
+	if len(t.Speeds) < 2 || len(t.Pressures) < 2 || len(t.Values) != len(t.Speeds) {
+		return math.NaN()
+	}
 	i, fi := bracket(t.Speeds, rpm)
 	j, fj := bracket(t.Pressures, mapPa)
+	if len(t.Values[i]) != len(t.Pressures) || len(t.Values[i+1]) != len(t.Pressures) {
+		return math.NaN()
+	}
 	v00, v01 := t.Values[i][j], t.Values[i][j+1]
 	v10, v11 := t.Values[i+1][j], t.Values[i+1][j+1]
 	return (v00*(1-fj)+v01*fj)*(1-fi) + (v10*(1-fj)+v11*fj)*fi

@@ -39,6 +39,9 @@ func NewTable(mv, out []float64) (Table, error) {
 	if len(mv) < 2 || len(mv) != len(out) {
 		return Table{}, fmt.Errorf("calib: table needs at least two points and one output per point (%d, %d)", len(mv), len(out))
 	}
+	if !finite(mv...) || !finite(out...) {
+		return Table{}, fmt.Errorf("calib: table has a non-finite point")
+	}
 	for i := 1; i < len(mv); i++ {
 		if !(mv[i] > mv[i-1]) {
 			return Table{}, fmt.Errorf("calib: table input %d (%g) does not increase", i, mv[i])
@@ -154,6 +157,85 @@ func (s Sensor) Validate() error {
 	}
 	if s.FaultAboveMV != 0 && s.FaultAboveMV <= s.FaultBelowMV {
 		return fmt.Errorf("calib: fault rails %g..%g mV are empty", s.FaultBelowMV, s.FaultAboveMV)
+	}
+	if s.Max < s.Min {
+		return fmt.Errorf("calib: plausible range %g..%g is empty", s.Min, s.Max)
+	}
+	if v, ok := s.Curve.(interface{ Validate() error }); ok {
+		if err := v.Validate(); err != nil {
+			return err
+		}
+	}
+	return nil
+}
+
+// FullScale returns the largest count of a converter of the given
+// resolution, 2^bits − 1: the nmax of the ratiometric divider formula
+// R = Rpu·n/(nmax − n). It is 0 for bits outside 1–31.
+func FullScale(bits int) float64 {
+	if bits < 1 || bits > 31 {
+		return 0
+	}
+	return float64(uint32(1)<<uint(bits) - 1)
+}
+
+// ApplyCounts calibrates a reading in raw ADC counts.
+func (s *Sensor) ApplyCounts(counts float64) (float64, pipeline.Quality) {
+	return s.Apply(s.CountsToMV(counts))
+}
+
+func finite(vs ...float64) bool {
+	for _, v := range vs {
+		if math.IsNaN(v) || math.IsInf(v, 0) {
+			return false
+		}
+	}
+	return true
+}
+
+// Validate rejects a line through two points at the same input.
+func (l Linear) Validate() error {
+	if !finite(l.MV0, l.Out0, l.MV1, l.Out1) {
+		return fmt.Errorf("calib: linear: non-finite point")
+	}
+	if l.MV0 == l.MV1 {
+		return fmt.Errorf("calib: linear: both points at %g mV", l.MV0)
+	}
+	return nil
+}
+
+// Validate checks the table as NewTable does.
+func (t Table) Validate() error {
+	_, err := NewTable(t.MV, t.Out)
+	return err
+}
+
+// Validate checks the pull-up and the reference.
+func (d Divider) Validate() error {
+	if !(d.PullupOhm > 0) || !(d.RefMV > 0) || !finite(d.PullupOhm, d.RefMV) {
+		return fmt.Errorf("calib: divider: pull-up %g Ω and reference %g mV must be positive", d.PullupOhm, d.RefMV)
+	}
+	return nil
+}
+
+// Validate checks the divider and the Beta parameters.
+func (n NTCBeta) Validate() error {
+	if err := n.Divider.Validate(); err != nil {
+		return err
+	}
+	if !(n.R0Ohm > 0) || !(n.Beta > 0) || !(n.T0C > -273.15) || !finite(n.R0Ohm, n.Beta, n.T0C) {
+		return fmt.Errorf("calib: ntc beta: R0 %g Ω, T0 %g °C, B %g K out of range", n.R0Ohm, n.T0C, n.Beta)
+	}
+	return nil
+}
+
+// Validate checks the divider and the coefficients.
+func (n NTCSteinhartHart) Validate() error {
+	if err := n.Divider.Validate(); err != nil {
+		return err
+	}
+	if !finite(n.A, n.B, n.C) || !(n.B > 0) {
+		return fmt.Errorf("calib: ntc steinhart-hart: coefficients %g, %g, %g: need finite values and B > 0", n.A, n.B, n.C)
 	}
 	return nil
 }

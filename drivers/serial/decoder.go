@@ -22,27 +22,80 @@ const (
 // Input maps one reading to a calibrated channel.
 type Input struct {
 	Key     string // framed: the reading's key, e.g. "a0"
-	Column  int    // delimited: 1-based column; values are millivolts
+	Column  int    // delimited: 1-based column; values are millivolts unless Counts
+	Counts  bool   // delimited: the column holds raw ADC counts
 	Channel pipeline.ChannelID
 	Sensor  calib.Sensor
 }
 
-// Sink takes the decoded samples.
+// Sink takes the decoded samples. Put is called from the driver's goroutine
+// and must not block for long; its result is ignored (a sink that drops a
+// sample counts that itself).
 type Sink interface {
 	Put(pipeline.Sample) bool
 }
 
-// Counters are the decoder's health counters, shared with a pipeline.Health.
+// Counters are a source's health counters, shared with a pipeline.Health so
+// that they are exported with the other sources' metrics. All are updated
+// atomically; read them together with Snapshot.
 type Counters struct {
 	Frames, BadChecksum, Truncated, Malformed, UnknownField, OutOfRange, SensorFault, SeqGaps, Overlong *atomic.Uint64
+	// DroppedFrames is the number of frames missing in sequence gaps.
+	DroppedFrames *atomic.Uint64
+	// Reanchors counts re-anchorings of the device clock (reset, wrap, stall).
+	Reanchors *atomic.Uint64
+	// ReadErrors and Reopens are kept by the Driver.
+	ReadErrors, Reopens *atomic.Uint64
 }
 
-// NewCounters takes the counters from h.
+// NewCounters takes the counters from h, under the names listed in PROTOCOL.md.
 func NewCounters(h *pipeline.Health) Counters {
 	return Counters{
 		Frames: h.Counter("frames"), BadChecksum: h.Counter("bad_checksums"), Truncated: h.Counter("truncated_lines"),
 		Malformed: h.Counter("malformed_lines"), UnknownField: h.Counter("unknown_fields"), OutOfRange: h.Counter("out_of_range_readings"),
 		SensorFault: h.Counter("sensor_faults"), SeqGaps: h.Counter("sequence_gaps"), Overlong: h.Counter("overlong_lines"),
+		DroppedFrames: h.Counter("dropped_frames"), Reanchors: h.Counter("clock_reanchors"),
+		ReadErrors: h.Counter("read_errors"), Reopens: h.Counter("reopens"),
+	}
+}
+
+// fill gives every nil counter a private one, so that a partly built
+// Counters value never makes the hot path dereference nil.
+func (c *Counters) fill() {
+	for _, p := range []**atomic.Uint64{&c.Frames, &c.BadChecksum, &c.Truncated, &c.Malformed, &c.UnknownField,
+		&c.OutOfRange, &c.SensorFault, &c.SeqGaps, &c.Overlong, &c.DroppedFrames, &c.Reanchors, &c.ReadErrors, &c.Reopens} {
+		if *p == nil {
+			*p = new(atomic.Uint64)
+		}
+	}
+}
+
+// Stats is a snapshot of a source's counters.
+type Stats struct {
+	Up            bool   // a good frame arrived within the last second and the port is open
+	Frames        uint64 // lines decoded (framed: checksum and syntax good)
+	BadChecksum   uint64 // framed lines whose CRC did not match
+	Truncated     uint64 // lines without a complete *crc trailer or header
+	Malformed     uint64 // other unparsable lines (version, syntax, number, key)
+	UnknownField  uint64 // readings whose key no input maps
+	OutOfRange    uint64 // readings outside the plausible range (pipeline.OutOfRange)
+	SensorFault   uint64 // readings outside the fault rails (pipeline.SensorFault)
+	SeqGaps       uint64 // jumps in the sequence number
+	DroppedFrames uint64 // frames missing in those jumps
+	Overlong      uint64 // lines longer than MaxLine, discarded
+	Reanchors     uint64 // device clock re-anchorings
+	ReadErrors    uint64 // failed reads (the device vanished)
+	Reopens       uint64 // successful opens after the first
+}
+
+// Snapshot reads every counter (each atomically; the set is not one instant).
+func (c Counters) Snapshot() Stats {
+	c.fill()
+	return Stats{
+		Frames: c.Frames.Load(), BadChecksum: c.BadChecksum.Load(), Truncated: c.Truncated.Load(), Malformed: c.Malformed.Load(),
+		UnknownField: c.UnknownField.Load(), OutOfRange: c.OutOfRange.Load(), SensorFault: c.SensorFault.Load(),
+		SeqGaps: c.SeqGaps.Load(), DroppedFrames: c.DroppedFrames.Load(), Overlong: c.Overlong.Load(),
+		Reanchors: c.Reanchors.Load(), ReadErrors: c.ReadErrors.Load(), Reopens: c.Reopens.Load(),
 	}
 }
 
@@ -57,6 +110,7 @@ type Decoder struct {
 	c        Counters
 	frame    Frame
 	nums     [MaxReadings]float64
+	order    [MaxReadings]int16 // input index + 1 last seen at each reading position
 	haveSeq  bool
 	lastSeq  uint32
 	anchor   time.Time // host time of device millisecond 0
@@ -65,6 +119,11 @@ type Decoder struct {
 
 // NewDecoder checks the inputs and returns a decoder writing to sink.
 func NewDecoder(format Format, sep byte, inputs []Input, sink Sink, c Counters) (*Decoder, error) {
+	if sink == nil {
+		return nil, errors.New("serial: nil sink")
+	}
+	c.fill()
+	inputs = append([]Input(nil), inputs...)
 	d := &Decoder{format: format, sep: sep, inputs: inputs, byKey: map[string]int{}, sink: sink, c: c}
 	for i, in := range inputs {
 		if err := in.Sensor.Validate(); err != nil {
@@ -101,6 +160,9 @@ func NewDecoder(format Format, sep byte, inputs []Input, sink Sink, c Counters) 
 // Reset forgets the sequence and clock state, as after a reopen.
 func (d *Decoder) Reset() { d.haveSeq, d.anchored = false, false }
 
+// Counters returns the decoder's counters.
+func (d *Decoder) Counters() Counters { return d.c }
+
 // Line decodes one line received at host time now. Readings already decoded
 // from a line are kept even when a later field of it is unknown.
 func (d *Decoder) Line(line []byte, now time.Time) error {
@@ -117,7 +179,7 @@ func (d *Decoder) Line(line []byte, now time.Time) error {
 		d.c.Frames.Add(1)
 		for i := 0; i < n && i < len(d.byCol); i++ {
 			if j := d.byCol[i]; j >= 0 {
-				d.emit(&d.inputs[j], d.nums[i], true, now)
+				d.emit(&d.inputs[j], d.nums[i], !d.inputs[j].Counts, now)
 			}
 		}
 		return nil
@@ -142,17 +204,30 @@ func (d *Decoder) Line(line []byte, now time.Time) error {
 	d.c.Frames.Add(1)
 	if d.haveSeq && f.Seq != d.lastSeq+1 {
 		d.c.SeqGaps.Add(1)
+		// A forward jump (modulo 2^32) of less than half the range is lost
+		// frames; anything else is a device reset or a replayed frame.
+		if lost := f.Seq - d.lastSeq - 1; lost < 1<<31 {
+			d.c.DroppedFrames.Add(uint64(lost))
+		}
 	}
 	d.haveSeq, d.lastSeq = true, f.Seq
 	t := d.stamp(f.DeviceMS, now)
 	var unknown error
 	for i := 0; i < f.N; i++ {
 		r := &f.Readings[i]
-		j, ok := d.byKey[string(r.KeyBytes())]
+		// Devices send their readings in a fixed order: try the input that
+		// held this position in the previous frame before the map.
+		key := r.KeyBytes()
+		j, ok := int(d.order[i])-1, false
+		if j >= 0 && string(key) == d.inputs[j].Key {
+			ok = true
+		} else if j, ok = d.byKey[string(key)]; ok {
+			d.order[i] = int16(j + 1)
+		}
 		if !ok {
 			d.c.UnknownField.Add(1)
 			if unknown == nil {
-				unknown = &UnknownFieldError{Key: string(r.KeyBytes()), Field: i + 3}
+				unknown = &UnknownFieldError{Key: string(r.KeyBytes()), Field: i + 3, Offset: r.Offset}
 			}
 			continue
 		}
@@ -161,27 +236,47 @@ func (d *Decoder) Line(line []byte, now time.Time) error {
 	return unknown
 }
 
-// UnknownFieldError reports a reading key that no input maps.
+// UnknownFieldError reports a reading key that no input maps. The frame's
+// other readings were still decoded. errors.Is(err, ErrUnknown) holds.
 type UnknownFieldError struct {
-	Key   string
-	Field int
+	Key    string
+	Field  int // 0-based comma-separated field of the line
+	Offset int // byte offset of the key in the line
 }
 
+// Error names the key, the field and the byte offset.
 func (e *UnknownFieldError) Error() string {
-	return fmt.Sprintf("unknown reading %q (field %d)", e.Key, e.Field)
+	return fmt.Sprintf("unknown reading %q at byte %d (field %d)", e.Key, e.Offset, e.Field)
 }
 
-// stamp maps the device's millisecond counter to host time: anchored on the
-// first frame, re-anchored when the mapping runs ahead of the host clock or
-// more than half a second behind it (device reset, counter wrap, a stalled
-// line).
+// Unwrap returns ErrUnknown.
+func (e *UnknownFieldError) Unwrap() error { return ErrUnknown }
+
+// MaxClockLag is how far behind the host clock the device-clock mapping may
+// fall before it is re-anchored.
+const MaxClockLag = 500 * time.Millisecond
+
+// stamp maps the device's millisecond counter to host time as
+// anchor + ms. The anchor is set on the first frame (anchor = now − ms). A
+// frame that arrives sooner than the mapping predicts (the first frame was
+// delayed in transit, or the device clock runs fast) moves the anchor back
+// so that no sample is stamped in the host's future; this converges on the
+// least-delayed frame. A mapping more than MaxClockLag behind the host (a
+// device reset, the 49.7-day counter wrap, a slow device clock, a stalled
+// line) is re-anchored on the host clock and counted.
 func (d *Decoder) stamp(ms uint32, now time.Time) time.Time {
 	dev := time.Duration(ms) * time.Millisecond
 	if d.anchored {
 		t := d.anchor.Add(dev)
-		if lag := now.Sub(t); lag >= -20*time.Millisecond && lag <= 500*time.Millisecond {
+		lag := now.Sub(t)
+		if lag >= 0 && lag <= MaxClockLag {
 			return t
 		}
+		if lag < 0 && lag >= -MaxClockLag {
+			d.anchor = d.anchor.Add(lag)
+			return now
+		}
+		d.c.Reanchors.Add(1)
 	}
 	d.anchor = now.Add(-dev)
 	d.anchored = true

@@ -167,12 +167,12 @@ func TestPtyDriverSurvivesVanishingDevice(t *testing.T) {
 	write := func(m *os.File, seq uint32) {
 		m.Write(AppendFrame(nil, seq, seq*10, []Reading{NewReading("a0", 2525, true)}))
 	}
-	waitFor(t, "first samples", func() bool { write(master, 1); return c.len() > 0 && h.Up() })
+	waitFor(t, "first samples", func() bool { write(master, 1); return c.len() > 0 && drv.Up() })
 	// Pull the cable.
 	os.Remove(link)
 	master.Close()
 	start := time.Now()
-	waitFor(t, "source down", func() bool { return !h.Up() })
+	waitFor(t, "source down", func() bool { return !drv.Up() })
 	if d := time.Since(start); d > time.Second {
 		t.Errorf("vanished device noticed after %v, want within 1 s", d)
 	}
@@ -180,9 +180,13 @@ func TestPtyDriverSurvivesVanishingDevice(t *testing.T) {
 	n := c.len()
 	master = plug()
 	defer master.Close()
-	waitFor(t, "samples after reopen", func() bool { write(master, 2); return c.len() > n && h.Up() })
-	if count(h, "reopens") < 1 {
-		t.Errorf("reopens = %d", count(h, "reopens"))
+	waitFor(t, "samples after reopen", func() bool { write(master, 2); return c.len() > n && drv.Up() })
+	st := drv.Stats()
+	if st.Reopens < 1 || !st.Up {
+		t.Errorf("stats after reopen %+v", st)
+	}
+	if count(h, "reopens") != st.Reopens {
+		t.Errorf("health reopens %d, stats %d", count(h, "reopens"), st.Reopens)
 	}
 }
 
@@ -214,9 +218,15 @@ type nullSink struct{ n int }
 func (s *nullSink) Put(pipeline.Sample) bool { s.n++; return true }
 
 func BenchmarkParseCalibrate(b *testing.B) {
+	// The example line of PROTOCOL.md: a0 in counts (MAP), a1 in mV (MAP),
+	// a3 in counts (NTC, Beta: one logarithm).
 	var sink nullSink
-	d, _ := newTestDecoder(b, &sink)
-	line := []byte(frameLine("P1,42,123456,a0=2525m,a1=512"))
+	d, err := NewDecoder(Framed, 0, []Input{{Key: "a0", Sensor: mapSensor()}, {Key: "a1", Channel: 1, Sensor: mapSensor()},
+		{Key: "a3", Channel: 2, Sensor: ntcSensor()}}, &sink, NewCounters(pipelineHealth()))
+	if err != nil {
+		b.Fatal(err)
+	}
+	line := []byte(frameLine("P1,42,123456,a0=512,a1=2480m,a3=700"))
 	now := time.Unix(0, 0)
 	b.ReportAllocs()
 	b.ResetTimer()
@@ -226,4 +236,29 @@ func BenchmarkParseCalibrate(b *testing.B) {
 		}
 	}
 	b.ReportMetric(float64(b.N)/b.Elapsed().Seconds(), "lines/s")
+}
+
+func pipelineHealth() *pipeline.Health { return pipeline.NewHealthSet().Source("bench") }
+
+func ntcSensor() calib.Sensor {
+	return calib.Sensor{Curve: calib.NTCBeta{Divider: calib.Divider{PullupOhm: 2490, RefMV: 5000}, R0Ohm: 2500, T0C: 25, Beta: 3950},
+		FaultBelowMV: 20, FaultAboveMV: 4980, Min: -40, Max: 150, ADCMax: 1023, RefMV: 5000}
+}
+
+func TestDelimitedColumnsInCounts(t *testing.T) {
+	var c collect
+	h := pipeline.NewHealthSet().Source("sketch")
+	d, err := NewDecoder(Delimited, '\t', []Input{{Column: 1, Channel: 1, Sensor: mapSensor()},
+		{Column: 3, Channel: 2, Counts: true, Sensor: ntcSensor()}}, &c, NewCounters(h))
+	if err != nil {
+		t.Fatal(err)
+	}
+	if err := d.Line([]byte("2525\t9\t511.5"), time.Unix(1, 0)); err != nil {
+		t.Fatal(err)
+	}
+	// 511.5 of 1023 counts is mid-scale: R = Rpu = 2490 Ω, a little under
+	// R0 = 2500 Ω, so just above 25 °C (Beta equation, derived).
+	if len(c.s) != 2 || math.Abs(c.s[0].Value-160000) > 1e-6 || c.s[1].Value < 25 || c.s[1].Value > 25.2 {
+		t.Fatalf("samples %+v", c.s)
+	}
 }

@@ -6,7 +6,7 @@ import (
 	"fmt"
 	"log/slog"
 	"os"
-	"sync/atomic"
+	"sync"
 	"time"
 
 	bugst "go.bug.st/serial"
@@ -48,26 +48,33 @@ type Config struct {
 	Path       string // device path; prefer /dev/serial/by-id/...
 	Baud       int
 	Open       Opener           // nil: OpenSerial
-	Now        func() time.Time // nil: time.Now
+	Now        func() time.Time // nil: time.Now; stamps samples and paces logging
 	Logger     *slog.Logger
 	MinBackoff time.Duration // default 100 ms
 	MaxBackoff time.Duration // default 5 s
+	// UpTimeout is how long without a good frame before the source is
+	// reported down; default 1 s.
+	UpTimeout time.Duration
+	// LogEvery is the burst interval of the rate-limited log: the first
+	// problem of a kind is logged at once, repeats are summed and logged as
+	// one summary per interval. Default 10 s.
+	LogEvery time.Duration
 }
 
 // Driver owns one serial device: it opens it, reads lines, decodes them and
-// reopens the device with backoff when it vanishes.
+// reopens the device with backoff when it vanishes. Run must be called once;
+// Up, Stats and Name are safe to call concurrently with it.
 type Driver struct {
-	cfg     Config
-	dec     *Decoder
-	health  *pipeline.Health
-	log     *slog.Logger
-	reopens *atomic.Uint64
-	readErr *atomic.Uint64
-	burst   burstLog
+	cfg    Config
+	dec    *Decoder
+	health *pipeline.Health
+	log    *slog.Logger
+	c      Counters
+	burst  burstLog
 }
 
 // NewDriver returns a driver that feeds lines from cfg.Path through dec and
-// reports into health.
+// reports into health (nil: a private one).
 func NewDriver(cfg Config, dec *Decoder, health *pipeline.Health) *Driver {
 	if cfg.Open == nil {
 		cfg.Open = OpenSerial
@@ -81,20 +88,40 @@ func NewDriver(cfg Config, dec *Decoder, health *pipeline.Health) *Driver {
 	if cfg.MinBackoff <= 0 {
 		cfg.MinBackoff = 100 * time.Millisecond
 	}
-	if cfg.MaxBackoff <= 0 {
-		cfg.MaxBackoff = 5 * time.Second
+	if cfg.MaxBackoff < cfg.MinBackoff {
+		cfg.MaxBackoff = max(5*time.Second, cfg.MinBackoff)
+	}
+	if cfg.UpTimeout <= 0 {
+		cfg.UpTimeout = time.Second
+	}
+	if cfg.LogEvery <= 0 {
+		cfg.LogEvery = 10 * time.Second
+	}
+	if health == nil {
+		health = pipeline.NewHealthSet().Source(cfg.Name)
 	}
 	log := cfg.Logger.With("source", cfg.Name, "device", cfg.Path)
-	return &Driver{cfg: cfg, dec: dec, health: health, log: log,
-		reopens: health.Counter("reopens"), readErr: health.Counter("read_errors"),
-		burst: burstLog{log: log, every: 10 * time.Second}}
+	return &Driver{cfg: cfg, dec: dec, health: health, log: log, c: dec.c,
+		burst: burstLog{log: log, every: cfg.LogEvery}}
 }
 
 // Name returns the source name.
 func (d *Driver) Name() string { return d.cfg.Name }
 
+// Up reports whether the device is open and a good frame arrived within
+// UpTimeout (measured on the host's monotonic clock).
+func (d *Driver) Up() bool { return d.health.Up() }
+
+// Stats returns a snapshot of the source's counters and Up.
+func (d *Driver) Stats() Stats {
+	s := d.c.Snapshot()
+	s.Up = d.Up()
+	return s
+}
+
 // Run reads until ctx is done. A missing or vanished device is retried with
-// backoff; Run returns only ctx's error.
+// exponential backoff from MinBackoff to MaxBackoff (reset once a session
+// delivers a frame); Run returns only ctx's error.
 func (d *Driver) Run(ctx context.Context) error {
 	backoff := d.cfg.MinBackoff
 	opened := false
@@ -105,119 +132,199 @@ func (d *Driver) Run(ctx context.Context) error {
 			d.burst.warn(d.cfg.Now(), "open", "cannot open device; retrying", err)
 		} else {
 			if opened {
-				d.reopens.Add(1)
+				d.c.Reopens.Add(1)
 			}
 			opened = true
 			d.log.Info("device open")
 			d.dec.Reset()
-			d.health.SetUp(true)
-			backoff = d.cfg.MinBackoff
-			err = d.read(ctx, p)
-			p.Close()
+			delivered, err := d.session(ctx, p)
 			d.health.SetUp(false)
 			if ctx.Err() != nil {
 				return ctx.Err()
 			}
-			d.log.Warn("device vanished; reopening with backoff", "err", err)
+			if delivered {
+				backoff = d.cfg.MinBackoff
+			}
+			d.burst.warn(d.cfg.Now(), "vanished", "device vanished; reopening with backoff", err)
 		}
+		t := time.NewTimer(backoff)
 		select {
 		case <-ctx.Done():
+			t.Stop()
 			return ctx.Err()
-		case <-time.After(backoff):
+		case <-t.C:
 		}
 		backoff = min(backoff*2, d.cfg.MaxBackoff)
 	}
 }
 
+// session reads from an open port and closes it. Cancelling ctx closes the
+// port, which ends a blocked Read.
+func (d *Driver) session(ctx context.Context, p Port) (delivered bool, err error) {
+	var once sync.Once
+	closePort := func() { once.Do(func() { p.Close() }) }
+	stop := context.AfterFunc(ctx, closePort)
+	defer func() {
+		stop()
+		closePort()
+	}()
+	return d.read(ctx, p)
+}
+
 // read consumes lines until the port fails, the device node disappears, or
-// ctx ends.
-func (d *Driver) read(ctx context.Context, p Port) error {
+// ctx ends. delivered says whether any good frame arrived.
+func (d *Driver) read(ctx context.Context, p Port) (delivered bool, err error) {
 	st0, statErr := os.Stat(d.cfg.Path)
 	buf := make([]byte, 4096)
 	line := make([]byte, 0, MaxLine)
 	overlong := false
-	idle := 0
+	frames := d.c.Frames.Load()
+	// Health is judged on the host's monotonic clock, not the injected one
+	// (which only stamps samples), so that a frozen test clock cannot keep
+	// a dead source up.
+	lastGood := time.Now()
 	for {
 		if ctx.Err() != nil {
-			return ctx.Err()
+			return delivered, ctx.Err()
 		}
 		n, err := p.Read(buf)
+		now := d.cfg.Now()
+		d.burst.flush(now)
 		if err != nil {
-			d.readErr.Add(1)
-			return fmt.Errorf("read: %w", err)
+			if ctx.Err() != nil {
+				return delivered, ctx.Err()
+			}
+			d.c.ReadErrors.Add(1)
+			return delivered, fmt.Errorf("read %s: %w", d.cfg.Path, err)
 		}
 		if n == 0 {
-			// A timeout. Check that the device node is still the one we opened:
-			// a USB adapter that was pulled leaves no node, or a new one.
-			idle++
+			// A timeout (go.bug.st/serial returns (0, nil)). Check that the
+			// device node is still the one we opened: a USB adapter that was
+			// pulled leaves no node, or later a new one.
 			if statErr == nil {
 				st, err := os.Stat(d.cfg.Path)
 				if err != nil {
-					return fmt.Errorf("device node gone: %w", err)
+					return delivered, fmt.Errorf("device node gone: %w", err)
 				}
 				if !os.SameFile(st0, st) {
-					return errors.New("device node replaced")
+					return delivered, errors.New("device node replaced")
 				}
 			}
-			if idle*int(readTimeout/time.Millisecond) >= 1000 {
-				d.health.SetUp(false) // silent for a second: not delivering
+			if time.Since(lastGood) >= d.cfg.UpTimeout {
+				d.health.SetUp(false)
 			}
 			continue
 		}
-		if idle > 0 {
-			idle = 0
-			d.health.SetUp(true)
-		}
-		now := d.cfg.Now()
 		for _, c := range buf[:n] {
 			if c == '\n' {
 				if overlong {
 					overlong = false
-					d.dec.c.Overlong.Add(1)
+					d.c.Overlong.Add(1)
 					d.burst.warn(now, "overlong", "discarded an overlong line", nil)
 				} else if err := d.dec.Line(line, now); err != nil {
-					d.burst.warn(now, "line", "bad line", err)
+					d.burst.warn(now, lineKind(err), "bad line", err)
 				}
 				line = line[:0]
 				continue
 			}
-			if len(line) == MaxLine {
-				overlong = true
+			if overlong {
 				continue
 			}
-			if !overlong {
-				line = append(line, c)
+			if len(line) == MaxLine {
+				overlong = true
+				line = line[:0]
+				continue
 			}
+			line = append(line, c)
+		}
+		if f := d.c.Frames.Load(); f != frames {
+			frames, lastGood, delivered = f, time.Now(), true
+			d.health.SetUp(true)
+		} else if time.Since(lastGood) >= d.cfg.UpTimeout {
+			d.health.SetUp(false) // bytes, but no good frame
 		}
 	}
 }
 
-// burstLog logs the first of a burst of like problems, then at most one
-// summary per interval with the count suppressed.
+// lineKind names the burst a line error belongs to, so that one kind of
+// problem does not hide another in the log.
+func lineKind(err error) string {
+	var pe *ParseError
+	if errors.As(err, &pe) {
+		return pe.Kind.String()
+	}
+	if errors.Is(err, ErrUnknown) {
+		return ErrUnknown.String()
+	}
+	return "line"
+}
+
+// burstLog logs the first problem of a kind at once, then sums repeats and
+// logs one summary per interval (on the next problem or read after the
+// interval). Used by the driver's goroutine only.
 type burstLog struct {
 	log   *slog.Logger
 	every time.Duration
-	last  map[string]time.Time
-	count map[string]int
+	kinds map[string]*burst
+	next  time.Time // earliest time a summary may be due
+}
+
+type burst struct {
+	since      time.Time
+	msg        string
+	suppressed int
+	last       error
 }
 
 func (b *burstLog) warn(now time.Time, kind, msg string, err error) {
-	if b.last == nil {
-		b.last, b.count = map[string]time.Time{}, map[string]int{}
+	if b.kinds == nil {
+		b.kinds = map[string]*burst{}
 	}
-	t, seen := b.last[kind]
-	if seen && now.Sub(t) < b.every {
-		b.count[kind]++
-		return
+	if k := b.kinds[kind]; k != nil {
+		if now.Sub(k.since) < b.every {
+			k.suppressed++
+			k.last = err
+			return
+		}
+		b.summary(kind, k)
 	}
 	attrs := []any{"kind", kind}
 	if err != nil {
 		attrs = append(attrs, "err", err)
 	}
-	if n := b.count[kind]; n > 0 {
-		attrs = append(attrs, "suppressed", n)
-	}
 	b.log.Warn(msg, attrs...)
-	b.last[kind] = now
-	b.count[kind] = 0
+	b.kinds[kind] = &burst{since: now, msg: msg}
+	if b.next.IsZero() || now.Add(b.every).Before(b.next) {
+		b.next = now.Add(b.every)
+	}
+}
+
+// flush logs the summaries of bursts whose interval has passed and forgets
+// them, so that the next problem of that kind is logged at once again.
+func (b *burstLog) flush(now time.Time) {
+	if len(b.kinds) == 0 || now.Before(b.next) {
+		return
+	}
+	b.next = time.Time{}
+	for kind, k := range b.kinds {
+		if now.Sub(k.since) < b.every {
+			if due := k.since.Add(b.every); b.next.IsZero() || due.Before(b.next) {
+				b.next = due
+			}
+			continue
+		}
+		b.summary(kind, k)
+		delete(b.kinds, kind)
+	}
+}
+
+func (b *burstLog) summary(kind string, k *burst) {
+	if k.suppressed == 0 {
+		return
+	}
+	attrs := []any{"kind", kind, "repeats", k.suppressed, "interval", b.every}
+	if k.last != nil {
+		attrs = append(attrs, "last_err", k.last)
+	}
+	b.log.Warn(k.msg+" (repeated)", attrs...)
 }

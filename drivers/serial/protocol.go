@@ -5,6 +5,7 @@
 package serial
 
 import (
+	"math"
 	"strconv"
 )
 
@@ -24,6 +25,9 @@ type Reading struct {
 	KeyLen     uint8
 	MilliVolts bool
 	Value      float64
+	// Offset is the byte offset of the reading's key in the parsed line
+	// (set by ParseFrame; ignored by AppendFrame).
+	Offset int
 }
 
 // KeyBytes returns the key.
@@ -41,11 +45,11 @@ func NewReading(key string, value float64, millivolts bool) Reading {
 // Frame is one parsed line. Reuse one Frame across calls: parsing does not
 // allocate.
 type Frame struct {
-	Version  uint8
-	Seq      uint32
-	DeviceMS uint32
-	N        int
-	Readings [MaxReadings]Reading
+	Version  uint8                // protocol version (1)
+	Seq      uint32               // frame sequence number
+	DeviceMS uint32               // the device's millisecond counter
+	N        int                  // number of readings in Readings
+	Readings [MaxReadings]Reading // Readings[:N] are this frame's
 }
 
 // ErrKind classifies a parse error.
@@ -53,17 +57,18 @@ type ErrKind uint8
 
 // Parse error kinds.
 const (
-	ErrTruncated ErrKind = iota + 1
-	ErrVersion
-	ErrChecksum
-	ErrSyntax
-	ErrNumber
-	ErrTooMany
-	ErrKey
-	ErrTooLong
+	ErrTruncated ErrKind = iota + 1 // a frame header without a complete *crc trailer, or missing fields
+	ErrVersion                      // a P<digit> tag other than P1
+	ErrChecksum                     // CRC mismatch, or a trailer that is not hex
+	ErrSyntax                       // not a frame at all, or a reading without '='
+	ErrNumber                       // a sequence, counter or value that is not a valid number
+	ErrTooMany                      // more than MaxReadings readings (framed) or columns (delimited)
+	ErrKey                          // a reading key outside the key syntax
+	ErrTooLong                      // a line longer than MaxLine
+	ErrUnknown                      // a well-formed reading whose key no input maps (see UnknownFieldError)
 )
 
-var kindNames = [...]string{"", "truncated line", "unsupported version", "bad checksum", "syntax error", "bad number", "too many readings", "bad key", "line too long"}
+var kindNames = [...]string{"", "truncated line", "unsupported version", "bad checksum", "syntax error", "bad number", "too many readings", "bad key", "line too long", "unknown reading key"}
 
 // String names the kind.
 func (k ErrKind) String() string {
@@ -73,6 +78,10 @@ func (k ErrKind) String() string {
 	return "error " + strconv.Itoa(int(k))
 }
 
+// Error makes a kind usable as a sentinel: errors.Is(err, ErrChecksum)
+// holds for a *ParseError of that kind.
+func (k ErrKind) Error() string { return k.String() }
+
 // ParseError says what is wrong with a line and at which byte (0-based) and
 // field (0-based, comma-separated) it was found.
 type ParseError struct {
@@ -81,25 +90,18 @@ type ParseError struct {
 	Field  int
 }
 
+// Error names the kind, the byte offset and the field.
 func (e *ParseError) Error() string {
 	return e.Kind.String() + " at byte " + strconv.Itoa(e.Offset) + " (field " + strconv.Itoa(e.Field) + ")"
 }
 
+// Unwrap returns the kind, so that errors.Is(err, ErrTruncated) and the like work.
+func (e *ParseError) Unwrap() error { return e.Kind }
+
 // CRC16 returns the CRC-16/CCITT-FALSE of b (polynomial 0x1021, initial value
 // 0xFFFF, no reflection, no final XOR).
 func CRC16(b []byte) uint16 {
-	crc := uint16(0xFFFF)
-	for _, c := range b {
-		crc ^= uint16(c) << 8
-		for i := 0; i < 8; i++ {
-			if crc&0x8000 != 0 {
-				crc = crc<<1 ^ 0x1021
-			} else {
-				crc <<= 1
-			}
-		}
-	}
-	return crc
+	return crc16Update(0xFFFF, b)
 }
 
 func hexVal(c byte) (uint16, bool) {
@@ -123,6 +125,9 @@ func ParseFrame(line []byte, f *Frame) error {
 	// Trailer: *XXXX
 	star := len(line) - 5
 	if star < 0 || line[star] != '*' {
+		if len(line) < 2 || line[0] != 'P' || line[1] < '0' || line[1] > '9' {
+			return &ParseError{Kind: ErrSyntax, Offset: 0} // not a frame at all: noise, a boot banner
+		}
 		for i := range line {
 			if line[i] == '*' {
 				return &ParseError{Kind: ErrTruncated, Offset: len(line), Field: fieldAt(line, i)}
@@ -202,6 +207,7 @@ func ParseFrame(line []byte, f *Frame) error {
 		}
 		r := &f.Readings[f.N]
 		r.KeyLen = uint8(copy(r.Key[:], body[s:eq]))
+		r.Offset = s
 		num := body[eq+1 : e]
 		r.MilliVolts = false
 		if len(num) > 0 && num[len(num)-1] == 'm' {
@@ -300,7 +306,10 @@ func parseDecimal(b []byte) (float64, bool) {
 }
 
 // AppendFrame appends a framed line for the readings, with its checksum and a
-// trailing newline, to dst. Values are written with up to 3 decimals.
+// trailing newline, to dst. Values are written in the shortest form that
+// reads back exactly, or rounded to fit the protocol's 15 digits and 9
+// decimals; a reading that is NaN, infinite or of magnitude 1e15 or more
+// cannot be written and is left out. It allocates only to grow dst.
 func AppendFrame(dst []byte, seq, ms uint32, readings []Reading) []byte {
 	start := len(dst)
 	dst = append(dst, 'P', '1', ',')
@@ -309,10 +318,13 @@ func AppendFrame(dst []byte, seq, ms uint32, readings []Reading) []byte {
 	dst = strconv.AppendUint(dst, uint64(ms), 10)
 	for i := range readings {
 		r := &readings[i]
+		if math.IsNaN(r.Value) || math.IsInf(r.Value, 0) || math.Abs(r.Value) >= 1e15 {
+			continue
+		}
 		dst = append(dst, ',')
 		dst = append(dst, r.KeyBytes()...)
 		dst = append(dst, '=')
-		dst = strconv.AppendFloat(dst, r.Value, 'f', -1, 64)
+		dst = appendValue(dst, r.Value)
 		if r.MilliVolts {
 			dst = append(dst, 'm')
 		}
@@ -321,6 +333,19 @@ func AppendFrame(dst []byte, seq, ms uint32, readings []Reading) []byte {
 	const hexd = "0123456789ABCDEF"
 	dst = append(dst, '*', hexd[crc>>12], hexd[crc>>8&15], hexd[crc>>4&15], hexd[crc&15], '\n')
 	return dst
+}
+
+// appendValue writes v so that parseDecimal accepts it: the shortest exact
+// form if it fits 15 digits and 9 decimals, else v rounded to fit.
+func appendValue(dst []byte, v float64) []byte {
+	start := len(dst)
+	dst = strconv.AppendFloat(dst, v, 'f', -1, 64)
+	for prec := 9; ; prec-- {
+		if _, ok := parseDecimal(dst[start:]); ok || prec < 0 {
+			return dst
+		}
+		dst = strconv.AppendFloat(dst[:start], v, 'f', prec, 64)
+	}
 }
 
 // ParseDelimited splits a delimited line into up to len(dst) numbers and

@@ -6,6 +6,7 @@ import (
 	"strconv"
 	"strings"
 	"testing"
+	"time"
 )
 
 func TestCRC16CheckValue(t *testing.T) {
@@ -169,7 +170,16 @@ func FuzzParseLine(f *testing.F) {
 	f.Add([]byte("P1,42,123456,a0=512*0000"))
 	f.Add([]byte("P1,1,2,a0=1.5m*"))
 	f.Add([]byte("1,2,3"))
+	var sink nullSink
+	dec, _ := newTestDecoder(f, &sink)
+	now := time.Unix(0, 0)
 	f.Fuzz(func(t *testing.T, line []byte) {
+		// The whole decode path (parse, clock, calibration) never panics, and
+		// every error it returns names a place.
+		now = now.Add(10 * time.Millisecond)
+		if err := dec.Line(line, now); err != nil && !strings.Contains(err.Error(), "at byte") {
+			t.Fatalf("error without a place: %v", err)
+		}
 		var fr Frame
 		err := ParseFrame(line, &fr)
 		if err == nil {
