@@ -32,6 +32,8 @@ type Subscription struct {
 	notify  chan struct{}
 	dropped atomic.Uint64
 	evDrop  atomic.Uint64
+	// eventsOnly subscriptions take no samples.
+	eventsOnly bool
 }
 
 // Name is the consumer name given to Subscribe.
@@ -47,6 +49,9 @@ func (s *Subscription) Dropped() uint64 { return s.dropped.Load() }
 func (s *Subscription) DroppedEvents() uint64 { return s.evDrop.Load() }
 
 func (s *Subscription) push(x Sample) {
+	if s.eventsOnly {
+		return
+	}
 	s.mu.Lock()
 	if s.n == len(s.buf) {
 		s.mu.Unlock()

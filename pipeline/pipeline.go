@@ -70,6 +70,13 @@ func (p *Pipeline) Subscribe(name string, size int) *Subscription {
 	return p.fan.subscribe(name, size)
 }
 
+// SubscribeEvents adds a consumer that takes events only.
+func (p *Pipeline) SubscribeEvents(name string) *Subscription {
+	s := p.fan.subscribe(name, 1)
+	s.eventsOnly = true
+	return s
+}
+
 // Subscriptions lists the consumers, for drop counters.
 func (p *Pipeline) Subscriptions() []*Subscription { return p.fan.list() }
 

@@ -11,6 +11,7 @@ import (
 	"net"
 	"net/http"
 	"os"
+	"path/filepath"
 	"strings"
 	"sync"
 	"time"
@@ -46,6 +47,30 @@ func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *s
 	if err != nil {
 		return err
 	}
+	derived := map[string]bool{}
+	for _, d := range ds {
+		for _, c := range d.Outputs() {
+			derived[c.Name] = true
+		}
+	}
+	dets, guard, err := buildDetectors(cfg, reg, derived)
+	if err != nil {
+		return err
+	}
+	ds = append(ds, dets...)
+	if guard != nil && guard.stateFile != "" {
+		if err := os.MkdirAll(filepath.Dir(guard.stateFile), 0o755); err != nil {
+			log.Warn("turbo state directory; the cool-down state will not survive a restart", "err", err)
+			guard.stateFile = ""
+		} else if err := guard.load(time.Now()); err != nil {
+			log.Warn("turbo state not restored", "err", err)
+		}
+		defer func() {
+			if err := guard.save(); err != nil {
+				log.Warn("turbo state not saved", "err", err)
+			}
+		}()
+	}
 	g, err := pipeline.BuildGraph(reg, ds)
 	if err != nil {
 		return fmt.Errorf("derivations: %w", err)
@@ -60,7 +85,8 @@ func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *s
 	if err != nil {
 		return err
 	}
-	h, err := promexport.Handler(col)
+	evm := promexport.NewEvents(p.SubscribeEvents("event_metrics"))
+	h, err := promexport.Handler(col, evm)
 	if err != nil {
 		return err
 	}
@@ -158,6 +184,9 @@ func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *s
 	for _, s := range srcs {
 		start(s.Name(), s.Run, runCtx)
 	}
+	evCtx, evCancel := context.WithCancel(context.Background())
+	defer evCancel()
+	go evm.Run(evCtx)
 
 	var runErr error
 	select {

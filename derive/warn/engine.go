@@ -154,6 +154,9 @@ func (e *Engine) Channel(name string) (int, bool) {
 // Rules returns the number of rules; transitions refer to them by index.
 func (e *Engine) Rules() int { return len(e.rules) }
 
+// RuleName returns the name of rule i.
+func (e *Engine) RuleName(i int) string { return e.rules[i].r.Name }
+
 // Raised reports whether rule i is raised.
 func (e *Engine) Raised(i int) bool { return i >= 0 && i < len(e.rules) && e.rules[i].raised }
 

@@ -138,11 +138,12 @@ func (c *Collector) Collect(out chan<- prometheus.Metric) {
 	}
 }
 
-// Handler returns an http.Handler serving the collector plus the Go and
-// process collectors on a registry of its own.
-func Handler(c *Collector) (http.Handler, error) {
+// Handler returns an http.Handler serving the collector, the Go and process
+// collectors and any extra collectors on a registry of its own.
+func Handler(c *Collector, extra ...prometheus.Collector) (http.Handler, error) {
 	reg := prometheus.NewRegistry()
-	for _, col := range []prometheus.Collector{c, collectors.NewGoCollector(), collectors.NewProcessCollector(collectors.ProcessCollectorOpts{})} {
+	cols := append([]prometheus.Collector{c, collectors.NewGoCollector(), collectors.NewProcessCollector(collectors.ProcessCollectorOpts{})}, extra...)
+	for _, col := range cols {
 		if err := reg.Register(col); err != nil {
 			return nil, fmt.Errorf("prometheus: register: %w", err)
 		}

@@ -4,16 +4,22 @@ import (
 	"fmt"
 	"net"
 	"net/url"
+	"regexp"
 	"sort"
 	"strconv"
 	"strings"
 
 	"go.yaml.in/yaml/v3"
 
+	"github.com/plenum-engine/plenum/derive"
+	"github.com/plenum-engine/plenum/derive/warn"
+
 	"github.com/plenum-engine/plenum/pipeline"
 )
 
-// Fuels are the fuel names the config accepts.
+var nameRE = regexp.MustCompile(`^[a-z][a-z0-9_]*$`)
+
+// fuelNames are the fuel names the config accepts.
 var fuelNames = []string{"gasoline", "diesel", "e85", "e100", "methanol", "lpg", "cng"}
 
 // lineOf finds the line of the node at path (map keys and sequence indexes)
@@ -187,6 +193,21 @@ func (cfg *Config) check(file string, root *yaml.Node) Errors {
 	}
 	if cfg.Sim != nil && (cfg.Sim.TimeScale < 0 || cfg.Sim.TimeScale > 100) {
 		c.fail("must be between 0 and 100", "simulator", "time_scale")
+	}
+	if _, err := derive.ParseStandard(cfg.Power.Standard); err != nil {
+		c.fail(err.Error(), "power", "standard")
+	}
+	seenRule := map[string]bool{}
+	for i, r := range cfg.Warnings {
+		if !nameRE.MatchString(r.Name) || seenRule[r.Name] {
+			c.fail("needs a unique snake_case name", "warnings", i, "name")
+		}
+		seenRule[r.Name] = true
+		if r.Rule != "off" {
+			if _, err := warn.Parse(r.Name, r.Rule); err != nil {
+				c.fail(err.Error(), "warnings", i, "rule")
+			}
+		}
 	}
 	sort.SliceStable(c.errs, func(i, j int) bool { return c.errs[i].Line < c.errs[j].Line })
 	return c.errs

@@ -10,6 +10,7 @@ import (
 	"fmt"
 	"io"
 	"os"
+	"path/filepath"
 	"regexp"
 	"strconv"
 	"strings"
@@ -20,12 +21,36 @@ import (
 
 // Config is the whole configuration of one daemon.
 type Config struct {
-	Vehicle string     `yaml:"vehicle"`
-	Engine  Engine     `yaml:"engine"`
-	Serial  []Serial   `yaml:"serial"`
-	MQTT    MQTT       `yaml:"mqtt"`
-	HTTP    HTTP       `yaml:"http"`
-	Sim     *Simulator `yaml:"simulator"`
+	Vehicle  string        `yaml:"vehicle"`
+	Engine   Engine        `yaml:"engine"`
+	Serial   []Serial      `yaml:"serial"`
+	MQTT     MQTT          `yaml:"mqtt"`
+	HTTP     HTTP          `yaml:"http"`
+	Sim      *Simulator    `yaml:"simulator"`
+	Power    Power         `yaml:"power"`
+	Turbo    Turbo         `yaml:"turbo"`
+	Warnings []WarningRule `yaml:"warnings"`
+	StateDir string        `yaml:"state_dir"` // where the turbo cool-down state survives restarts
+}
+
+// Power configures power correction.
+type Power struct {
+	Standard string `yaml:"standard"` // sae_j1349 (default), iso_1585 or din_70020
+}
+
+// Turbo configures the turbo detectors. Defaults are common practice, no source.
+type Turbo struct {
+	TargetBoostKPa float64  `yaml:"target_boost_kpa"` // lag events measure toward this; 0: the settled level
+	FilterDropKPa  float64  `yaml:"filter_drop_kpa"`  // air filter loss before the compressor
+	WarmOilC       float64  `yaml:"warm_oil_c"`       // oil temperature that ends the warm-up guard (default 60)
+	CoolDownTau    Duration `yaml:"cool_down_tau"`    // thermal time constant (default 60s)
+}
+
+// WarningRule is a named rule in Plenum's rule syntax, or "off" to disable a
+// built-in rule of that name.
+type WarningRule struct {
+	Name string `yaml:"name"`
+	Rule string `yaml:"rule"`
 }
 
 // Engine describes the engine for the physics.
@@ -262,6 +287,14 @@ func (c *Config) defaults() {
 	}
 	if c.MQTT.MaxRateHz == 0 {
 		c.MQTT.MaxRateHz = 10
+	}
+	if c.Power.Standard == "" {
+		c.Power.Standard = "sae_j1349"
+	}
+	if c.StateDir == "" {
+		if dir, err := os.UserCacheDir(); err == nil {
+			c.StateDir = filepath.Join(dir, "plenum")
+		}
 	}
 	if c.HTTP.Listen == "" {
 		c.HTTP.Listen = "127.0.0.1:9108"
