@@ -7,6 +7,7 @@ import (
 	"fmt"
 	"io"
 	"log/slog"
+	"math"
 	"net"
 	"net/http"
 	"os"
@@ -183,8 +184,16 @@ func TestDemoEndToEnd(t *testing.T) {
 		}
 	}
 	fams, _ := scrape(t, httpAddr)
-	if f := fams["plenum_source_up"]; f == nil || f.Metric[0].GetGauge().GetValue() != 1 {
-		t.Errorf("plenum_source_up missing or 0: %v", f)
+	if f := fams["plenum_source_up"]; f == nil || len(f.Metric) != 2 || f.Metric[0].GetGauge().GetValue() != 1 || f.Metric[1].GetGauge().GetValue() != 1 {
+		t.Errorf("plenum_source_up should be 1 for both the serial and the OBD source: %v", f)
+	}
+	// The ECU's view and the microcontroller's view of the same engine agree:
+	// barometric pressure (static) within the 1 kPa resolution of PID 0x33
+	// plus the simulated sensor noise.
+	serialBaro, ok1 := gauge(fams, "plenum_pressure_pascals", "barometric")
+	ecuBaro, ok2 := gauge(fams, "plenum_pressure_pascals", "ecu_barometric_pressure")
+	if !ok1 || !ok2 || math.Abs(serialBaro-ecuBaro) > 1500 {
+		t.Errorf("barometric pressure: serial %v (%v), OBD %v (%v)", serialBaro, ok1, ecuBaro, ok2)
 	}
 
 	mu.Lock()

@@ -67,3 +67,22 @@ func TestEmbeddedDemoConfigMatchesSimulator(t *testing.T) {
 		}
 	}
 }
+
+func TestProbeSimulatedECU(t *testing.T) {
+	var out, errb bytes.Buffer
+	if code := run([]string{"probe", "-sim"}, &out, &errb); code != 0 {
+		t.Fatalf("probe -sim exited %d: %s", code, errb.String())
+	}
+	s := out.String()
+	for _, want := range []string{"7E8", sim.DemoVIN, "0C", "multi-PID", "- {name: ecu_engine_speed, rate_hz: 20}"} {
+		if !strings.Contains(s, want) {
+			t.Errorf("probe output lacks %q:\n%s", want, s)
+		}
+	}
+	// The snippet it prints is a valid configuration section.
+	snippet := s[strings.Index(s, "can:"):]
+	cfg := "vehicle: x\nengine: {displacement_l: 2, volumetric_efficiency: 0.9}\nsimulator: {}\nserial: [{name: m, inputs: []}]\n" + snippet
+	if _, err := config.Parse("snippet.yaml", []byte(cfg)); err != nil {
+		t.Fatalf("probe's snippet does not check: %v\n%s", err, cfg)
+	}
+}

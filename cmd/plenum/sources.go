@@ -28,6 +28,14 @@ func buildSources(ctx context.Context, cfg *config.Config, reg *pipeline.Registr
 			cleanups[i]()
 		}
 	}
+	var eng *sim.Shared
+	if cfg.Sim != nil {
+		p := sim.DefaultParams()
+		if cfg.Sim.Seed != 0 {
+			p.Seed = cfg.Sim.Seed
+		}
+		eng = sim.NewShared(sim.NewEngine(p))
+	}
 	for i, sc := range cfg.Serial {
 		inputs := make([]serial.Input, 0, len(sc.Inputs))
 		for j, in := range sc.Inputs {
@@ -68,7 +76,7 @@ func buildSources(ctx context.Context, cfg *config.Config, reg *pipeline.Registr
 		}
 		path := sc.Device
 		if cfg.Sim != nil && i == 0 {
-			dev, err := startSimDevice(cfg.Sim, log)
+			dev, err := startSimDevice(cfg.Sim, eng, log)
 			if err != nil {
 				cleanup()
 				return nil, nil, err
@@ -79,6 +87,16 @@ func buildSources(ctx context.Context, cfg *config.Config, reg *pipeline.Registr
 		}
 		srcs = append(srcs, serial.NewDriver(serial.Config{Name: sc.Name, Path: path, Baud: sc.Baud, Logger: log}, dec, h))
 	}
+	if eng != nil && len(cfg.Serial) == 0 {
+		cleanup()
+		return nil, nil, fmt.Errorf("simulator: needs a serial source to drive (the simulated microcontroller steps the engine)")
+	}
+	obds, err := buildOBDSources(cfg, reg, sink, health, eng, log)
+	if err != nil {
+		cleanup()
+		return nil, nil, err
+	}
+	srcs = append(srcs, obds...)
 	return srcs, cleanup, nil
 }
 
@@ -139,13 +157,13 @@ type simDevice struct {
 	path   string
 	master *os.File
 	dir    string
-	eng    *sim.Engine
+	eng    *sim.Shared
 	sens   []sim.Sensor
 	scale  float64
 	log    *slog.Logger
 }
 
-func startSimDevice(sc *config.Simulator, log *slog.Logger) (*simDevice, error) {
+func startSimDevice(sc *config.Simulator, eng *sim.Shared, log *slog.Logger) (*simDevice, error) {
 	master, tty, err := pty.Open()
 	if err != nil {
 		return nil, fmt.Errorf("simulator: open pseudo-terminal: %w", err)
@@ -164,15 +182,11 @@ func startSimDevice(sc *config.Simulator, log *slog.Logger) (*simDevice, error) 
 		os.RemoveAll(dir)
 		return nil, fmt.Errorf("simulator: %w", err)
 	}
-	p := sim.DefaultParams()
-	if sc.Seed != 0 {
-		p.Seed = sc.Seed
-	}
 	scale := sc.TimeScale
 	if scale <= 0 {
 		scale = 1
 	}
-	return &simDevice{path: path, master: master, dir: dir, eng: sim.NewEngine(p), sens: sim.DemoSensors(), scale: scale, log: log}, nil
+	return &simDevice{path: path, master: master, dir: dir, eng: eng, sens: sim.DemoSensors(), scale: scale, log: log}, nil
 }
 
 func (d *simDevice) Name() string { return "simulator" }

@@ -134,12 +134,12 @@ func buildTable() *table {
 	}
 	t.add(0x0A, 1, u8("ecu_fuel_pressure", "pressure", pa, 0, 3000, 0))        // 3·A kPa gauge
 	t.add(0x0B, 1, u8("ecu_manifold_pressure", "pressure", pa, 0, 1000, 0))    // A kPa abs
-	t.add(0x0C, 2, u16("ecu_engine_speed", "speed", pipeline.RPM, 0, 0.25, 0)) // (256A+B)/4 rpm
-	t.add(0x0D, 1, u8("ecu_vehicle_speed", "speed", pipeline.MetresPerSecond, 0, 1/3.6, 0))
+	t.add(0x0C, 2, u16("ecu_engine_speed", "engine_speed", pipeline.RPM, 0, 0.25, 0)) // (256A+B)/4 rpm
+	t.add(0x0D, 1, u8("ecu_vehicle_speed", "vehicle_speed", pipeline.MetresPerSecond, 0, 1/3.6, 0))
 	t.add(0x0E, 1, u8("ecu_timing_advance", "angle", pipeline.Degrees, 0, 0.5, -64)) // A/2 − 64 ° BTDC
 	t.add(0x0F, 1, u8("ecu_intake_air_temperature", "temperature", degC, 0, 1, -40))
 	t.add(0x10, 2, u16("ecu_mass_air_flow", "mass_flow", pipeline.GramsPerSec, 0, 0.01, 0)) // (256A+B)/100 g/s
-	t.add(0x11, 1, u8("ecu_throttle_position", "position", ratio, 0, 1.0/255, 0))
+	t.add(0x11, 1, u8("ecu_throttle_position", "throttle_position", ratio, 0, 1.0/255, 0))
 	t.add(0x1F, 2, u16("ecu_run_time", "time", pipeline.Seconds, 0, 1, 0))
 	t.add(0x22, 2, u16("ecu_fuel_rail_pressure_relative", "pressure", pa, 0, 79, 0)) // 0.079 kPa/bit
 	t.add(0x23, 2, u16("ecu_fuel_rail_gauge_pressure", "pressure", pa, 0, 10000, 0)) // 10 kPa/bit
@@ -167,7 +167,7 @@ func buildTable() *table {
 	t.add(0x42, 2, u16("ecu_module_voltage", "voltage", pipeline.Volts, 0, 0.001, 0))
 	t.add(0x43, 2, u16("ecu_absolute_load", "load", ratio, 0, 1.0/255, 0)) // 100·(256A+B)/255 %
 	t.add(0x44, 2, u16("ecu_commanded_lambda", "lambda", ratio, 0, 2.0/65536, 0))
-	t.add(0x45, 1, u8("ecu_relative_throttle_position", "position", ratio, 0, 1.0/255, 0))
+	t.add(0x45, 1, u8("ecu_relative_throttle_position", "throttle_position", ratio, 0, 1.0/255, 0))
 	t.add(0x46, 1, u8("ecu_ambient_air_temperature", "temperature", degC, 0, 1, -40))
 	for i, n := range []string{"ecu_accelerator_pedal_d", "ecu_accelerator_pedal_e", "ecu_accelerator_pedal_f", "ecu_commanded_throttle"} {
 		t.add(PID(0x49+i), 1, u8(n, "position", ratio, 0, 1.0/255, 0))
@@ -192,8 +192,8 @@ func buildTable() *table {
 		sup(u16("ecu_exhaust_pressure_b1", "pressure", pa, 1, 10, 0), 0), // /100 kPa
 		sup(u16("ecu_exhaust_pressure_b2", "pressure", pa, 3, 10, 0), 1))
 	t.add(0x74, 5,
-		sup(u16("ecu_turbo_speed_a", "speed", pipeline.RPM, 1, TurboSpeedRPMPerBit, 0), 0),
-		sup(u16("ecu_turbo_speed_b", "speed", pipeline.RPM, 3, TurboSpeedRPMPerBit, 0), 1))
+		sup(u16("ecu_turbo_speed_a", "turbo_speed", pipeline.RPM, 1, TurboSpeedRPMPerBit, 0), 0),
+		sup(u16("ecu_turbo_speed_b", "turbo_speed", pipeline.RPM, 3, TurboSpeedRPMPerBit, 0), 1))
 	for i, x := range []string{"a", "b"} {
 		s := "ecu_turbo_" + x
 		t.add(PID(0x75+i), 7,

@@ -13,6 +13,7 @@ import (
 
 	"github.com/plenum-engine/plenum/derive"
 	"github.com/plenum-engine/plenum/derive/warn"
+	"github.com/plenum-engine/plenum/drivers/obd"
 
 	"github.com/plenum-engine/plenum/pipeline"
 )
@@ -193,6 +194,32 @@ func (cfg *Config) check(file string, root *yaml.Node) Errors {
 	}
 	if cfg.Sim != nil && (cfg.Sim.TimeScale < 0 || cfg.Sim.TimeScale > 100) {
 		c.fail("must be between 0 and 100", "simulator", "time_scale")
+	}
+	for i, cn := range cfg.CAN {
+		if cn.Name == "" || names[cn.Name] {
+			c.fail("every source needs a unique name", "can", i, "name")
+		}
+		names[cn.Name] = true
+		if cn.Bus == "" {
+			c.fail(`needs a SocketCAN interface (can0) or "sim"`, "can", i, "bus")
+		}
+		if cn.Format != "11bit" && cn.Format != "29bit" {
+			c.fail(`must be "11bit" or "29bit"`, "can", i, "format")
+		}
+		if cn.BitRate != 500000 && cn.BitRate != 250000 {
+			c.fail("ISO 15765-4 uses 500000 or 250000", "can", i, "bitrate")
+		}
+		for j, ch := range cn.Channels {
+			if _, _, ok := obd.LookupChannel(ch.Name); !ok {
+				c.fail(fmt.Sprintf("unknown OBD channel %q", ch.Name), "can", i, "channels", j, "name")
+			}
+			if ch.RateHz <= 0 || ch.RateHz > 1000 {
+				c.fail("must be between 0 and 1000", "can", i, "channels", j, "rate_hz")
+			}
+			if ch.Priority < 0 || ch.Priority > 9 {
+				c.fail("must be between 0 and 9", "can", i, "channels", j, "priority")
+			}
+		}
 	}
 	if _, err := derive.ParseStandard(cfg.Power.Standard); err != nil {
 		c.fail(err.Error(), "power", "standard")

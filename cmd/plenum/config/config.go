@@ -31,6 +31,24 @@ type Config struct {
 	Turbo    Turbo         `yaml:"turbo"`
 	Warnings []WarningRule `yaml:"warnings"`
 	StateDir string        `yaml:"state_dir"` // where the turbo cool-down state survives restarts
+	CAN      []CAN         `yaml:"can"`
+}
+
+// CAN is one ECU connection over CAN with OBD-II requests.
+type CAN struct {
+	Name      string       `yaml:"name"`
+	Bus       string       `yaml:"bus"`        // a SocketCAN interface such as can0, or "sim"
+	Format    string       `yaml:"format"`     // "11bit" (default) or "29bit"
+	BitRate   int          `yaml:"bitrate"`    // 500000 (default) or 250000; set on the interface by the system
+	SinglePID bool         `yaml:"single_pid"` // never pack several PIDs into one request
+	Channels  []CANChannel `yaml:"channels"`
+}
+
+// CANChannel is one OBD channel to poll at a target rate.
+type CANChannel struct {
+	Name     string  `yaml:"name"`     // e.g. ecu_engine_speed
+	RateHz   float64 `yaml:"rate_hz"`  // target readings per second
+	Priority int     `yaml:"priority"` // 0–9, higher wins ties
 }
 
 // Power configures power correction.
@@ -298,6 +316,14 @@ func (c *Config) defaults() {
 	}
 	if c.HTTP.Listen == "" {
 		c.HTTP.Listen = "127.0.0.1:9108"
+	}
+	for i := range c.CAN {
+		if c.CAN[i].Format == "" {
+			c.CAN[i].Format = "11bit"
+		}
+		if c.CAN[i].BitRate == 0 {
+			c.CAN[i].BitRate = 500000
+		}
 	}
 	for i := range c.Serial {
 		s := &c.Serial[i]
