@@ -132,8 +132,8 @@ func buildTable() *table {
 	for i, n := range []string{"ecu_short_fuel_trim_bank1", "ecu_long_fuel_trim_bank1", "ecu_short_fuel_trim_bank2", "ecu_long_fuel_trim_bank2"} {
 		t.add(PID(0x06+i), 1, u8(n, "fuel_trim", ratio, 0, 1.0/128, -1)) // 100·A/128 − 100 %
 	}
-	t.add(0x0A, 1, u8("ecu_fuel_pressure", "pressure", pa, 0, 3000, 0))        // 3·A kPa gauge
-	t.add(0x0B, 1, u8("ecu_manifold_pressure", "pressure", pa, 0, 1000, 0))    // A kPa abs
+	t.add(0x0A, 1, u8("ecu_fuel_pressure", "pressure", pa, 0, 3000, 0))               // 3·A kPa gauge
+	t.add(0x0B, 1, u8("ecu_manifold_pressure", "pressure", pa, 0, 1000, 0))           // A kPa abs
 	t.add(0x0C, 2, u16("ecu_engine_speed", "engine_speed", pipeline.RPM, 0, 0.25, 0)) // (256A+B)/4 rpm
 	t.add(0x0D, 1, u8("ecu_vehicle_speed", "vehicle_speed", pipeline.MetresPerSecond, 0, 1/3.6, 0))
 	t.add(0x0E, 1, u8("ecu_timing_advance", "angle", pipeline.Degrees, 0, 0.5, -64)) // A/2 − 64 ° BTDC
