@@ -28,7 +28,7 @@ const (
 	NewtonMetres    Unit = "newton_meters"
 	Degrees         Unit = "degrees"
 	CubicMetresPerS Unit = "cubic_meters_per_second"
-	KilogramsPerJ   Unit = "kilograms_per_joule"
+	GramsPerJoule   Unit = "grams_per_joule"
 	Count           Unit = "count"
 	None            Unit = ""
 )

@@ -182,7 +182,7 @@ func (p *Pipeline) evaluate(n *node, t time.Time) {
 			n.inBuf[i] = math.NaN()
 			continue
 		}
-		v := p.store.Get(id)
+		v := p.store.getOwn(id)
 		if !v.Set || !v.Quality.Usable() || t.Sub(v.Time) > n.inAge[i] {
 			if n.inOpt[i] {
 				n.inBuf[i] = math.NaN()

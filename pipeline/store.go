@@ -55,6 +55,16 @@ func (st *Store) Get(id ChannelID) Value {
 	return st.vals[id]
 }
 
+// getOwn reads without the lock. Only the single writer (the ingest loop)
+// may call it: its own writes cannot race with its own reads, and readers
+// never write.
+func (st *Store) getOwn(id ChannelID) Value {
+	if int(id) >= len(st.vals) {
+		return Value{}
+	}
+	return st.vals[id]
+}
+
 // Snapshot copies all latest values into dst (reused when large enough) and returns it.
 func (st *Store) Snapshot(dst []Value) []Value {
 	st.mu.RLock()

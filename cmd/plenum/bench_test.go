@@ -17,7 +17,8 @@ import (
 
 // BenchmarkIngestDemoPhysics pushes samples of the demo's channels through
 // the real pipeline: validation, the store, the demo's derivation graph
-// (speed-density, boost, mixture, fuel flow, compressor ratio) and a
+// (speed-density, boost, mixture, fuel flow, compressor ratio, power,
+// charge air) and detectors (turbo lag, warnings, turbo guard), and a
 // recorder-sized subscription.
 func BenchmarkIngestDemoPhysics(b *testing.B) {
 	cfg, err := config.Parse("demo.yaml", demoConfig)
@@ -39,11 +40,23 @@ func BenchmarkIngestDemoPhysics(b *testing.B) {
 	if err != nil {
 		b.Fatal(err)
 	}
-	g, err := pipeline.BuildGraph(reg, ds)
+	derived := map[string]bool{}
+	for _, d := range ds {
+		for _, c := range d.Outputs() {
+			derived[c.Name] = true
+		}
+	}
+	cfg.StateDir = ""
+	dets, _, err := buildDetectors(cfg, reg, derived)
+	if err != nil {
+		b.Fatal(err)
+	}
+	g, err := pipeline.BuildGraph(reg, append(ds, dets...))
 	if err != nil {
 		b.Fatal(err)
 	}
 	p := pipeline.New(reg, g, pipeline.Options{})
+	p.BindEmitters()
 	sub := p.Subscribe("recorder", 1<<16)
 	// Plausible values per channel so that every derivation computes.
 	vals := make([]float64, len(ids))
@@ -110,4 +123,99 @@ func residentKB(b *testing.B) int {
 	}
 	b.Fatal("VmRSS not found")
 	return 0
+}
+
+// BenchmarkWarningLatency measures the wall time from handing the pipeline
+// the sample that completes a rule's minimum duration (lean under boost,
+// 300 ms) to the raise event arriving at a consumer goroutine.
+func BenchmarkWarningLatency(b *testing.B) {
+	cfg, err := config.Parse("demo.yaml", demoConfig)
+	if err != nil {
+		b.Fatal(err)
+	}
+	cfg.StateDir = ""
+	reg := pipeline.NewRegistry()
+	ids := map[string]pipeline.ChannelID{}
+	for _, n := range []string{"manifold_pressure", "baro_pressure", "wideband_voltage", "engine_speed"} {
+		ch, _ := pipeline.Standard(n)
+		ch.Source = "bench"
+		ch.MaxAge = time.Hour
+		id, err := reg.Register(ch)
+		if err != nil {
+			b.Fatal(err)
+		}
+		ids[n] = id
+	}
+	ds, err := buildDerivations(cfg, reg)
+	if err != nil {
+		b.Fatal(err)
+	}
+	derived := map[string]bool{}
+	for _, d := range ds {
+		for _, c := range d.Outputs() {
+			derived[c.Name] = true
+		}
+	}
+	dets, _, err := buildDetectors(cfg, reg, derived)
+	if err != nil {
+		b.Fatal(err)
+	}
+	g, err := pipeline.BuildGraph(reg, append(ds, dets...))
+	if err != nil {
+		b.Fatal(err)
+	}
+	p := pipeline.New(reg, g, pipeline.Options{})
+	p.BindEmitters()
+	sub := p.SubscribeEvents("latency")
+	got := make(chan time.Time, 1)
+	stop := make(chan struct{})
+	go func() {
+		var evs []pipeline.Event
+		for {
+			select {
+			case <-stop:
+				return
+			case <-sub.C():
+				_, evs = sub.Drain(nil, evs[:0])
+				for _, e := range evs {
+					if e.Kind == "warning_raised" && e.Name == "lean_under_boost" {
+						got <- time.Now()
+					}
+				}
+			}
+		}
+	}()
+	defer close(stop)
+	t := time.Unix(0, 0)
+	put := func(n string, v float64) { p.Process(pipeline.Sample{Channel: ids[n], Value: v, Time: t}) }
+	var total time.Duration
+	var worst time.Duration
+	for i := 0; i < b.N; i++ {
+		// Rich and off boost: nothing raised.
+		put("baro_pressure", 100000)
+		put("engine_speed", 5000)
+		put("wideband_voltage", 0.9) // λ 0.80
+		put("manifold_pressure", 210000)
+		t = t.Add(time.Second)
+		// Lean under boost from now on.
+		put("wideband_voltage", 2.3) // λ 0.99
+		t = t.Add(300 * time.Millisecond)
+		start := time.Now()
+		put("manifold_pressure", 210001) // completes the 300 ms
+		select {
+		case at := <-got:
+			d := at.Sub(start)
+			total += d
+			worst = max(worst, d)
+		case <-time.After(time.Second):
+			b.Fatal("no raise event")
+		}
+		// Clear it: rich again for longer than the clear-for time.
+		put("wideband_voltage", 0.9)
+		t = t.Add(2 * time.Second)
+		put("wideband_voltage", 0.9001)
+		t = t.Add(time.Second)
+	}
+	b.ReportMetric(float64(total.Microseconds())/float64(b.N), "latency_us")
+	b.ReportMetric(float64(worst.Microseconds()), "worst_latency_us")
 }

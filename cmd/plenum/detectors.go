@@ -236,7 +236,7 @@ func (d *power) Outputs() []pipeline.Channel {
 		{Name: "brake_power", Quantity: "power", Unit: pipeline.Watts, Sensor: "observed"},
 		{Name: "corrected_power", Quantity: "power", Unit: pipeline.Watts, Sensor: "corrected_" + d.std.String()},
 		{Name: "correction_factor", Quantity: "power_correction_factor", Unit: pipeline.Ratio, Sensor: d.std.String()},
-		{Name: "bsfc", Quantity: "brake_specific_fuel_consumption", Unit: pipeline.KilogramsPerJ, Sensor: "dyno"},
+		{Name: "bsfc", Quantity: "brake_specific_fuel_consumption", Unit: pipeline.GramsPerJoule, Sensor: "dyno"},
 	}
 }
 func (d *power) Derive(_ time.Time, in, out []float64) uint64 {
@@ -260,7 +260,7 @@ func (d *power) Derive(_ time.Time, in, out []float64) uint64 {
 	out[2] = cf
 	mask := uint64(0b111)
 	if !math.IsNaN(in[5]) && p > 1000 {
-		out[3] = derive.BSFC(in[5]/1000, p)
+		out[3] = derive.BSFC(in[5]/1000, p) * 1000 // g/J, the Prometheus base units
 		mask |= 0b1000
 	}
 	return mask

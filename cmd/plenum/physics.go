@@ -129,6 +129,22 @@ func (d *compressorRatio) Derive(_ time.Time, in, out []float64) uint64 {
 	return 1
 }
 
+// lambdaError is measured λ less the λ the ECU commands, when the ECU's
+// commanded equivalence ratio (PID 0x44) is polled.
+type lambdaError struct{}
+
+func (lambdaError) Name() string { return "lambda_error" }
+func (lambdaError) Inputs() []pipeline.Input {
+	return []pipeline.Input{{Name: "lambda"}, {Name: "ecu_commanded_lambda"}}
+}
+func (lambdaError) Outputs() []pipeline.Channel {
+	return []pipeline.Channel{{Name: "lambda_error", Quantity: "lambda_error", Unit: pipeline.Ratio, Sensor: "measured_minus_commanded"}}
+}
+func (lambdaError) Derive(_ time.Time, in, out []float64) uint64 {
+	out[0] = in[0] - in[1]
+	return 1
+}
+
 // buildDerivations returns the derivations the configured channels allow.
 func buildDerivations(cfg *config.Config, reg *pipeline.Registry) ([]pipeline.Derivation, error) {
 	has := func(names ...string) bool {
@@ -172,6 +188,9 @@ func buildDerivations(cfg *config.Config, reg *pipeline.Registry) ([]pipeline.De
 	}
 	if has("compressor_outlet_pressure") {
 		ds = append(ds, &compressorRatio{baro: baro})
+	}
+	if has("wideband_voltage", "ecu_commanded_lambda") && e.Wideband != (config.Wideband{}) {
+		ds = append(ds, lambdaError{})
 	}
 	return ds, nil
 }
