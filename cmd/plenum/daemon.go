@@ -92,6 +92,11 @@ func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *s
 	}
 	mux := http.NewServeMux()
 	mux.Handle("/metrics", h)
+	for _, d := range ds {
+		if ve, ok := d.(*veEstimate); ok {
+			mux.Handle("/ve-table.csv", ve)
+		}
+	}
 	mux.HandleFunc("/", func(w http.ResponseWriter, r *http.Request) {
 		if r.URL.Path != "/" {
 			http.NotFound(w, r)

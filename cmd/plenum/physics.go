@@ -3,6 +3,8 @@ package main
 import (
 	"fmt"
 	"math"
+	"net/http"
+	"sync"
 	"time"
 
 	"github.com/plenum-engine/plenum/cmd/plenum/config"
@@ -145,6 +147,41 @@ func (lambdaError) Derive(_ time.Time, in, out []float64) uint64 {
 	return 1
 }
 
+// veEstimate is the live VE estimate from a measured MAF (the ECU's PID
+// 0x10), accumulated per cell for export as CSV at /ve-table.csv.
+type veEstimate struct {
+	displacement float64
+	mu           sync.Mutex // guards acc: the HTTP handler reads it
+	acc          *derive.VEAccumulator
+}
+
+func (d *veEstimate) Name() string { return "ve_estimate" }
+func (d *veEstimate) Inputs() []pipeline.Input {
+	return []pipeline.Input{{Name: "ecu_mass_air_flow"}, {Name: "manifold_pressure"}, {Name: "intake_air_temp"}, {Name: "engine_speed"}}
+}
+func (d *veEstimate) Outputs() []pipeline.Channel {
+	return []pipeline.Channel{{Name: "volumetric_efficiency_measured", Quantity: "volumetric_efficiency", Unit: pipeline.Ratio, Sensor: "measured_maf"}}
+}
+func (d *veEstimate) Derive(_ time.Time, in, out []float64) uint64 {
+	ve := derive.MeasuredVE(in[0]/1000, in[1], in[2], in[3], d.displacement)
+	if math.IsNaN(ve) || in[3] < 500 {
+		return 0
+	}
+	d.mu.Lock()
+	d.acc.Add(in[3], in[1], ve)
+	d.mu.Unlock()
+	out[0] = ve
+	return 1
+}
+
+// ServeHTTP writes the accumulated table as CSV.
+func (d *veEstimate) ServeHTTP(w http.ResponseWriter, _ *http.Request) {
+	w.Header().Set("Content-Type", "text/csv")
+	d.mu.Lock()
+	defer d.mu.Unlock()
+	d.acc.WriteCSV(w)
+}
+
 // buildDerivations returns the derivations the configured channels allow.
 func buildDerivations(cfg *config.Config, reg *pipeline.Registry) ([]pipeline.Derivation, error) {
 	has := func(names ...string) bool {
@@ -188,6 +225,21 @@ func buildDerivations(cfg *config.Config, reg *pipeline.Registry) ([]pipeline.De
 	}
 	if has("compressor_outlet_pressure") {
 		ds = append(ds, &compressorRatio{baro: baro})
+	}
+	if has("ecu_mass_air_flow", "manifold_pressure", "intake_air_temp", "engine_speed") {
+		speeds := []float64{1000, 1500, 2000, 2500, 3000, 3500, 4000, 4500, 5000, 5500, 6000, 6500, 7000}
+		pressures := []float64{20000, 40000, 60000, 80000, 100000, 120000, 140000, 160000, 180000, 200000, 220000, 240000}
+		if t := e.VETable; t != nil {
+			speeds, pressures = t.SpeedsRPM, nil
+			for _, p := range t.PressuresKPa {
+				pressures = append(pressures, p*1000)
+			}
+		}
+		acc, err := derive.NewVEAccumulator(speeds, pressures)
+		if err != nil {
+			return nil, fmt.Errorf("engine.ve_table: %w", err)
+		}
+		ds = append(ds, &veEstimate{displacement: e.DisplacementL / 1000, acc: acc})
 	}
 	if has("wideband_voltage", "ecu_commanded_lambda") && e.Wideband != (config.Wideband{}) {
 		ds = append(ds, lambdaError{})
