@@ -266,7 +266,7 @@ func (e *Engine) Step(dt time.Duration) State {
 	if s.Running {
 		s.OilTemp = math.Min(s.OilTemp+(e.p.WarmupPerSecond*(0.3+2*load))*dts, 108)
 		s.CoolantTemp = math.Min(s.CoolantTemp+e.p.WarmupPerSecond*1.2*(0.4+load)*dts, 92)
-		s.ExhaustTemp = follow(s.ExhaustTemp, 380+560*load, dts, 1.2)
+		s.ExhaustTemp = follow(s.ExhaustTemp, 300+640*load, dts, 1.2)
 		s.OilPressure = 100000 + 380000*clamp(s.EngineSpeed/6000, 0, 1)*clamp(1.6-s.OilTemp/100, 0.6, 1.2)
 	} else {
 		s.OilPressure = 0
