@@ -21,6 +21,7 @@ import (
 	"github.com/plenum-engine/plenum/pipeline/broker"
 	"github.com/plenum-engine/plenum/pipeline/mqttpub"
 	"github.com/plenum-engine/plenum/pipeline/promexport"
+	"github.com/plenum-engine/plenum/pipeline/record"
 )
 
 // source is anything that feeds the pipeline until its context ends.
@@ -143,6 +144,27 @@ func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *s
 			return err
 		}
 	}
+	var rec *record.Recorder
+	var recSub *pipeline.Subscription
+	if cfg.Record.Dir != "" {
+		if fixed, err := record.Recover(cfg.Record.Dir); err != nil {
+			log.Warn("recovering earlier runs", "err", err)
+		} else {
+			for _, f := range fixed {
+				log.Warn("a run was cut short; its torn tail was cut and it is marked ended_abnormally", "run", f.Run, "cut_bytes", f.CutBytes)
+			}
+		}
+		run := time.Now().UTC().Format("20060102T150405.000Z")
+		rec, err = record.Open(record.Config{Dir: cfg.Record.Dir, Run: run, Vehicle: cfg.Vehicle,
+			SyncEvery: time.Duration(cfg.Record.SyncEvery), RotateBytes: int64(cfg.Record.RotateMB) << 20}, reg)
+		if err != nil {
+			ln.Close()
+			return err
+		}
+		// The recorder must see every sample: a ring of several seconds.
+		recSub = p.Subscribe("recorder", 1<<18)
+		fmt.Fprintf(stdout, "recording: %s\n", rec.Dir())
+	}
 	pub, err := mqttpub.New(mcfg, reg, p.Subscribe("mqtt", 1<<14))
 	if err != nil {
 		ln.Close()
@@ -189,6 +211,19 @@ func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *s
 	for _, s := range srcs {
 		start(s.Name(), s.Run, runCtx)
 	}
+	recCtx, recCancel := context.WithCancel(context.Background())
+	defer recCancel()
+	recDone := make(chan struct{})
+	if rec != nil {
+		go func() {
+			defer close(recDone)
+			if err := rec.Run(recCtx, recSub); err != nil {
+				log.Error("recorder stopped; samples are no longer recorded", "err", err)
+			}
+		}()
+	} else {
+		close(recDone)
+	}
 	evCtx, evCancel := context.WithCancel(context.Background())
 	defer evCancel()
 	go evm.Run(evCtx)
@@ -203,6 +238,8 @@ func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *s
 	waitTimeout(&wg, shutdownGrace)
 	pipeCancel()
 	<-pipeDone
+	recCancel()
+	<-recDone
 	pubCancel()
 	select {
 	case <-pubDone:

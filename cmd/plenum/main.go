@@ -104,6 +104,7 @@ func cmdDemo(ctx context.Context, args []string, stdout io.Writer, log *slog.Log
 	mqttAddr := fs.String("mqtt", "127.0.0.1:1883", "embedded MQTT broker listen address")
 	dur := fs.Duration("for", 0, "stop by itself after this long (0: run until interrupted)")
 	scale := fs.Float64("time-scale", 1, "simulated seconds per real second")
+	recordDir := fs.String("record", "", "record every sample and event in line protocol under this directory")
 	if err := fs.Parse(args); err != nil {
 		return usageError{err.Error()}
 	}
@@ -117,6 +118,7 @@ func cmdDemo(ctx context.Context, args []string, stdout io.Writer, log *slog.Log
 		cfg.Sim = &config.Simulator{}
 	}
 	cfg.Sim.TimeScale = *scale
+	cfg.Record.Dir = *recordDir
 	if *dur > 0 {
 		var cancel context.CancelFunc
 		ctx, cancel = context.WithTimeout(ctx, *dur)

@@ -32,6 +32,14 @@ type Config struct {
 	Warnings []WarningRule `yaml:"warnings"`
 	StateDir string        `yaml:"state_dir"` // where the turbo cool-down state survives restarts
 	CAN      []CAN         `yaml:"can"`
+	Record   Record        `yaml:"record"`
+}
+
+// Record configures the durable recording of every sample.
+type Record struct {
+	Dir       string   `yaml:"dir"`        // empty: no recording
+	SyncEvery Duration `yaml:"sync_every"` // default 200ms: at most this is lost at a power cut
+	RotateMB  int      `yaml:"rotate_mb"`  // default 64
 }
 
 // CAN is one ECU connection over CAN with OBD-II requests.

@@ -1,0 +1,381 @@
+// Package record writes every accepted sample and every event of a run in
+// InfluxDB line protocol, append-only, synced at an interval so that a power
+// cut loses at most that window.
+//
+// Layout: <dir>/<run id>/run.json (the run's identity, written once at the
+// start), <dir>/<run id>/0001.lp, 0002.lp, … (rotated by size), and, once the
+// run closes normally, <dir>/<run id>/ended. A run directory without "ended"
+// was cut short: Recover cuts a torn last line from its last file and adds
+// "ended_abnormally". Data files of earlier runs are never rewritten.
+//
+// Points:
+//
+//	plenum,channel=<name>,run=<id>,source=<source>,vehicle=<v> value=<float>,quality="ok" <ns>
+//	plenum_event,kind=<kind>,name=<name>,run=<id>,vehicle=<v> <field>=<float>,…,duration_seconds=<float> <start ns>
+package record
+
+import (
+	"bytes"
+	"context"
+	"encoding/json"
+	"errors"
+	"fmt"
+	"io"
+	"math"
+	"os"
+	"path/filepath"
+	"sort"
+	"strings"
+	"sync/atomic"
+	"time"
+
+	"github.com/influxdata/line-protocol/v2/lineprotocol"
+
+	"github.com/plenum-engine/plenum/pipeline"
+)
+
+// Config configures a Recorder.
+type Config struct {
+	Dir         string
+	Run         string // run id; a directory name
+	Vehicle     string
+	Label       string
+	SyncEvery   time.Duration // default 200 ms
+	RotateBytes int64         // default 64 MiB
+}
+
+// Meta is the run's identity, in run.json.
+type Meta struct {
+	ID      string    `json:"id"`
+	Vehicle string    `json:"vehicle"`
+	Label   string    `json:"label,omitempty"`
+	Start   time.Time `json:"start"`
+}
+
+// Recorder appends points to the current file of one run. Write and
+// WriteEvent buffer; Sync writes the buffer and fsyncs. Not safe for
+// concurrent use: one goroutine (Run) owns it.
+type Recorder struct {
+	cfg      Config
+	dir      string
+	chans    []pipeline.Channel
+	reg      *pipeline.Registry
+	f        *os.File
+	fileNo   int
+	size     int64
+	enc      lineprotocol.Encoder
+	points   atomic.Uint64
+	failed   atomic.Uint64
+	syncs    atomic.Uint64
+	qvals    []lineprotocol.Value
+}
+
+// Open creates the run's directory and its first file.
+func Open(cfg Config, reg *pipeline.Registry) (*Recorder, error) {
+	if cfg.Run == "" || strings.ContainsAny(cfg.Run, `/\`) || cfg.Run == "." || cfg.Run == ".." {
+		return nil, fmt.Errorf("record: run id %q is not a directory name", cfg.Run)
+	}
+	if cfg.SyncEvery <= 0 {
+		cfg.SyncEvery = 200 * time.Millisecond
+	}
+	if cfg.RotateBytes <= 0 {
+		cfg.RotateBytes = 64 << 20
+	}
+	dir := filepath.Join(cfg.Dir, cfg.Run)
+	if err := os.MkdirAll(dir, 0o755); err != nil {
+		return nil, fmt.Errorf("record: %w", err)
+	}
+	if _, err := os.Stat(filepath.Join(dir, "run.json")); err == nil {
+		return nil, fmt.Errorf("record: run %s exists already; earlier runs are never written to", cfg.Run)
+	}
+	meta, _ := json.MarshalIndent(Meta{ID: cfg.Run, Vehicle: cfg.Vehicle, Label: cfg.Label, Start: time.Now().UTC()}, "", "  ")
+	if err := writeSynced(filepath.Join(dir, "run.json"), meta); err != nil {
+		return nil, err
+	}
+	r := &Recorder{cfg: cfg, dir: dir, reg: reg, chans: reg.Channels()}
+	for q := pipeline.OK; q <= pipeline.SensorFault; q++ {
+		v, _ := lineprotocol.StringValue(q.String())
+		r.qvals = append(r.qvals, v)
+	}
+	r.enc.SetPrecision(lineprotocol.Nanosecond)
+	if err := r.rotate(); err != nil {
+		return nil, err
+	}
+	return r, nil
+}
+
+func writeSynced(path string, b []byte) error {
+	f, err := os.OpenFile(path, os.O_CREATE|os.O_EXCL|os.O_WRONLY, 0o644)
+	if err != nil {
+		return fmt.Errorf("record: %w", err)
+	}
+	if _, err := f.Write(b); err != nil {
+		f.Close()
+		return fmt.Errorf("record: %w", err)
+	}
+	if err := f.Sync(); err != nil {
+		f.Close()
+		return fmt.Errorf("record: %w", err)
+	}
+	return f.Close()
+}
+
+func (r *Recorder) rotate() error {
+	if r.f != nil {
+		if err := r.f.Sync(); err != nil {
+			return fmt.Errorf("record: sync: %w", err)
+		}
+		r.f.Close()
+	}
+	r.fileNo++
+	name := filepath.Join(r.dir, fmt.Sprintf("%04d.lp", r.fileNo))
+	f, err := os.OpenFile(name, os.O_CREATE|os.O_EXCL|os.O_WRONLY|os.O_APPEND, 0o644)
+	if err != nil {
+		return fmt.Errorf("record: %w", err)
+	}
+	r.f, r.size = f, 0
+	return nil
+}
+
+// Dir is the run's directory.
+func (r *Recorder) Dir() string { return r.dir }
+
+// Points returns how many points were encoded; Failed how many were refused
+// by the encoder (NaN values are never written).
+func (r *Recorder) Points() uint64 { return r.points.Load() }
+
+// Failed returns how many points the encoder refused.
+func (r *Recorder) Failed() uint64 { return r.failed.Load() }
+
+// Write encodes one sample.
+func (r *Recorder) Write(s pipeline.Sample) {
+	if int(s.Channel) >= len(r.chans) {
+		r.chans = r.reg.Channels()
+		if int(s.Channel) >= len(r.chans) {
+			r.failed.Add(1)
+			return
+		}
+	}
+	if math.IsNaN(s.Value) || math.IsInf(s.Value, 0) {
+		s.Value = 0 // the quality field says why; line protocol has no NaN
+	}
+	c := &r.chans[s.Channel]
+	r.enc.StartLine("plenum")
+	r.enc.AddTag("channel", c.Name)
+	r.enc.AddTag("run", r.cfg.Run)
+	r.enc.AddTag("source", c.Source)
+	r.enc.AddTag("vehicle", r.cfg.Vehicle)
+	v, _ := lineprotocol.FloatValue(s.Value)
+	r.enc.AddField("value", v)
+	r.enc.AddField("quality", r.quality(s.Quality))
+	r.enc.EndLine(s.Time)
+	r.check()
+}
+
+// quality returns the field value of q, built once per quality.
+func (r *Recorder) quality(q pipeline.Quality) lineprotocol.Value {
+	if int(q) < len(r.qvals) {
+		return r.qvals[q]
+	}
+	v, _ := lineprotocol.StringValue(q.String())
+	return v
+}
+
+// WriteEvent encodes one event.
+func (r *Recorder) WriteEvent(e pipeline.Event) {
+	r.enc.StartLine("plenum_event")
+	r.enc.AddTag("kind", e.Kind)
+	if e.Name != "" {
+		r.enc.AddTag("name", e.Name)
+	}
+	r.enc.AddTag("run", r.cfg.Run)
+	r.enc.AddTag("vehicle", r.cfg.Vehicle)
+	keys := make([]string, 0, len(e.Fields))
+	for k, v := range e.Fields {
+		if !math.IsNaN(v) && !math.IsInf(v, 0) {
+			keys = append(keys, k)
+		}
+	}
+	sort.Strings(keys)
+	for _, k := range keys {
+		r.enc.AddField(k, lineprotocol.MustNewValue(e.Fields[k]))
+	}
+	dur := 0.0
+	if !e.End.IsZero() {
+		dur = e.End.Sub(e.Start).Seconds()
+	}
+	r.enc.AddField("duration_seconds", lineprotocol.MustNewValue(dur))
+	r.enc.EndLine(e.Start)
+	r.check()
+}
+
+func (r *Recorder) check() {
+	if err := r.enc.Err(); err != nil {
+		r.failed.Add(1)
+		r.enc.ClearErr()
+		return
+	}
+	r.points.Add(1)
+}
+
+// Sync writes the buffered points and fsyncs the file, rotating when it has
+// grown past the configured size.
+func (r *Recorder) Sync() error {
+	b := r.enc.Bytes()
+	if len(b) > 0 {
+		n, err := r.f.Write(b)
+		r.size += int64(n)
+		if err != nil {
+			return fmt.Errorf("record: write: %w", err)
+		}
+		r.enc.Reset()
+	}
+	if err := r.f.Sync(); err != nil {
+		return fmt.Errorf("record: sync: %w", err)
+	}
+	r.syncs.Add(1)
+	if r.size >= r.cfg.RotateBytes {
+		return r.rotate()
+	}
+	return nil
+}
+
+// Close syncs and marks the run as ended normally.
+func (r *Recorder) Close() error {
+	if err := r.Sync(); err != nil {
+		return err
+	}
+	if err := r.f.Close(); err != nil {
+		return fmt.Errorf("record: %w", err)
+	}
+	return writeSynced(filepath.Join(r.dir, "ended"), []byte(time.Now().UTC().Format(time.RFC3339Nano)+"\n"))
+}
+
+// Recovered says what Recover did to one run.
+type Recovered struct {
+	Run      string
+	CutBytes int64 // torn tail removed from the last file
+	Marked   bool  // ended_abnormally was added
+}
+
+// Recover finds runs in dir that were cut short, cuts a torn last line from
+// each one's last file, and marks them as ended abnormally. Runs that ended
+// normally are not touched.
+func Recover(dir string) ([]Recovered, error) {
+	ents, err := os.ReadDir(dir)
+	if err != nil {
+		if errors.Is(err, os.ErrNotExist) {
+			return nil, nil
+		}
+		return nil, fmt.Errorf("record: %w", err)
+	}
+	var out []Recovered
+	for _, e := range ents {
+		if !e.IsDir() {
+			continue
+		}
+		rd := filepath.Join(dir, e.Name())
+		if exists(filepath.Join(rd, "ended")) || exists(filepath.Join(rd, "ended_abnormally")) || !exists(filepath.Join(rd, "run.json")) {
+			continue
+		}
+		files, _ := filepath.Glob(filepath.Join(rd, "*.lp"))
+		sort.Strings(files)
+		rec := Recovered{Run: e.Name()}
+		if len(files) > 0 {
+			cut, err := CutTornTail(files[len(files)-1])
+			if err != nil {
+				return out, err
+			}
+			rec.CutBytes = cut
+		}
+		if err := writeSynced(filepath.Join(rd, "ended_abnormally"), []byte("recovered "+time.Now().UTC().Format(time.RFC3339Nano)+"\n")); err != nil {
+			return out, err
+		}
+		rec.Marked = true
+		out = append(out, rec)
+	}
+	return out, nil
+}
+
+func exists(p string) bool {
+	_, err := os.Stat(p)
+	return err == nil
+}
+
+// CutTornTail truncates the file after its last newline and returns how many
+// bytes it removed.
+func CutTornTail(path string) (int64, error) {
+	f, err := os.OpenFile(path, os.O_RDWR, 0)
+	if err != nil {
+		return 0, fmt.Errorf("record: %w", err)
+	}
+	defer f.Close()
+	st, err := f.Stat()
+	if err != nil {
+		return 0, fmt.Errorf("record: %w", err)
+	}
+	size := st.Size()
+	keep, err := lastNewline(f, size)
+	if err != nil {
+		return 0, fmt.Errorf("record: %s: %w", path, err)
+	}
+	if keep == size {
+		return 0, nil
+	}
+	if err := f.Truncate(keep); err != nil {
+		return 0, fmt.Errorf("record: %w", err)
+	}
+	return size - keep, f.Sync()
+}
+
+// lastNewline returns the length of the file up to and including its last
+// newline (0 if there is none).
+func lastNewline(f io.ReaderAt, size int64) (int64, error) {
+	const chunk = 4096
+	buf := make([]byte, chunk)
+	for end := size; end > 0; {
+		start := max(0, end-chunk)
+		n, err := f.ReadAt(buf[:end-start], start)
+		if err != nil && !errors.Is(err, io.EOF) {
+			return 0, err
+		}
+		if i := bytes.LastIndexByte(buf[:n], '\n'); i >= 0 {
+			return start + int64(i) + 1, nil
+		}
+		end = start
+	}
+	return 0, nil
+}
+
+// Run records everything sub delivers until ctx is done, syncing every
+// SyncEvery, then closes the run. A failing disk is reported through the
+// returned error; samples are never blocked on it (the subscription drops
+// and counts what the recorder cannot take).
+func (r *Recorder) Run(ctx context.Context, sub *pipeline.Subscription) error {
+	tick := time.NewTicker(r.cfg.SyncEvery)
+	defer tick.Stop()
+	var buf []pipeline.Sample
+	var evs []pipeline.Event
+	drain := func() {
+		buf, evs = sub.Drain(buf[:0], evs[:0])
+		for _, s := range buf {
+			r.Write(s)
+		}
+		for _, e := range evs {
+			r.WriteEvent(e)
+		}
+	}
+	for {
+		select {
+		case <-ctx.Done():
+			drain()
+			return r.Close()
+		case <-sub.C():
+			drain()
+		case <-tick.C:
+			if err := r.Sync(); err != nil {
+				return err
+			}
+		}
+	}
+}
