@@ -36,22 +36,12 @@ func BenchmarkIngestDemoPhysics(b *testing.B) {
 		}
 		ids = append(ids, id)
 	}
-	ds, err := buildDerivations(cfg, reg)
-	if err != nil {
-		b.Fatal(err)
-	}
-	derived := map[string]bool{}
-	for _, d := range ds {
-		for _, c := range d.Outputs() {
-			derived[c.Name] = true
-		}
-	}
 	cfg.StateDir = ""
-	dets, _, err := buildDetectors(cfg, reg, derived)
+	ds, _, err := buildAll(cfg, reg)
 	if err != nil {
 		b.Fatal(err)
 	}
-	g, err := pipeline.BuildGraph(reg, append(ds, dets...))
+	g, err := pipeline.BuildGraph(reg, ds)
 	if err != nil {
 		b.Fatal(err)
 	}
@@ -146,21 +136,11 @@ func BenchmarkWarningLatency(b *testing.B) {
 		}
 		ids[n] = id
 	}
-	ds, err := buildDerivations(cfg, reg)
+	ds, _, err := buildAll(cfg, reg)
 	if err != nil {
 		b.Fatal(err)
 	}
-	derived := map[string]bool{}
-	for _, d := range ds {
-		for _, c := range d.Outputs() {
-			derived[c.Name] = true
-		}
-	}
-	dets, _, err := buildDetectors(cfg, reg, derived)
-	if err != nil {
-		b.Fatal(err)
-	}
-	g, err := pipeline.BuildGraph(reg, append(ds, dets...))
+	g, err := pipeline.BuildGraph(reg, ds)
 	if err != nil {
 		b.Fatal(err)
 	}

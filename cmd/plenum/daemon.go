@@ -44,21 +44,10 @@ func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *s
 		return err
 	}
 	defer cleanup()
-	ds, err := buildDerivations(cfg, reg)
+	ds, guard, err := buildAll(cfg, reg)
 	if err != nil {
 		return err
 	}
-	derived := map[string]bool{}
-	for _, d := range ds {
-		for _, c := range d.Outputs() {
-			derived[c.Name] = true
-		}
-	}
-	dets, guard, err := buildDetectors(cfg, reg, derived)
-	if err != nil {
-		return err
-	}
-	ds = append(ds, dets...)
 	if guard != nil && guard.stateFile != "" {
 		if err := os.MkdirAll(filepath.Dir(guard.stateFile), 0o755); err != nil {
 			log.Warn("turbo state directory; the cool-down state will not survive a restart", "err", err)

@@ -246,3 +246,23 @@ func buildDerivations(cfg *config.Config, reg *pipeline.Registry) ([]pipeline.De
 	}
 	return ds, nil
 }
+
+// buildAll returns the derivations and then the detectors for cfg over the
+// channels registered in reg, and the turbo guard (nil without engine speed).
+func buildAll(cfg *config.Config, reg *pipeline.Registry) ([]pipeline.Derivation, *turboGuard, error) {
+	ds, err := buildDerivations(cfg, reg)
+	if err != nil {
+		return nil, nil, err
+	}
+	derived := map[string]bool{}
+	for _, d := range ds {
+		for _, c := range d.Outputs() {
+			derived[c.Name] = true
+		}
+	}
+	dets, guard, err := buildDetectors(cfg, reg, derived)
+	if err != nil {
+		return nil, nil, err
+	}
+	return append(ds, dets...), guard, nil
+}
