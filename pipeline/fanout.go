@@ -98,10 +98,11 @@ func (s *Subscription) Drain(dst []Sample, evs []Event) ([]Sample, []Event) {
 	return dst, evs
 }
 
-// fanout distributes samples and events to subscriptions.
+// fanout distributes samples and events to subscriptions. The list is
+// copied on subscribe and read without a lock on the hot path.
 type fanout struct {
-	mu   sync.RWMutex
-	subs []*Subscription
+	mu   sync.Mutex // serialises subscribe
+	subs atomic.Pointer[[]*Subscription]
 }
 
 func (f *fanout) subscribe(name string, size int) *Subscription {
@@ -110,29 +111,35 @@ func (f *fanout) subscribe(name string, size int) *Subscription {
 	}
 	s := &Subscription{name: name, buf: make([]Sample, size), maxEv: 1024, notify: make(chan struct{}, 1)}
 	f.mu.Lock()
-	f.subs = append(f.subs, s)
+	var next []*Subscription
+	if cur := f.subs.Load(); cur != nil {
+		next = append(next, *cur...)
+	}
+	next = append(next, s)
+	f.subs.Store(&next)
 	f.mu.Unlock()
 	return s
 }
 
-func (f *fanout) sample(x Sample) {
-	f.mu.RLock()
-	for _, s := range f.subs {
-		s.push(x)
+func (f *fanout) list() []*Subscription {
+	if cur := f.subs.Load(); cur != nil {
+		return append([]*Subscription(nil), *cur...)
 	}
-	f.mu.RUnlock()
+	return nil
+}
+
+func (f *fanout) sample(x Sample) {
+	if cur := f.subs.Load(); cur != nil {
+		for _, s := range *cur {
+			s.push(x)
+		}
+	}
 }
 
 func (f *fanout) event(e Event) {
-	f.mu.RLock()
-	for _, s := range f.subs {
-		s.pushEvent(e)
+	if cur := f.subs.Load(); cur != nil {
+		for _, s := range *cur {
+			s.pushEvent(e)
+		}
 	}
-	f.mu.RUnlock()
-}
-
-func (f *fanout) list() []*Subscription {
-	f.mu.RLock()
-	defer f.mu.RUnlock()
-	return append([]*Subscription(nil), f.subs...)
 }

@@ -22,7 +22,7 @@ func (v Value) Fresh(now time.Time, maxAge time.Duration) bool {
 // One goroutine (the pipeline's ingest loop) writes; any number read
 // snapshots concurrently.
 type Store struct {
-	mu   sync.RWMutex
+	mu   sync.Mutex // a plain mutex: the writer takes it per sample, readers rarely
 	vals []Value
 }
 
@@ -47,8 +47,8 @@ func (st *Store) grow(n int) {
 
 // Get returns the latest value of id.
 func (st *Store) Get(id ChannelID) Value {
-	st.mu.RLock()
-	defer st.mu.RUnlock()
+	st.mu.Lock()
+	defer st.mu.Unlock()
 	if int(id) >= len(st.vals) {
 		return Value{}
 	}
@@ -67,8 +67,8 @@ func (st *Store) getOwn(id ChannelID) Value {
 
 // Snapshot copies all latest values into dst (reused when large enough) and returns it.
 func (st *Store) Snapshot(dst []Value) []Value {
-	st.mu.RLock()
-	defer st.mu.RUnlock()
+	st.mu.Lock()
+	defer st.mu.Unlock()
 	dst = append(dst[:0], st.vals...)
 	return dst
 }

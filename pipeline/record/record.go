@@ -56,18 +56,18 @@ type Meta struct {
 // WriteEvent buffer; Sync writes the buffer and fsyncs. Not safe for
 // concurrent use: one goroutine (Run) owns it.
 type Recorder struct {
-	cfg      Config
-	dir      string
-	chans    []pipeline.Channel
-	reg      *pipeline.Registry
-	f        *os.File
-	fileNo   int
-	size     int64
-	enc      lineprotocol.Encoder
-	points   atomic.Uint64
-	failed   atomic.Uint64
-	syncs    atomic.Uint64
-	qvals    []lineprotocol.Value
+	cfg    Config
+	dir    string
+	chans  []pipeline.Channel
+	reg    *pipeline.Registry
+	f      *os.File
+	fileNo int
+	size   int64
+	enc    lineprotocol.Encoder
+	points atomic.Uint64
+	failed atomic.Uint64
+	syncs  atomic.Uint64
+	qvals  []lineprotocol.Value
 }
 
 // Open creates the run's directory and its first file.

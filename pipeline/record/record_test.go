@@ -256,4 +256,3 @@ func BenchmarkRecorder(b *testing.B) {
 	}
 	b.ReportMetric(float64(b.N)/b.Elapsed().Seconds(), "points/s")
 }
-
