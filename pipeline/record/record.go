@@ -25,6 +25,7 @@ import (
 	"os"
 	"path/filepath"
 	"sort"
+	"strconv"
 	"strings"
 	"sync/atomic"
 	"time"
@@ -68,6 +69,8 @@ type Recorder struct {
 	failed atomic.Uint64
 	syncs  atomic.Uint64
 	qvals  []lineprotocol.Value
+	prefix [][]byte // escaped series key per channel
+	qtext  []string // ,quality="ok" and so on, with the space before the time
 }
 
 // Open creates the run's directory and its first file.
@@ -96,7 +99,9 @@ func Open(cfg Config, reg *pipeline.Registry) (*Recorder, error) {
 	for q := pipeline.OK; q <= pipeline.SensorFault; q++ {
 		v, _ := lineprotocol.StringValue(q.String())
 		r.qvals = append(r.qvals, v)
+		r.qtext = append(r.qtext, `,quality="`+q.String()+`" `)
 	}
+	r.buildPrefixes()
 	r.enc.SetPrecision(lineprotocol.Nanosecond)
 	if err := r.rotate(); err != nil {
 		return nil, err
@@ -147,29 +152,52 @@ func (r *Recorder) Points() uint64 { return r.points.Load() }
 // Failed returns how many points the encoder refused.
 func (r *Recorder) Failed() uint64 { return r.failed.Load() }
 
-// Write encodes one sample.
+// Write encodes one sample. The escaped series key of each channel
+// (measurement and tags) is built once with the line-protocol encoder; the
+// fields and time are appended to it the way the encoder writes them.
 func (r *Recorder) Write(s pipeline.Sample) {
-	if int(s.Channel) >= len(r.chans) {
+	if int(s.Channel) >= len(r.prefix) {
 		r.chans = r.reg.Channels()
 		if int(s.Channel) >= len(r.chans) {
 			r.failed.Add(1)
 			return
 		}
+		r.buildPrefixes()
 	}
 	if math.IsNaN(s.Value) || math.IsInf(s.Value, 0) {
 		s.Value = 0 // the quality field says why; line protocol has no NaN
 	}
-	c := &r.chans[s.Channel]
-	r.enc.StartLine("plenum")
-	r.enc.AddTag("channel", c.Name)
-	r.enc.AddTag("run", r.cfg.Run)
-	r.enc.AddTag("source", c.Source)
-	r.enc.AddTag("vehicle", r.cfg.Vehicle)
-	v, _ := lineprotocol.FloatValue(s.Value)
-	r.enc.AddField("value", v)
-	r.enc.AddField("quality", r.quality(s.Quality))
-	r.enc.EndLine(s.Time)
-	r.check()
+	b := r.enc.Bytes()
+	b = append(b, r.prefix[s.Channel]...)
+	b = append(b, " value="...)
+	b = strconv.AppendFloat(b, s.Value, 'g', -1, 64)
+	b = append(b, r.qtext[min(int(s.Quality), len(r.qtext)-1)]...)
+	b = strconv.AppendInt(b, s.Time.UnixNano(), 10)
+	b = append(b, '\n')
+	r.enc.SetBuffer(b)
+	r.points.Add(1)
+}
+
+// buildPrefixes encodes each channel's series key once.
+func (r *Recorder) buildPrefixes() {
+	var e lineprotocol.Encoder
+	r.prefix = r.prefix[:0]
+	for _, c := range r.chans {
+		e.Reset()
+		e.StartLine("plenum")
+		e.AddTag("channel", c.Name)
+		e.AddTag("run", r.cfg.Run)
+		e.AddTag("source", c.Source)
+		e.AddTag("vehicle", r.cfg.Vehicle)
+		e.AddField("x", lineprotocol.MustNewValue(int64(0)))
+		e.EndLine(time.Unix(0, 0))
+		line := e.Bytes()
+		if err := e.Err(); err != nil {
+			r.prefix = append(r.prefix, nil)
+			continue
+		}
+		r.prefix = append(r.prefix, append([]byte(nil), line[:bytes.LastIndex(line, []byte(" x="))]...))
+	}
 }
 
 // quality returns the field value of q, built once per quality.
