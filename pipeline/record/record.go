@@ -70,6 +70,8 @@ type Recorder struct {
 	syncs  atomic.Uint64
 	qvals  []lineprotocol.Value
 	prefix [][]byte // escaped series key per channel
+	sum    *summarizer
+	roles  []role
 	qtext  []string // ,quality="ok" and so on, with the space before the time
 }
 
@@ -95,7 +97,7 @@ func Open(cfg Config, reg *pipeline.Registry) (*Recorder, error) {
 	if err := writeSynced(filepath.Join(dir, "run.json"), meta); err != nil {
 		return nil, err
 	}
-	r := &Recorder{cfg: cfg, dir: dir, reg: reg, chans: reg.Channels()}
+	r := &Recorder{cfg: cfg, dir: dir, reg: reg, chans: reg.Channels(), sum: newSummarizer(cfg.Run, cfg.Vehicle)}
 	for q := pipeline.OK; q <= pipeline.SensorFault; q++ {
 		v, _ := lineprotocol.StringValue(q.String())
 		r.qvals = append(r.qvals, v)
@@ -167,6 +169,7 @@ func (r *Recorder) Write(s pipeline.Sample) {
 	if math.IsNaN(s.Value) || math.IsInf(s.Value, 0) {
 		s.Value = 0 // the quality field says why; line protocol has no NaN
 	}
+	r.sum.sample(r.roles[s.Channel], s)
 	b := r.enc.Bytes()
 	b = append(b, r.prefix[s.Channel]...)
 	b = append(b, " value="...)
@@ -182,7 +185,9 @@ func (r *Recorder) Write(s pipeline.Sample) {
 func (r *Recorder) buildPrefixes() {
 	var e lineprotocol.Encoder
 	r.prefix = r.prefix[:0]
+	r.roles = r.roles[:0]
 	for _, c := range r.chans {
+		r.roles = append(r.roles, roleOf(c.Name))
 		e.Reset()
 		e.StartLine("plenum")
 		e.AddTag("channel", c.Name)
@@ -211,6 +216,7 @@ func (r *Recorder) quality(q pipeline.Quality) lineprotocol.Value {
 
 // WriteEvent encodes one event.
 func (r *Recorder) WriteEvent(e pipeline.Event) {
+	r.sum.event(e)
 	r.enc.StartLine("plenum_event")
 	r.enc.AddTag("kind", e.Kind)
 	if e.Name != "" {
@@ -268,13 +274,20 @@ func (r *Recorder) Sync() error {
 	return nil
 }
 
-// Close syncs and marks the run as ended normally.
+// Summary returns the run's summary so far.
+func (r *Recorder) Summary() Summary { return r.sum.s }
+
+// Close syncs, writes summary.json beside the data and marks the run as
+// ended normally.
 func (r *Recorder) Close() error {
 	if err := r.Sync(); err != nil {
 		return err
 	}
 	if err := r.f.Close(); err != nil {
 		return fmt.Errorf("record: %w", err)
+	}
+	if err := writeSynced(filepath.Join(r.dir, "summary.json"), r.sum.s.JSON()); err != nil {
+		return err
 	}
 	return writeSynced(filepath.Join(r.dir, "ended"), []byte(time.Now().UTC().Format(time.RFC3339Nano)+"\n"))
 }

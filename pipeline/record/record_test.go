@@ -3,6 +3,7 @@ package record
 import (
 	"bufio"
 	"bytes"
+	"encoding/json"
 	"fmt"
 	"os"
 	"os/exec"
@@ -255,4 +256,51 @@ func BenchmarkRecorder(b *testing.B) {
 		b.Fatal(err)
 	}
 	b.ReportMetric(float64(b.N)/b.Elapsed().Seconds(), "points/s")
+}
+
+func TestSummary(t *testing.T) {
+	dir := t.TempDir()
+	reg := pipeline.NewRegistry()
+	ids := map[string]pipeline.ChannelID{}
+	for _, n := range []string{"engine_speed", "dyno_torque", "corrected_power", "boost_pressure", "lambda", "intake_air_temp"} {
+		id, _ := reg.Register(pipeline.Channel{Name: n, Quantity: n, Source: "s"})
+		ids[n] = id
+	}
+	r, err := Open(Config{Dir: dir, Run: "pull", Vehicle: "v"}, reg)
+	if err != nil {
+		t.Fatal(err)
+	}
+	t0 := time.Unix(100, 0)
+	put := func(n string, v float64, dt time.Duration) {
+		r.Write(pipeline.Sample{Channel: ids[n], Value: v, Time: t0.Add(dt)})
+	}
+	put("engine_speed", 3000, 0)
+	put("dyno_torque", 200, 0)
+	put("corrected_power", 62832, 0) // 2π·50 rev/s·200 N·m (Heywood eq. 2.2)
+	put("boost_pressure", 5000, 0)
+	put("lambda", 1.0, 0) // off boost: not "under load"
+	put("boost_pressure", 110000, time.Second)
+	put("lambda", 0.79, time.Second)
+	put("lambda", 0.86, 2*time.Second)
+	put("engine_speed", 6000, 3*time.Second)
+	put("dyno_torque", 150, 3*time.Second)
+	put("intake_air_temp", 48, 3*time.Second)
+	r.WriteEvent(pipeline.Event{Kind: "turbo_lag", Start: t0})
+	r.WriteEvent(pipeline.Event{Kind: "warning_raised", Name: "lean_under_boost", Start: t0})
+	if err := r.Close(); err != nil {
+		t.Fatal(err)
+	}
+	b, err := os.ReadFile(filepath.Join(dir, "pull", "summary.json"))
+	if err != nil {
+		t.Fatal(err)
+	}
+	var s Summary
+	if err := json.Unmarshal(b, &s); err != nil {
+		t.Fatal(err)
+	}
+	if *s.PeakTorqueNm != 200 || *s.PeakTorqueRPM != 3000 || *s.PeakCorrectedPowerW != 62832 || *s.PeakPowerRPM != 3000 ||
+		*s.PeakBoostPa != 110000 || *s.MinLambdaUnderLoad != 0.79 || *s.MaxLambdaUnderLoad != 0.86 || *s.MaxIntakeAirC != 48 ||
+		s.LagEvents != 1 || s.WarningsRaised != 1 || s.Samples != 11 || s.End.Sub(s.Start) != 3*time.Second {
+		t.Fatalf("summary %s", b)
+	}
 }

@@ -1,0 +1,136 @@
+package record
+
+import (
+	"encoding/json"
+	"math"
+	"time"
+
+	"github.com/plenum-engine/plenum/pipeline"
+)
+
+// Summary is what a run comes to, computed from every sample it recorded.
+// Peaks are in canonical units; NaN-free (absent values are omitted).
+type Summary struct {
+	Run                 string    `json:"run"`
+	Vehicle             string    `json:"vehicle"`
+	Start               time.Time `json:"start"`
+	End                 time.Time `json:"end"`
+	Samples             uint64    `json:"samples"`
+	PeakCorrectedPowerW *float64  `json:"peak_corrected_power_watts,omitempty"`
+	PeakPowerRPM        *float64  `json:"peak_power_engine_speed_rpm,omitempty"`
+	PeakTorqueNm        *float64  `json:"peak_torque_newton_meters,omitempty"`
+	PeakTorqueRPM       *float64  `json:"peak_torque_engine_speed_rpm,omitempty"`
+	PeakBoostPa         *float64  `json:"peak_boost_pascals,omitempty"`
+	MinLambdaUnderLoad  *float64  `json:"min_lambda_under_load,omitempty"`
+	MaxLambdaUnderLoad  *float64  `json:"max_lambda_under_load,omitempty"`
+	MaxIntakeAirC       *float64  `json:"max_intake_air_temp_celsius,omitempty"`
+	LagEvents           int       `json:"turbo_lag_events"`
+	WarningsRaised      int       `json:"warnings_raised"`
+}
+
+// underLoad is the boost above which λ counts as "under load" (common
+// practice, no source: clearly on boost).
+const underLoad = 20000.0
+
+// role is what a channel means to the summary.
+type role uint8
+
+const (
+	roleNone role = iota
+	roleRPM
+	rolePower
+	roleTorque
+	roleBoost
+	roleLambda
+	roleIAT
+)
+
+func roleOf(name string) role {
+	switch name {
+	case "engine_speed":
+		return roleRPM
+	case "corrected_power":
+		return rolePower
+	case "dyno_torque":
+		return roleTorque
+	case "boost_pressure":
+		return roleBoost
+	case "lambda":
+		return roleLambda
+	case "intake_air_temp":
+		return roleIAT
+	}
+	return roleNone
+}
+
+// summarizer folds samples and events into a Summary.
+type summarizer struct {
+	rpm, boost         float64
+	haveRPM, haveBoost bool
+	s                  Summary
+}
+
+func newSummarizer(run, vehicle string) *summarizer {
+	return &summarizer{s: Summary{Run: run, Vehicle: vehicle}}
+}
+
+func peak(p **float64, v float64, higher bool) bool {
+	if *p == nil || (higher && v > **p) || (!higher && v < **p) {
+		x := v
+		*p = &x
+		return true
+	}
+	return false
+}
+
+func (z *summarizer) sample(ro role, s pipeline.Sample) {
+	if z.s.Start.IsZero() || s.Time.Before(z.s.Start) {
+		z.s.Start = s.Time
+	}
+	if s.Time.After(z.s.End) {
+		z.s.End = s.Time
+	}
+	z.s.Samples++
+	if ro == roleNone || !s.Quality.Usable() || math.IsNaN(s.Value) {
+		return
+	}
+	switch ro {
+	case roleRPM:
+		z.rpm, z.haveRPM = s.Value, true
+	case rolePower:
+		if peak(&z.s.PeakCorrectedPowerW, s.Value, true) && z.haveRPM {
+			x := z.rpm
+			z.s.PeakPowerRPM = &x
+		}
+	case roleTorque:
+		if peak(&z.s.PeakTorqueNm, s.Value, true) && z.haveRPM {
+			x := z.rpm
+			z.s.PeakTorqueRPM = &x
+		}
+	case roleBoost:
+		z.boost, z.haveBoost = s.Value, true
+		peak(&z.s.PeakBoostPa, s.Value, true)
+	case roleLambda:
+		if z.haveBoost && z.boost > underLoad {
+			peak(&z.s.MinLambdaUnderLoad, s.Value, false)
+			peak(&z.s.MaxLambdaUnderLoad, s.Value, true)
+		}
+	case roleIAT:
+		peak(&z.s.MaxIntakeAirC, s.Value, true)
+	}
+}
+
+func (z *summarizer) event(e pipeline.Event) {
+	switch e.Kind {
+	case "turbo_lag":
+		z.s.LagEvents++
+	case "warning_raised":
+		z.s.WarningsRaised++
+	}
+}
+
+// JSON returns the summary as indented JSON.
+func (s Summary) JSON() []byte {
+	b, _ := json.MarshalIndent(s, "", "  ")
+	return append(b, '\n')
+}
