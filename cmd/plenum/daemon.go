@@ -145,7 +145,7 @@ func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *s
 		}
 		run := time.Now().UTC().Format("20060102T150405.000Z")
 		rec, err = record.Open(record.Config{Dir: cfg.Record.Dir, Run: run, Vehicle: cfg.Vehicle,
-			SyncEvery: time.Duration(cfg.Record.SyncEvery), RotateBytes: int64(cfg.Record.RotateMB) << 20}, reg)
+			SyncEvery: time.Duration(cfg.Record.SyncEvery), RotateBytes: int64(cfg.Record.RotateMB) << 20, ConfigYAML: cfg.Raw}, reg)
 		if err != nil {
 			ln.Close()
 			return err

@@ -42,6 +42,7 @@ type Config struct {
 	Vehicle     string
 	Label       string
 	SyncEvery   time.Duration // default 200 ms
+	ConfigYAML  []byte        // the configuration the run is made with, kept as config.yaml
 	RotateBytes int64         // default 64 MiB
 }
 
@@ -97,7 +98,35 @@ func Open(cfg Config, reg *pipeline.Registry) (*Recorder, error) {
 	if err := writeSynced(filepath.Join(dir, "run.json"), meta); err != nil {
 		return nil, err
 	}
-	r := &Recorder{cfg: cfg, dir: dir, reg: reg, chans: reg.Channels(), sum: newSummarizer(cfg.Run, cfg.Vehicle)}
+	if len(cfg.ConfigYAML) > 0 {
+		if err := writeSynced(filepath.Join(dir, "config.yaml"), cfg.ConfigYAML); err != nil {
+			return nil, err
+		}
+	}
+	r := newRecorder(cfg, reg)
+	r.dir = dir
+	if err := r.rotate(); err != nil {
+		return nil, err
+	}
+	return r, nil
+}
+
+// NewEncoder returns a recorder without files: Write and WriteEvent encode
+// into memory, and TakeBytes hands the encoded lines over. Replay uses it.
+func NewEncoder(run, vehicle string, reg *pipeline.Registry) *Recorder {
+	return newRecorder(Config{Run: run, Vehicle: vehicle}, reg)
+}
+
+// TakeBytes returns the lines encoded since the last call; the slice is
+// valid until the next Write.
+func (r *Recorder) TakeBytes() []byte {
+	b := r.enc.Bytes()
+	r.enc.Reset()
+	return b
+}
+
+func newRecorder(cfg Config, reg *pipeline.Registry) *Recorder {
+	r := &Recorder{cfg: cfg, reg: reg, chans: reg.Channels(), sum: newSummarizer(cfg.Run, cfg.Vehicle)}
 	for q := pipeline.OK; q <= pipeline.SensorFault; q++ {
 		v, _ := lineprotocol.StringValue(q.String())
 		r.qvals = append(r.qvals, v)
@@ -105,10 +134,7 @@ func Open(cfg Config, reg *pipeline.Registry) (*Recorder, error) {
 	}
 	r.buildPrefixes()
 	r.enc.SetPrecision(lineprotocol.Nanosecond)
-	if err := r.rotate(); err != nil {
-		return nil, err
-	}
-	return r, nil
+	return r
 }
 
 func writeSynced(path string, b []byte) error {

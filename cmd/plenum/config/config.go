@@ -33,6 +33,9 @@ type Config struct {
 	StateDir string        `yaml:"state_dir"` // where the turbo cool-down state survives restarts
 	CAN      []CAN         `yaml:"can"`
 	Record   Record        `yaml:"record"`
+
+	// Raw is the text the configuration was parsed from.
+	Raw []byte `yaml:"-"`
 }
 
 // Record configures the durable recording of every sample.
@@ -266,6 +269,7 @@ func Parse(name string, data []byte) (*Config, error) {
 		return nil, yamlError(name, err)
 	}
 	cfg.defaults()
+	cfg.Raw = append([]byte(nil), data...)
 	if errs := cfg.check(name, &root); len(errs) > 0 {
 		return nil, errs
 	}
