@@ -8,6 +8,7 @@
 //	plenum check -config FILE                                 check a configuration (exit 2 if bad)
 //	plenum probe [-bus can0 | -sim] [-29bit]                  list responding ECUs, VIN, supported PIDs
 //	plenum replay -in RUN [-config FILE] [-out FILE] [-csv]    re-derive a recorded run
+//	plenum plot -in RUN[,RUN…] -out FILE.png|FILE.svg [-channels a,b]  draw runs
 //	plenum version
 //
 // Plenum is advisory only: it is not a safety system.
@@ -47,7 +48,7 @@ func (e usageError) Error() string { return e.msg }
 
 func run(args []string, stdout, stderr io.Writer) int {
 	if len(args) == 0 {
-		fmt.Fprintln(stderr, "usage: plenum demo|run|check|probe|replay|version [flags]")
+		fmt.Fprintln(stderr, "usage: plenum demo|run|check|probe|replay|plot|version [flags]")
 		return 2
 	}
 	ctx, stop := signal.NotifyContext(context.Background(), os.Interrupt, syscall.SIGTERM)
@@ -68,8 +69,10 @@ func run(args []string, stdout, stderr io.Writer) int {
 		err = cmdProbe(ctx, args[1:], stdout)
 	case "replay":
 		err = cmdReplay(args[1:], stdout)
+	case "plot":
+		err = cmdPlot(args[1:], stdout)
 	default:
-		err = usageError{fmt.Sprintf("unknown command %q: want demo, run, check, probe, replay or version", args[0])}
+		err = usageError{fmt.Sprintf("unknown command %q: want demo, run, check, probe, replay, plot or version", args[0])}
 	}
 	if err == nil {
 		return 0

@@ -104,7 +104,11 @@ func resolveRun(in, dir string) (files []string, runDir string, err error) {
 
 // readRecorded reads the input samples (not derived ones, which the replay
 // recomputes, nor events) from line-protocol files, in time order.
-func readRecorded(files []string) ([]recorded, error) {
+func readRecorded(files []string) ([]recorded, error) { return readSamples(files, false) }
+
+// readSamples reads samples from line-protocol files in time order, with or
+// without the derived ones.
+func readSamples(files []string, derived bool) ([]recorded, error) {
 	var out []recorded
 	qual := map[string]pipeline.Quality{}
 	for q := pipeline.OK; q <= pipeline.SensorFault; q++ {
@@ -166,7 +170,7 @@ func readRecorded(files []string) ([]recorded, error) {
 				return nil, fmt.Errorf("replay: %s: point %d: %w", f, line, err)
 			}
 			r.t = t
-			if r.source == "derived" || r.channel == "" {
+			if (r.source == "derived" && !derived) || r.channel == "" {
 				continue
 			}
 			out = append(out, r)

@@ -1,0 +1,218 @@
+package main
+
+import (
+	"flag"
+	"fmt"
+	"image/color"
+	"io"
+	"math"
+	"os"
+	"path/filepath"
+	"sort"
+	"strings"
+
+	"gonum.org/v1/plot"
+	"gonum.org/v1/plot/plotter"
+	"gonum.org/v1/plot/vg"
+	"gonum.org/v1/plot/vg/draw"
+	"gonum.org/v1/plot/vg/vgimg"
+	"gonum.org/v1/plot/vg/vgsvg"
+)
+
+// series is one run's values of the channels a plot needs, aligned on the
+// engine speed or on time.
+type series struct {
+	label string
+	vals  map[string][][2]float64 // channel → (x, y) pairs
+}
+
+// runColours are the line colours of overlaid runs (our own choice).
+var runColours = []color.RGBA{{0x1f, 0x4e, 0x79, 0xff}, {0xc0, 0x50, 0x1a, 0xff}, {0x2e, 0x7d, 0x32, 0xff}, {0x6a, 0x1b, 0x9a, 0xff}}
+
+// cmdPlot draws corrected power and torque against engine speed, boost and
+// lambda against engine speed, and any channels against time, for one run or
+// several overlaid.
+func cmdPlot(args []string, stdout io.Writer) error {
+	fs := flag.NewFlagSet("plot", flag.ContinueOnError)
+	in := fs.String("in", "", "comma-separated runs: run directories, ids under -dir, or line-protocol files")
+	dir := fs.String("dir", "", "the recording directory that holds run ids")
+	out := fs.String("out", "", "output file, .png or .svg")
+	chans := fs.String("channels", "", "also plot these channels against time (comma-separated)")
+	if err := fs.Parse(args); err != nil {
+		return usageError{err.Error()}
+	}
+	if *in == "" || *out == "" {
+		return usageError{"plot needs -in RUN[,RUN…] and -out FILE.png|FILE.svg"}
+	}
+	ext := strings.ToLower(filepath.Ext(*out))
+	if ext != ".png" && ext != ".svg" {
+		return usageError{"plot -out must end in .png or .svg"}
+	}
+	var extra []string
+	if *chans != "" {
+		extra = strings.Split(*chans, ",")
+	}
+	var runs []series
+	for _, name := range strings.Split(*in, ",") {
+		files, runDir, err := resolveRun(name, *dir)
+		if err != nil {
+			return err
+		}
+		samples, err := readAll(files)
+		if err != nil {
+			return err
+		}
+		label := filepath.Base(name)
+		if runDir != "" {
+			label = filepath.Base(runDir)
+		}
+		runs = append(runs, align(label, samples, extra))
+	}
+	panels := []struct {
+		title, x, y string
+		chs         []string
+		scale       float64
+		yunit       string
+	}{
+		{"Corrected power", "engine speed (rpm)", "power (kW)", []string{"corrected_power"}, 1e-3, "kW"},
+		{"Torque", "engine speed (rpm)", "torque (N·m)", []string{"dyno_torque"}, 1, "N·m"},
+		{"Boost", "engine speed (rpm)", "boost (kPa)", []string{"boost_pressure"}, 1e-3, "kPa"},
+		{"Lambda", "engine speed (rpm)", "λ", []string{"lambda"}, 1, ""},
+	}
+	var plots []*plot.Plot
+	for _, pn := range panels {
+		p := plot.New()
+		p.Title.Text = pn.title
+		p.X.Label.Text = pn.x
+		p.Y.Label.Text = pn.y
+		p.Add(plotter.NewGrid())
+		for i, r := range runs {
+			if err := addLine(p, r.label, r.vals[pn.chs[0]], pn.scale, runColours[i%len(runColours)]); err != nil {
+				return err
+			}
+		}
+		p.Legend.Top = true
+		plots = append(plots, p)
+	}
+	for _, ch := range extra {
+		p := plot.New()
+		p.Title.Text = ch
+		p.X.Label.Text = "time (s)"
+		p.Y.Label.Text = ch
+		p.Add(plotter.NewGrid())
+		for i, r := range runs {
+			if err := addLine(p, r.label, r.vals["t:"+ch], 1, runColours[i%len(runColours)]); err != nil {
+				return err
+			}
+		}
+		p.Legend.Top = true
+		plots = append(plots, p)
+	}
+	rows := (len(plots) + 1) / 2
+	w, h := 28*vg.Centimeter, vg.Length(rows)*9*vg.Centimeter
+	var c vg.CanvasWriterTo
+	if ext == ".svg" {
+		c = newSVG(w, h)
+	} else {
+		c = vgimg.PngCanvas{Canvas: vgimg.New(w, h)}
+	}
+	dc := draw.New(c.(vg.CanvasSizer))
+	tiles := draw.Tiles{Rows: rows, Cols: 2, PadX: vg.Centimeter, PadY: vg.Centimeter, PadTop: vg.Centimeter / 2, PadBottom: vg.Centimeter / 2, PadLeft: vg.Centimeter / 2, PadRight: vg.Centimeter / 2}
+	grid := make([][]*plot.Plot, rows)
+	for i := range grid {
+		grid[i] = make([]*plot.Plot, 2)
+	}
+	for i, p := range plots {
+		grid[i/2][i%2] = p
+	}
+	cs := plot.Align(grid, tiles, dc)
+	for i := range grid {
+		for j := range grid[i] {
+			if grid[i][j] != nil {
+				grid[i][j].Draw(cs[i][j])
+			}
+		}
+	}
+	if err := saveCanvas(c, *out); err != nil {
+		return err
+	}
+	fmt.Fprintf(stdout, "wrote %s (%d runs, %d panels)\n", *out, len(runs), len(plots))
+	return nil
+}
+
+func addLine(p *plot.Plot, label string, xy [][2]float64, scale float64, col color.RGBA) error {
+	if len(xy) == 0 {
+		return nil
+	}
+	pts := make(plotter.XYs, 0, len(xy))
+	for _, v := range xy {
+		pts = append(pts, plotter.XY{X: v[0], Y: v[1] * scale})
+	}
+	l, err := plotter.NewLine(pts)
+	if err != nil {
+		return fmt.Errorf("plot: %w", err)
+	}
+	l.Color = col
+	l.Width = vg.Points(1.2)
+	p.Add(l)
+	p.Legend.Add(label, l)
+	return nil
+}
+
+// readAll reads every sample of a recording, derived ones included.
+func readAll(files []string) ([]recorded, error) { return readSamples(files, true) }
+
+// align pairs each power, torque, boost and lambda sample with the latest
+// engine speed, keeping only samples under load (throttle over 90 %) for the
+// engine-speed panels, and keeps the extra channels against time.
+func align(label string, in []recorded, extra []string) series {
+	s := series{label: label, vals: map[string][][2]float64{}}
+	want := map[string]bool{}
+	for _, ch := range extra {
+		want[ch] = true
+	}
+	rpm, thr := math.NaN(), math.NaN()
+	var t0 float64
+	for i, r := range in {
+		ts := float64(r.t.UnixNano()) / 1e9
+		if i == 0 {
+			t0 = ts
+		}
+		switch r.channel {
+		case "engine_speed":
+			rpm = r.value
+		case "throttle_position":
+			thr = r.value
+		}
+		if want[r.channel] {
+			s.vals["t:"+r.channel] = append(s.vals["t:"+r.channel], [2]float64{ts - t0, r.value})
+		}
+		switch r.channel {
+		case "corrected_power", "dyno_torque", "boost_pressure", "lambda":
+			if !math.IsNaN(rpm) && (math.IsNaN(thr) || thr > 0.9) && r.quality.Usable() {
+				s.vals[r.channel] = append(s.vals[r.channel], [2]float64{rpm, r.value})
+			}
+		}
+	}
+	// Against engine speed, a sweep reads best sorted by speed.
+	for k, v := range s.vals {
+		if !strings.HasPrefix(k, "t:") {
+			sort.SliceStable(v, func(i, j int) bool { return v[i][0] < v[j][0] })
+		}
+	}
+	return s
+}
+
+func newSVG(w, h vg.Length) vg.CanvasWriterTo { return vgsvg.New(w, h) }
+
+func saveCanvas(c vg.CanvasWriterTo, path string) error {
+	f, err := os.Create(path)
+	if err != nil {
+		return fmt.Errorf("plot: %w", err)
+	}
+	if _, err := c.WriteTo(f); err != nil {
+		f.Close()
+		return fmt.Errorf("plot: %w", err)
+	}
+	return f.Close()
+}
