@@ -11,6 +11,7 @@ import (
 	"sort"
 	"strings"
 
+	"github.com/plenum-engine/plenum/pipeline"
 	"gonum.org/v1/plot"
 	"gonum.org/v1/plot/plotter"
 	"gonum.org/v1/plot/vg"
@@ -91,21 +92,21 @@ func cmdPlot(args []string, stdout io.Writer) error {
 				return err
 			}
 		}
-		p.Legend.Top = true
+		p.Legend.Top, p.Legend.Left = true, true
 		plots = append(plots, p)
 	}
 	for _, ch := range extra {
 		p := plot.New()
 		p.Title.Text = ch
 		p.X.Label.Text = "time (s)"
-		p.Y.Label.Text = ch
+		p.Y.Label.Text = ch + unitSuffix(ch)
 		p.Add(plotter.NewGrid())
 		for i, r := range runs {
 			if err := addLine(p, r.label, r.vals["t:"+ch], 1, runColours[i%len(runColours)]); err != nil {
 				return err
 			}
 		}
-		p.Legend.Top = true
+		p.Legend.Top, p.Legend.Left = true, true
 		plots = append(plots, p)
 	}
 	rows := (len(plots) + 1) / 2
@@ -215,4 +216,17 @@ func saveCanvas(c vg.CanvasWriterTo, path string) error {
 		return fmt.Errorf("plot: %w", err)
 	}
 	return f.Close()
+}
+
+// unitSuffix names a channel's canonical unit for an axis label.
+func unitSuffix(ch string) string {
+	if c, ok := pipeline.Standard(ch); ok && c.Unit != pipeline.None {
+		return " (" + strings.ReplaceAll(string(c.Unit), "_", " ") + ")"
+	}
+	derived := map[string]string{"air_mass_flow": "grams per second", "boost_pressure": "pascals", "lambda": "ratio",
+		"fuel_mass_flow": "grams per second", "corrected_power": "watts", "brake_power": "watts"}
+	if u, ok := derived[ch]; ok {
+		return " (" + u + ")"
+	}
+	return ""
 }

@@ -2,6 +2,7 @@ package main
 
 import (
 	"bytes"
+	"image/png"
 	"math"
 	"os"
 	"path/filepath"
@@ -72,5 +73,35 @@ func TestReplayRecomputesAndIsDeterministic(t *testing.T) {
 	}
 	if code := run([]string{"replay", "-in", "testdata/short-run.lp"}, &out, &errb); code != 2 {
 		t.Fatalf("replay of a bare file without -config exited %d, want 2", code)
+	}
+}
+
+func TestPlotWritesPNGAndSVG(t *testing.T) {
+	dir := t.TempDir()
+	for _, name := range []string{"a.png", "a.svg"} {
+		out := filepath.Join(dir, name)
+		var o, e bytes.Buffer
+		if code := run([]string{"plot", "-in", "testdata/short-run.lp,testdata/short-run.lp", "-out", out, "-channels", "manifold_pressure"}, &o, &e); code != 0 {
+			t.Fatalf("plot %s exited %d: %s", name, code, e.String())
+		}
+		b, err := os.ReadFile(out)
+		if err != nil {
+			t.Fatal(err)
+		}
+		switch filepath.Ext(name) {
+		case ".png":
+			img, err := png.Decode(bytes.NewReader(b))
+			if err != nil || img.Bounds().Dx() < 500 {
+				t.Fatalf("png: %v %v", err, img)
+			}
+		case ".svg":
+			if !bytes.Contains(b, []byte("<svg")) || !bytes.Contains(b, []byte("Corrected power")) || !bytes.Contains(b, []byte("short-run.lp")) {
+				t.Fatalf("svg lacks the frame, a panel title or the run label")
+			}
+		}
+	}
+	var o, e bytes.Buffer
+	if code := run([]string{"plot", "-in", "testdata/short-run.lp", "-out", filepath.Join(dir, "x.gif")}, &o, &e); code != 2 {
+		t.Fatalf("plot to .gif exited %d, want 2", code)
 	}
 }
