@@ -82,6 +82,7 @@ func BenchmarkDemoResidentMemory(b *testing.B) {
 			b.Fatal(err)
 		}
 		cfg.HTTP.Listen, cfg.MQTT.Listen = "127.0.0.1:0", "127.0.0.1:0"
+		cfg.StateDir = b.TempDir()
 		cfg.Sim.TimeScale = 4
 		done := make(chan error, 1)
 		go func() { done <- runDaemon(ctx, cfg, io.Discard, slog.New(slog.DiscardHandler)) }()

@@ -154,6 +154,15 @@ func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *s
 		recSub = p.Subscribe("recorder", 1<<18)
 		fmt.Fprintf(stdout, "recording: %s\n", rec.Dir())
 	}
+	if cfg.StateDir != "" {
+		ob, err := mqttpub.OpenOutbox(filepath.Join(cfg.StateDir, "outbox-"+cfg.Vehicle), 10000)
+		if err != nil {
+			log.Warn("mqtt outbox unavailable; events are published without it", "err", err)
+		} else {
+			defer ob.Close()
+			mcfg.Outbox = ob
+		}
+	}
 	pub, err := mqttpub.New(mcfg, reg, p.Subscribe("mqtt", 1<<14))
 	if err != nil {
 		ln.Close()
@@ -229,6 +238,10 @@ func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *s
 	<-pipeDone
 	recCancel()
 	<-recDone
+	if rec != nil {
+		pub.PublishSummary(rec.Summary().JSON())
+		time.Sleep(300 * time.Millisecond) // let the outbox hand it to a connected broker
+	}
 	pubCancel()
 	select {
 	case <-pubDone:

@@ -59,6 +59,7 @@ func startDemo(t *testing.T, ctx context.Context, scale float64, mutate func(*co
 	cfg.HTTP.Listen = "127.0.0.1:0"
 	cfg.MQTT.Listen = "127.0.0.1:0"
 	cfg.Sim.TimeScale = scale
+	cfg.StateDir = t.TempDir() // no turbo state or outbox shared between tests
 	if mutate != nil {
 		mutate(cfg)
 	}

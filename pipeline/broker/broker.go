@@ -40,6 +40,7 @@ type Config struct {
 	Users     []User
 	Anonymous bool   // allow read-only clients without credentials
 	Prefix    string // topic prefix the daemon publishes under, e.g. "plenum"
+	Secret    string // the daemon publisher's password; empty: a random one per start
 	Logger    *slog.Logger
 }
 
@@ -67,6 +68,9 @@ func Start(ctx context.Context, cfg Config) (*Broker, error) {
 		return nil, fmt.Errorf("broker: secret: %w", err)
 	}
 	b := &Broker{ownUser: "plenum-daemon", ownSecret: hex.EncodeToString(secret)}
+	if cfg.Secret != "" {
+		b.ownSecret = cfg.Secret
+	}
 	srv := mqtt.New(&mqtt.Options{Logger: log.With("component", "broker"), InlineClient: false})
 	h := &hook{b: b, cfg: cfg}
 	if err := srv.AddHook(h, nil); err != nil {

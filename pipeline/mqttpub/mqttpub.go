@@ -8,6 +8,10 @@
 //	snapshot          every SnapshotEvery, all fresh channels in one JSON object, QoS 0
 //	events            every event (lag measurement, warning raised or cleared, run start/end), QoS 1
 //	warning/<rule>    retained while a warning is active; an empty retained message clears it
+//	run/summary       retained; the summary of the last recorded run
+//
+// With an Outbox, events, warnings and summaries are kept on disk until the
+// broker acknowledges them, and sent in order after an outage or a restart.
 //
 // Live values are latest-value: while the broker is away they are coalesced
 // and the newest is sent on reconnect; nothing queues up without bound.
@@ -42,6 +46,10 @@ type Config struct {
 	SnapshotEvery time.Duration
 	Version       string
 	Logger        *slog.Logger
+	// Outbox, when set, carries events, warnings and summaries: they are
+	// kept on disk until the broker acknowledges them (QoS 1), in order,
+	// across broker outages and restarts.
+	Outbox *Outbox
 }
 
 // Stats are the publisher's counters.
@@ -163,6 +171,11 @@ func (p *Publisher) Run(ctx context.Context) error {
 			return fmt.Errorf("mqtt connect %s: %w", p.cfg.Broker, err)
 		}
 	case <-time.After(100 * time.Millisecond):
+	}
+	if p.cfg.Outbox != nil {
+		octx, ocancel := context.WithCancel(ctx)
+		defer ocancel()
+		go p.drainOutbox(octx)
 	}
 	minGap := time.Duration(float64(time.Second) / p.cfg.MaxRate)
 	tick := time.NewTicker(minGap)
@@ -310,12 +323,58 @@ func (p *Publisher) publishEvent(e pipeline.Event) {
 		p.log.Error("mqtt: encode event", "kind", e.Kind, "err", err)
 		return
 	}
-	p.client.Publish(p.Topic("events"), 1, false, payload)
+	p.send(p.Topic("events"), false, payload)
 	switch e.Kind {
 	case "warning_raised":
-		p.client.Publish(p.Topic("warning/"+e.Name), 1, true, payload)
+		p.send(p.Topic("warning/"+e.Name), true, payload)
 	case "warning_cleared":
-		p.client.Publish(p.Topic("warning/"+e.Name), 1, true, []byte{})
+		p.send(p.Topic("warning/"+e.Name), true, []byte{})
 	}
+}
+
+// PublishSummary sends a run summary, retained, at least once.
+func (p *Publisher) PublishSummary(payload []byte) { p.send(p.Topic("run/summary"), true, payload) }
+
+// send publishes at QoS 1 through the outbox when there is one.
+func (p *Publisher) send(topic string, retain bool, payload []byte) {
+	if p.cfg.Outbox != nil {
+		if _, err := p.cfg.Outbox.Append(topic, retain, payload); err != nil {
+			p.stats.Failed.Add(1)
+			p.log.Error("mqtt outbox: append failed; publishing directly", "err", err)
+		} else {
+			return
+		}
+	}
+	p.client.Publish(topic, 1, retain, payload)
 	p.stats.Published.Add(1)
+}
+
+// drainOutbox publishes the outbox in order while connected, one message
+// at a time, acknowledging each once the broker has confirmed it.
+func (p *Publisher) drainOutbox(ctx context.Context) {
+	o := p.cfg.Outbox
+	tick := time.NewTicker(250 * time.Millisecond)
+	defer tick.Stop()
+	for {
+		for p.client.IsConnectionOpen() {
+			m, ok := o.Head()
+			if !ok {
+				break
+			}
+			tok := p.client.Publish(m.Topic, 1, m.Retain, m.Payload)
+			if !tok.WaitTimeout(5*time.Second) || tok.Error() != nil {
+				break // retried on the next tick
+			}
+			if err := o.Ack(m.Seq); err != nil {
+				p.log.Error("mqtt outbox: ack", "err", err)
+			}
+			p.stats.Published.Add(1)
+		}
+		select {
+		case <-ctx.Done():
+			return
+		case <-o.C():
+		case <-tick.C:
+		}
+	}
 }
