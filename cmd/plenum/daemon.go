@@ -133,8 +133,7 @@ func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *s
 			return err
 		}
 	}
-	var rec *record.Recorder
-	var recSub *pipeline.Subscription
+	var rr *runs
 	if cfg.Record.Dir != "" {
 		if fixed, err := record.Recover(cfg.Record.Dir); err != nil {
 			log.Warn("recovering earlier runs", "err", err)
@@ -143,16 +142,9 @@ func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *s
 				log.Warn("a run was cut short; its torn tail was cut and it is marked ended_abnormally", "run", f.Run, "cut_bytes", f.CutBytes)
 			}
 		}
-		run := time.Now().UTC().Format("20060102T150405.000Z")
-		rec, err = record.Open(record.Config{Dir: cfg.Record.Dir, Run: run, Vehicle: cfg.Vehicle,
-			SyncEvery: time.Duration(cfg.Record.SyncEvery), RotateBytes: int64(cfg.Record.RotateMB) << 20, ConfigYAML: cfg.Raw}, reg)
-		if err != nil {
-			ln.Close()
-			return err
-		}
 		// The recorder must see every sample: a ring of several seconds.
-		recSub = p.Subscribe("recorder", 1<<18)
-		fmt.Fprintf(stdout, "recording: %s\n", rec.Dir())
+		rr = &runs{cfg: cfg, reg: reg, sub: p.Subscribe("recorder", 1<<18), log: log, emit: p.Emit}
+		mux.Handle("/api/runs/", rr.handler())
 	}
 	if cfg.StateDir != "" {
 		ob, err := mqttpub.OpenOutbox(filepath.Join(cfg.StateDir, "outbox-"+cfg.Vehicle), 10000)
@@ -169,6 +161,17 @@ func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *s
 		return err
 	}
 	pub.SetStore(p.Store())
+	if rr != nil {
+		rr.publish = pub.PublishSummary
+		if !cfg.Record.Manual {
+			id, err := rr.start("", "")
+			if err != nil {
+				ln.Close()
+				return err
+			}
+			fmt.Fprintf(stdout, "recording: %s\n", filepath.Join(cfg.Record.Dir, id))
+		}
+	}
 
 	fmt.Fprintf(stdout, "metrics:  http://%s/metrics\n", ln.Addr())
 	if brk != nil {
@@ -212,13 +215,8 @@ func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *s
 	recCtx, recCancel := context.WithCancel(context.Background())
 	defer recCancel()
 	recDone := make(chan struct{})
-	if rec != nil {
-		go func() {
-			defer close(recDone)
-			if err := rec.Run(recCtx, recSub); err != nil {
-				log.Error("recorder stopped; samples are no longer recorded", "err", err)
-			}
-		}()
+	if rr != nil {
+		go func() { defer close(recDone); rr.Run(recCtx) }()
 	} else {
 		close(recDone)
 	}
@@ -238,9 +236,8 @@ func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *s
 	<-pipeDone
 	recCancel()
 	<-recDone
-	if rec != nil {
-		pub.PublishSummary(rec.Summary().JSON())
-		time.Sleep(300 * time.Millisecond) // let the outbox hand it to a connected broker
+	if rr != nil {
+		time.Sleep(300 * time.Millisecond) // let the outbox hand the summary to a connected broker
 	}
 	pubCancel()
 	select {

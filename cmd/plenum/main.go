@@ -9,6 +9,7 @@
 //	plenum probe [-bus can0 | -sim] [-29bit]                  list responding ECUs, VIN, supported PIDs
 //	plenum replay -in RUN [-config FILE] [-out FILE] [-csv]    re-derive a recorded run
 //	plenum plot -in RUN[,RUN…] -out FILE.png|FILE.svg [-channels a,b]  draw runs
+//	plenum run-start|run-stop [-addr A] [-label L]           start/stop a run in a running daemon
 //	plenum version
 //
 // Plenum is advisory only: it is not a safety system.
@@ -48,7 +49,7 @@ func (e usageError) Error() string { return e.msg }
 
 func run(args []string, stdout, stderr io.Writer) int {
 	if len(args) == 0 {
-		fmt.Fprintln(stderr, "usage: plenum demo|run|check|probe|replay|plot|version [flags]")
+		fmt.Fprintln(stderr, "usage: plenum demo|run|run-start|run-stop|check|probe|replay|plot|version [flags]")
 		return 2
 	}
 	ctx, stop := signal.NotifyContext(context.Background(), os.Interrupt, syscall.SIGTERM)
@@ -71,8 +72,12 @@ func run(args []string, stdout, stderr io.Writer) int {
 		err = cmdReplay(args[1:], stdout)
 	case "plot":
 		err = cmdPlot(args[1:], stdout)
+	case "run-start":
+		err = cmdRunControl("start", args[1:], stdout)
+	case "run-stop":
+		err = cmdRunControl("stop", args[1:], stdout)
 	default:
-		err = usageError{fmt.Sprintf("unknown command %q: want demo, run, check, probe, replay, plot or version", args[0])}
+		err = usageError{fmt.Sprintf("unknown command %q: want demo, run, run-start, run-stop, check, probe, replay, plot or version", args[0])}
 	}
 	if err == nil {
 		return 0

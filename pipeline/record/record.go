@@ -41,6 +41,7 @@ type Config struct {
 	Run         string // run id; a directory name
 	Vehicle     string
 	Label       string
+	Notes       string
 	SyncEvery   time.Duration // default 200 ms
 	ConfigYAML  []byte        // the configuration the run is made with, kept as config.yaml
 	RotateBytes int64         // default 64 MiB
@@ -51,6 +52,7 @@ type Meta struct {
 	ID      string    `json:"id"`
 	Vehicle string    `json:"vehicle"`
 	Label   string    `json:"label,omitempty"`
+	Notes   string    `json:"notes,omitempty"`
 	Start   time.Time `json:"start"`
 }
 
@@ -94,7 +96,7 @@ func Open(cfg Config, reg *pipeline.Registry) (*Recorder, error) {
 	if _, err := os.Stat(filepath.Join(dir, "run.json")); err == nil {
 		return nil, fmt.Errorf("record: run %s exists already; earlier runs are never written to", cfg.Run)
 	}
-	meta, _ := json.MarshalIndent(Meta{ID: cfg.Run, Vehicle: cfg.Vehicle, Label: cfg.Label, Start: time.Now().UTC()}, "", "  ")
+	meta, _ := json.MarshalIndent(Meta{ID: cfg.Run, Vehicle: cfg.Vehicle, Label: cfg.Label, Notes: cfg.Notes, Start: time.Now().UTC()}, "", "  ")
 	if err := writeSynced(filepath.Join(dir, "run.json"), meta); err != nil {
 		return nil, err
 	}
@@ -299,6 +301,9 @@ func (r *Recorder) Sync() error {
 	}
 	return nil
 }
+
+// ID returns the run id.
+func (r *Recorder) ID() string { return r.cfg.Run }
 
 // Summary returns the run's summary so far.
 func (r *Recorder) Summary() Summary { return r.sum.s }

@@ -43,6 +43,12 @@ type Record struct {
 	Dir       string   `yaml:"dir"`        // empty: no recording
 	SyncEvery Duration `yaml:"sync_every"` // default 200ms: at most this is lost at a power cut
 	RotateMB  int      `yaml:"rotate_mb"`  // default 64
+	// Manual: runs start and stop only on command (default: one run per
+	// daemon lifetime, started at once).
+	Manual bool `yaml:"manual"`
+	// ControlToken enables the run commands of the HTTP API; requests must
+	// carry "Authorization: Bearer <token>". Empty: commands are off.
+	ControlToken string `yaml:"control_token"`
 }
 
 // CAN is one ECU connection over CAN with OBD-II requests.

@@ -1,0 +1,209 @@
+package main
+
+import (
+	"context"
+	"crypto/subtle"
+	"encoding/json"
+	"errors"
+	"flag"
+	"fmt"
+	"io"
+	"log/slog"
+	"net/http"
+	"net/url"
+	"os"
+	"strings"
+	"sync"
+	"time"
+
+	"github.com/plenum-engine/plenum/cmd/plenum/config"
+	"github.com/plenum-engine/plenum/pipeline"
+	"github.com/plenum-engine/plenum/pipeline/record"
+)
+
+// runs owns the recorder subscription and the run being recorded. Runs
+// start at once (one per daemon lifetime) or on command; every sample
+// between start and stop is recorded, and at the stop the summary is written
+// and published.
+type runs struct {
+	cfg     *config.Config
+	reg     *pipeline.Registry
+	sub     *pipeline.Subscription
+	log     *slog.Logger
+	publish func([]byte) // the run summary, at least once
+	emit    func(pipeline.Event)
+
+	mu  sync.Mutex // guards cur for the HTTP handlers; the Run goroutine writes
+	cur *record.Recorder
+	err error
+}
+
+// start opens a new run.
+func (r *runs) start(label, notes string) (string, error) {
+	r.mu.Lock()
+	defer r.mu.Unlock()
+	if r.cur != nil {
+		return "", fmt.Errorf("run %s is already being recorded", r.cur.ID())
+	}
+	id := time.Now().UTC().Format("20060102T150405.000Z")
+	rec, err := record.Open(record.Config{Dir: r.cfg.Record.Dir, Run: id, Vehicle: r.cfg.Vehicle, Label: label, Notes: notes,
+		SyncEvery: time.Duration(r.cfg.Record.SyncEvery), RotateBytes: int64(r.cfg.Record.RotateMB) << 20, ConfigYAML: r.cfg.Raw}, r.reg)
+	if err != nil {
+		return "", err
+	}
+	r.cur = rec
+	r.emit(pipeline.Event{Kind: "run_started", Name: id, Start: time.Now(), Tags: map[string]string{"label": label}})
+	return id, nil
+}
+
+// stop closes the current run and publishes its summary.
+func (r *runs) stop() (record.Summary, error) {
+	r.mu.Lock()
+	defer r.mu.Unlock()
+	if r.cur == nil {
+		return record.Summary{}, errors.New("no run is being recorded")
+	}
+	rec := r.cur
+	r.cur = nil
+	err := rec.Close()
+	sum := rec.Summary()
+	r.publish(sum.JSON())
+	r.emit(pipeline.Event{Kind: "run_ended", Name: rec.ID(), Start: sum.Start, End: sum.End,
+		Fields: map[string]float64{"samples": float64(sum.Samples), "turbo_lag_events": float64(sum.LagEvents), "warnings_raised": float64(sum.WarningsRaised)}})
+	return sum, err
+}
+
+// Run records until ctx is done, then closes the current run.
+func (r *runs) Run(ctx context.Context) {
+	tick := time.NewTicker(max(10*time.Millisecond, time.Duration(r.cfg.Record.SyncEvery)))
+	if r.cfg.Record.SyncEvery == 0 {
+		tick.Reset(200 * time.Millisecond)
+	}
+	defer tick.Stop()
+	var buf []pipeline.Sample
+	var evs []pipeline.Event
+	drain := func() {
+		buf, evs = r.sub.Drain(buf[:0], evs[:0])
+		r.mu.Lock()
+		if r.cur != nil {
+			for _, s := range buf {
+				r.cur.Write(s)
+			}
+			for _, e := range evs {
+				r.cur.WriteEvent(e)
+			}
+		}
+		r.mu.Unlock()
+	}
+	for {
+		select {
+		case <-ctx.Done():
+			drain()
+			if _, err := r.stop(); err != nil && r.current() != "" {
+				r.log.Error("closing the run", "err", err)
+			}
+			return
+		case <-r.sub.C():
+			drain()
+		case <-tick.C:
+			r.mu.Lock()
+			if r.cur != nil {
+				if err := r.cur.Sync(); err != nil && r.err == nil {
+					r.err = err
+					r.log.Error("recorder cannot write; samples of this run are being lost", "err", err)
+				}
+			}
+			r.mu.Unlock()
+		}
+	}
+}
+
+func (r *runs) current() string {
+	r.mu.Lock()
+	defer r.mu.Unlock()
+	if r.cur == nil {
+		return ""
+	}
+	return r.cur.ID()
+}
+
+// handler serves GET /api/runs/current and, when a control token is set,
+// POST /api/runs/start and /api/runs/stop.
+func (r *runs) handler() http.Handler {
+	mux := http.NewServeMux()
+	mux.HandleFunc("GET /api/runs/current", func(w http.ResponseWriter, _ *http.Request) {
+		json.NewEncoder(w).Encode(map[string]string{"run": r.current()})
+	})
+	authed := func(h http.HandlerFunc) http.HandlerFunc {
+		return func(w http.ResponseWriter, req *http.Request) {
+			tok := r.cfg.Record.ControlToken
+			if tok == "" {
+				http.Error(w, "run commands are off: set record.control_token to enable them", http.StatusForbidden)
+				return
+			}
+			if subtle.ConstantTimeCompare([]byte(req.Header.Get("Authorization")), []byte("Bearer "+tok)) != 1 {
+				http.Error(w, "unauthorized", http.StatusUnauthorized)
+				return
+			}
+			h(w, req)
+		}
+	}
+	mux.HandleFunc("POST /api/runs/start", authed(func(w http.ResponseWriter, req *http.Request) {
+		id, err := r.start(req.FormValue("label"), req.FormValue("notes"))
+		if err != nil {
+			http.Error(w, err.Error(), http.StatusConflict)
+			return
+		}
+		json.NewEncoder(w).Encode(map[string]string{"run": id})
+	}))
+	mux.HandleFunc("POST /api/runs/stop", authed(func(w http.ResponseWriter, _ *http.Request) {
+		sum, err := r.stop()
+		if err != nil && sum.Run == "" {
+			http.Error(w, err.Error(), http.StatusConflict)
+			return
+		}
+		w.Write(sum.JSON())
+	}))
+	return mux
+}
+
+// cmdRunControl is `plenum run-start` and `plenum run-stop`: they ask a
+// running daemon's local HTTP API, with the control token from
+// PLENUM_CONTROL_TOKEN or -token-file.
+func cmdRunControl(verb string, args []string, stdout io.Writer) error {
+	fs := flag.NewFlagSet("run-"+verb, flag.ContinueOnError)
+	addr := fs.String("addr", "127.0.0.1:9108", "the daemon's HTTP address")
+	tokenFile := fs.String("token-file", "", "file holding the control token (default: $PLENUM_CONTROL_TOKEN)")
+	label := fs.String("label", "", "run label (run-start)")
+	notes := fs.String("notes", "", "free-form notes (run-start)")
+	if err := fs.Parse(args); err != nil {
+		return usageError{err.Error()}
+	}
+	token := os.Getenv("PLENUM_CONTROL_TOKEN")
+	if *tokenFile != "" {
+		b, err := os.ReadFile(*tokenFile)
+		if err != nil {
+			return fmt.Errorf("run-%s: %w", verb, err)
+		}
+		token = strings.TrimSpace(string(b))
+	}
+	form := url.Values{"label": {*label}, "notes": {*notes}}
+	req, err := http.NewRequest(http.MethodPost, "http://"+*addr+"/api/runs/"+verb, strings.NewReader(form.Encode()))
+	if err != nil {
+		return err
+	}
+	req.Header.Set("Content-Type", "application/x-www-form-urlencoded")
+	req.Header.Set("Authorization", "Bearer "+token)
+	c := &http.Client{Timeout: 10 * time.Second}
+	resp, err := c.Do(req)
+	if err != nil {
+		return fmt.Errorf("run-%s: %w", verb, err)
+	}
+	defer resp.Body.Close()
+	body, _ := io.ReadAll(resp.Body)
+	if resp.StatusCode != http.StatusOK {
+		return fmt.Errorf("run-%s: %s: %s", verb, resp.Status, strings.TrimSpace(string(body)))
+	}
+	stdout.Write(body)
+	return nil
+}

@@ -1,0 +1,88 @@
+package main
+
+import (
+	"bytes"
+	"context"
+	"encoding/json"
+	"net/http"
+	"os"
+	"path/filepath"
+	"strings"
+	"testing"
+	"time"
+
+	"github.com/plenum-engine/plenum/cmd/plenum/config"
+	"github.com/plenum-engine/plenum/pipeline/record"
+)
+
+func TestRunStartStopCommands(t *testing.T) {
+	recDir := t.TempDir()
+	ctx, cancel := context.WithCancel(context.Background())
+	defer cancel()
+	httpAddr, _, done := startDemo(t, ctx, 4, func(c *config.Config) {
+		c.Record.Dir = recDir
+		c.Record.Manual = true
+		c.Record.ControlToken = "s3cret-token"
+	})
+	// Without the token: refused.
+	resp, err := http.Post("http://"+httpAddr+"/api/runs/start", "text/plain", nil)
+	if err != nil {
+		t.Fatal(err)
+	}
+	resp.Body.Close()
+	if resp.StatusCode != http.StatusUnauthorized {
+		t.Fatalf("start without token: %s", resp.Status)
+	}
+	t.Setenv("PLENUM_CONTROL_TOKEN", "s3cret-token")
+	var out, errb bytes.Buffer
+	if code := run([]string{"run-start", "-addr", httpAddr, "-label", "pull 1", "-notes", "fresh plugs"}, &out, &errb); code != 0 {
+		t.Fatalf("run-start: %d %s", code, errb.String())
+	}
+	var started map[string]string
+	json.Unmarshal(out.Bytes(), &started)
+	if code := run([]string{"run-start", "-addr", httpAddr}, &out, &errb); code == 0 {
+		t.Fatal("a second run-start while recording succeeded")
+	}
+	time.Sleep(1500 * time.Millisecond)
+	out.Reset()
+	if code := run([]string{"run-stop", "-addr", httpAddr}, &out, &errb); code != 0 {
+		t.Fatalf("run-stop: %d %s", code, errb.String())
+	}
+	var sum record.Summary
+	if err := json.Unmarshal(out.Bytes(), &sum); err != nil || sum.Samples < 1000 || sum.Run != started["run"] {
+		t.Fatalf("summary %s (%v), started %v", out.String(), err, started)
+	}
+	dir := filepath.Join(recDir, sum.Run)
+	for _, f := range []string{"run.json", "0001.lp", "summary.json", "ended", "config.yaml"} {
+		if _, err := os.Stat(filepath.Join(dir, f)); err != nil {
+			t.Errorf("run directory lacks %s", f)
+		}
+	}
+	meta, _ := os.ReadFile(filepath.Join(dir, "run.json"))
+	if !strings.Contains(string(meta), `"label": "pull 1"`) || !strings.Contains(string(meta), "fresh plugs") {
+		t.Errorf("run.json: %s", meta)
+	}
+	if code := run([]string{"run-stop", "-addr", httpAddr}, &out, &errb); code == 0 {
+		t.Fatal("run-stop with no run succeeded")
+	}
+	cancel()
+	<-done
+}
+
+func TestRunCommandsOffWithoutToken(t *testing.T) {
+	ctx, cancel := context.WithCancel(context.Background())
+	defer cancel()
+	httpAddr, _, done := startDemo(t, ctx, 4, func(c *config.Config) { c.Record.Dir = t.TempDir() })
+	req, _ := http.NewRequest(http.MethodPost, "http://"+httpAddr+"/api/runs/stop", nil)
+	req.Header.Set("Authorization", "Bearer ")
+	resp, err := http.DefaultClient.Do(req)
+	if err != nil {
+		t.Fatal(err)
+	}
+	resp.Body.Close()
+	if resp.StatusCode != http.StatusForbidden {
+		t.Fatalf("stop with commands off: %s", resp.Status)
+	}
+	cancel()
+	<-done
+}
