@@ -17,6 +17,7 @@ import (
 	"time"
 
 	"github.com/plenum-engine/plenum/cmd/plenum/config"
+	"github.com/plenum-engine/plenum/derive"
 	"github.com/plenum-engine/plenum/pipeline"
 	"github.com/plenum-engine/plenum/pipeline/record"
 )
@@ -33,9 +34,10 @@ type runs struct {
 	publish func([]byte) // the run summary, at least once
 	emit    func(pipeline.Event)
 
-	mu  sync.Mutex // guards cur for the HTTP handlers; the Run goroutine writes
-	cur *record.Recorder
-	err error
+	mu   sync.Mutex // guards cur for the HTTP handlers; the Run goroutine writes
+	cur  *record.Recorder
+	err  error
+	auto bool // the current run was started by the pull trigger
 }
 
 // start opens a new run.
@@ -64,7 +66,7 @@ func (r *runs) stop() (record.Summary, error) {
 		return record.Summary{}, errors.New("no run is being recorded")
 	}
 	rec := r.cur
-	r.cur = nil
+	r.cur, r.auto = nil, false
 	err := rec.Close()
 	sum := rec.Summary()
 	r.publish(sum.JSON())
@@ -82,6 +84,44 @@ func (r *runs) Run(ctx context.Context) {
 	defer tick.Stop()
 	var buf []pipeline.Sample
 	var evs []pipeline.Event
+	var trig derive.PullTrigger
+	thrID, haveThr := r.reg.Lookup("throttle_position")
+	rpmID, haveRPM := r.reg.Lookup("engine_speed")
+	useTrig := r.cfg.Record.AutoTrigger && haveThr && haveRPM
+	thr, rpm := 0.0, 0.0
+	trigger := func() {
+		for _, s := range buf {
+			if s.Quality != pipeline.OK || (s.Channel != thrID && s.Channel != rpmID) {
+				continue
+			}
+			if s.Channel == thrID {
+				thr = s.Value
+			} else {
+				rpm = s.Value
+			}
+			start, end := trig.Update(s.Time, thr, rpm)
+			switch {
+			case start && r.current() == "":
+				if id, err := r.start("pull", "started by the wide-open-throttle trigger"); err != nil {
+					r.log.Error("auto trigger: cannot start a run", "err", err)
+				} else {
+					r.mu.Lock()
+					r.auto = true
+					r.mu.Unlock()
+					r.log.Info("pull detected: recording", "run", id)
+				}
+			case end:
+				r.mu.Lock()
+				auto := r.auto && r.cur != nil
+				r.mu.Unlock()
+				if auto {
+					if _, err := r.stop(); err != nil {
+						r.log.Error("auto trigger: closing the run", "err", err)
+					}
+				}
+			}
+		}
+	}
 	drain := func() {
 		buf, evs = r.sub.Drain(buf[:0], evs[:0])
 		r.mu.Lock()
@@ -94,6 +134,9 @@ func (r *runs) Run(ctx context.Context) {
 			}
 		}
 		r.mu.Unlock()
+		if useTrig {
+			trigger()
+		}
 	}
 	for {
 		select {

@@ -86,3 +86,44 @@ func TestRunCommandsOffWithoutToken(t *testing.T) {
 	cancel()
 	<-done
 }
+
+// TestAutoTriggerRecordsThePulls: with the trigger on, the demo's pulls are
+// recorded as a run that starts at wide-open throttle and ends once the
+// throttle has been closed for 2 s (at 4× the two pulls, under a second of
+// real time apart, make one run).
+func TestAutoTriggerRecordsThePulls(t *testing.T) {
+	recDir := t.TempDir()
+	ctx, cancel := context.WithCancel(context.Background())
+	defer cancel()
+	_, _, done := startDemo(t, ctx, 4, func(c *config.Config) {
+		c.Record.Dir = recDir
+		c.Record.Manual = true
+		c.Record.AutoTrigger = true
+	})
+	deadline := time.Now().Add(20 * time.Second)
+	var runs []string
+	for time.Now().Before(deadline) {
+		runs, _ = filepath.Glob(filepath.Join(recDir, "*", "ended"))
+		if len(runs) >= 1 {
+			break
+		}
+		time.Sleep(200 * time.Millisecond)
+	}
+	cancel()
+	<-done
+	if len(runs) != 1 {
+		t.Fatalf("%d runs ended, want 1", len(runs))
+	}
+	b, err := os.ReadFile(filepath.Join(filepath.Dir(runs[0]), "summary.json"))
+	if err != nil {
+		t.Fatal(err)
+	}
+	var sum record.Summary
+	json.Unmarshal(b, &sum)
+	if sum.PeakBoostPa == nil || *sum.PeakBoostPa < 80000 || sum.PeakTorqueRPM == nil || *sum.PeakTorqueRPM < 3000 {
+		t.Fatalf("the triggered run missed the pulls: %s", b)
+	}
+	if d := sum.End.Sub(sum.Start); d > 10*time.Second {
+		t.Fatalf("the triggered run lasted %v: it should hold the pulls, not the whole cycle", d)
+	}
+}

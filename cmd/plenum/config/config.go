@@ -46,6 +46,9 @@ type Record struct {
 	// Manual: runs start and stop only on command (default: one run per
 	// daemon lifetime, started at once).
 	Manual bool `yaml:"manual"`
+	// AutoTrigger starts a run at wide-open throttle with engine speed
+	// rising and ends it once the throttle has been closed for 2 s.
+	AutoTrigger bool `yaml:"auto_trigger"`
 	// ControlToken enables the run commands of the HTTP API; requests must
 	// carry "Authorization: Bearer <token>". Empty: commands are off.
 	ControlToken string `yaml:"control_token"`
