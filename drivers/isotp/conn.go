@@ -44,6 +44,11 @@ type Config struct {
 	RxID uint32
 	// Extended selects 29-bit identifiers for every ID of this Conn.
 	Extended bool
+	// FCDelay is how long to wait before sending a flow control frame
+	// (N_Br in ISO 15765-2 terms); 0 sends at once. The Linux kernel's
+	// can-isotp sender ignores an FC that arrives before it has processed
+	// the echo of the block's last frame, which a fast peer on vcan can beat.
+	FCDelay time.Duration
 	// Accept, when set, accepts messages from further CAN IDs: it returns the
 	// ID to send flow control on for a message arriving on rxID, and false to
 	// ignore rxID. A multi-frame SendTo(txID) accepts FC from any rxID that
@@ -468,6 +473,12 @@ func (c *Conn) engine(frames <-chan can.Frame, busErr <-chan error) {
 			case ActionFlowControl:
 				fc := p.r.FlowControl()
 				d := [3]byte{pciFC<<4 | byte(fc.Status), fc.BlockSize, fc.STmin}
+				if c.cfg.FCDelay > 0 {
+					select {
+					case <-c.clock.After(c.cfg.FCDelay):
+					case <-c.ctx.Done():
+					}
+				}
 				if err := c.put(c.ctx, p.fcTx, d[:], 3); err != nil && c.ctx.Err() == nil {
 					p.r.Reset()
 					c.stats.aborted.Add(1)
