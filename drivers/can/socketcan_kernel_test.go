@@ -5,30 +5,19 @@ package can
 import (
 	"bytes"
 	"context"
-	"os"
+	"github.com/plenum-engine/plenum/drivers/can/cantest"
 	"os/exec"
 	"strings"
 	"testing"
 	"time"
 )
 
-func needKernel(t *testing.T, err error) {
-	t.Helper()
-	if err == nil {
-		return
-	}
-	if os.Getenv("KERNEL_CAN_VM") == "1" || os.Getenv("PLENUM_INTEGRATION") == "1" {
-		t.Fatalf("kernel CAN: %v", err)
-	}
-	t.Skipf("kernel CAN unavailable (run through kernel-can-run): %v", err)
-}
-
 func TestKernelSocketCANSendReceive(t *testing.T) {
 	a, err := DialSocketCAN("vcan0")
-	needKernel(t, err)
+	cantest.NeedKernel(t, err)
 	defer a.Close()
 	b, err := DialSocketCAN("vcan0")
-	needKernel(t, err)
+	cantest.NeedKernel(t, err)
 	defer b.Close()
 	ctx, cancel := context.WithTimeout(context.Background(), 5*time.Second)
 	defer cancel()
@@ -72,7 +61,7 @@ func TestKernelSocketCANWithCanUtils(t *testing.T) {
 		t.Skip("can-utils not installed (kernel-can-run --with-can-utils)")
 	}
 	s, err := DialSocketCAN("vcan1")
-	needKernel(t, err)
+	cantest.NeedKernel(t, err)
 	defer s.Close()
 	ctx, cancel := context.WithTimeout(context.Background(), 5*time.Second)
 	defer cancel()

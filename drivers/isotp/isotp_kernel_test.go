@@ -5,6 +5,7 @@ package isotp
 import (
 	"bytes"
 	"context"
+	"github.com/plenum-engine/plenum/drivers/can/cantest"
 	"os"
 	"os/exec"
 	"sync"
@@ -16,17 +17,6 @@ import (
 
 // needKernel skips outside the CAN VM unless PLENUM_INTEGRATION=1, where a
 // missing AF_CAN is a failure.
-func needKernel(t *testing.T, err error) {
-	t.Helper()
-	if err == nil {
-		return
-	}
-	if os.Getenv("KERNEL_CAN_VM") == "1" || os.Getenv("PLENUM_INTEGRATION") == "1" {
-		t.Fatalf("kernel CAN: %v", err)
-	}
-	t.Skipf("kernel CAN unavailable (run through kernel-can-run): %v", err)
-}
-
 func kctx(t *testing.T) context.Context {
 	ctx, cancel := context.WithTimeout(context.Background(), 10*time.Second)
 	t.Cleanup(cancel)
@@ -37,11 +27,11 @@ func kctx(t *testing.T) context.Context {
 // CAN_ISOTP socket, both directions, multi-frame, with BS and STmin on both sides.
 func TestKernelISOTPInterop(t *testing.T) {
 	bus, err := can.DialSocketCAN("vcan0")
-	needKernel(t, err)
+	cantest.NeedKernel(t, err)
 	defer bus.Close()
 	// Kernel side is the "ECU": receives on 0x7E0, sends on 0x7E8; announces BS 3, STmin 1 ms.
 	k, err := DialKernel("vcan0", KernelConfig{TxID: 0x7E8, RxID: 0x7E0, BlockSize: 3, STmin: time.Millisecond})
-	needKernel(t, err)
+	cantest.NeedKernel(t, err)
 	defer k.Close()
 	// Our side announces BS 4, STmin 300 µs (0xF3).
 	// FCDelay: the kernel's sender drops an FC that beats the echo of its
@@ -88,13 +78,13 @@ func TestKernelISOTPInterop(t *testing.T) {
 // socket are at least the kernel's announced 5 ms; BS 2 from the kernel.
 func TestKernelISOTPSTminSeenOnWire(t *testing.T) {
 	bus, err := can.DialSocketCAN("vcan1")
-	needKernel(t, err)
+	cantest.NeedKernel(t, err)
 	defer bus.Close()
 	spy, err := can.DialSocketCAN("vcan1")
-	needKernel(t, err)
+	cantest.NeedKernel(t, err)
 	defer spy.Close()
 	k, err := DialKernel("vcan1", KernelConfig{TxID: 0x18DAF110, RxID: 0x18DA10F1, Extended: true, BlockSize: 2, STmin: 5 * time.Millisecond})
-	needKernel(t, err)
+	cantest.NeedKernel(t, err)
 	defer k.Close()
 	// Time the CFs where our sender hands them to the bus: a spy socket read
 	// in user space under an emulated CPU sees them late and in bursts.
@@ -150,7 +140,7 @@ func TestKernelCanUtilsISOTP(t *testing.T) {
 		t.Skip("can-utils not installed (kernel-can-run --with-can-utils)")
 	}
 	bus, err := can.DialSocketCAN("vcan0")
-	needKernel(t, err)
+	cantest.NeedKernel(t, err)
 	defer bus.Close()
 	// isotprecv/isotpsend: -s is the ID the tool sends on, -d the ID it receives on.
 	c, err := NewConn(bus, Config{TxID: 0x321, RxID: 0x123, FCDelay: 2 * time.Millisecond})

@@ -5,7 +5,7 @@ package obdcan_test
 import (
 	"bytes"
 	"context"
-	"os"
+	"github.com/plenum-engine/plenum/drivers/can/cantest"
 	"os/exec"
 	"strings"
 	"testing"
@@ -17,27 +17,16 @@ import (
 	"github.com/plenum-engine/plenum/drivers/sim"
 )
 
-func needKernel(t *testing.T, err error) {
-	t.Helper()
-	if err == nil {
-		return
-	}
-	if os.Getenv("KERNEL_CAN_VM") == "1" || os.Getenv("PLENUM_INTEGRATION") == "1" {
-		t.Fatalf("kernel CAN: %v", err)
-	}
-	t.Skipf("kernel CAN unavailable (run through kernel-can-run): %v", err)
-}
-
 // TestKernelPollerReadsSimECU serves the simulated ECU on one SocketCAN
 // socket of vcan0 and polls it with obd.Poller over obdcan on another: the
 // frames go through the Linux CAN stack, and candump (when present) sees the
 // ISO 15765-4 exchange, flow control on 0x7E0 included.
 func TestKernelPollerReadsSimECU(t *testing.T) {
 	ecuSock, err := can.DialSocketCAN("vcan0")
-	needKernel(t, err)
+	cantest.NeedKernel(t, err)
 	defer ecuSock.Close()
 	tester, err := can.DialSocketCAN("vcan0")
-	needKernel(t, err)
+	cantest.NeedKernel(t, err)
 	defer tester.Close()
 
 	var dump *exec.Cmd

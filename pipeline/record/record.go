@@ -70,8 +70,6 @@ type Recorder struct {
 	enc    lineprotocol.Encoder
 	points atomic.Uint64
 	failed atomic.Uint64
-	syncs  atomic.Uint64
-	qvals  []lineprotocol.Value
 	prefix [][]byte // escaped series key per channel
 	sum    *summarizer
 	roles  []role
@@ -130,8 +128,6 @@ func (r *Recorder) TakeBytes() []byte {
 func newRecorder(cfg Config, reg *pipeline.Registry) *Recorder {
 	r := &Recorder{cfg: cfg, reg: reg, chans: reg.Channels(), sum: newSummarizer(cfg.Run, cfg.Vehicle)}
 	for q := pipeline.OK; q <= pipeline.SensorFault; q++ {
-		v, _ := lineprotocol.StringValue(q.String())
-		r.qvals = append(r.qvals, v)
 		r.qtext = append(r.qtext, `,quality="`+q.String()+`" `)
 	}
 	r.buildPrefixes()
@@ -233,15 +229,6 @@ func (r *Recorder) buildPrefixes() {
 	}
 }
 
-// quality returns the field value of q, built once per quality.
-func (r *Recorder) quality(q pipeline.Quality) lineprotocol.Value {
-	if int(q) < len(r.qvals) {
-		return r.qvals[q]
-	}
-	v, _ := lineprotocol.StringValue(q.String())
-	return v
-}
-
 // WriteEvent encodes one event.
 func (r *Recorder) WriteEvent(e pipeline.Event) {
 	r.sum.event(e)
@@ -295,7 +282,6 @@ func (r *Recorder) Sync() error {
 	if err := r.f.Sync(); err != nil {
 		return fmt.Errorf("record: sync: %w", err)
 	}
-	r.syncs.Add(1)
 	if r.size >= r.cfg.RotateBytes {
 		return r.rotate()
 	}
