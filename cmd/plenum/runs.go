@@ -34,6 +34,13 @@ type runs struct {
 	publish func([]byte) // the run summary, at least once
 	emit    func(pipeline.Event)
 
+	// What the recorder failed to keep: samples its subscription dropped
+	// and points the disk refused. A rise raises recorder_behind.
+	lossSeen   uint64
+	lostClosed uint64 // Lost() of runs already closed
+	lossRaised bool
+	lossSince  time.Time
+
 	mu   sync.Mutex // guards cur for the HTTP handlers; the Run goroutine writes
 	cur  *record.Recorder
 	err  error
@@ -68,6 +75,7 @@ func (r *runs) stop() (record.Summary, error) {
 	rec := r.cur
 	r.cur, r.auto = nil, false
 	err := rec.Close()
+	r.lostClosed += rec.Lost()
 	sum := rec.Summary()
 	r.publish(sum.JSON())
 	r.emit(pipeline.Event{Kind: "run_ended", Name: rec.ID(), Start: sum.Start, End: sum.End,
@@ -149,6 +157,7 @@ func (r *runs) Run(ctx context.Context) {
 		case <-r.sub.C():
 			drain()
 		case <-tick.C:
+			r.watchLoss(time.Now())
 			r.mu.Lock()
 			if r.cur != nil {
 				if err := r.cur.Sync(); err != nil && r.err == nil {
@@ -158,6 +167,33 @@ func (r *runs) Run(ctx context.Context) {
 			}
 			r.mu.Unlock()
 		}
+	}
+}
+
+// watchLoss says loudly when the recorder cannot keep up: a
+// recorder_behind warning (raised at the first loss, cleared after 5 s
+// without any) and an error log once per burst. The counts stay in
+// plenum_subscriber_dropped_total{subscriber="recorder"}.
+func (r *runs) watchLoss(now time.Time) {
+	r.mu.Lock()
+	lost := r.sub.Dropped() + r.lostClosed
+	if r.cur != nil {
+		lost += r.cur.Lost()
+	}
+	r.mu.Unlock()
+	switch {
+	case lost > r.lossSeen:
+		if !r.lossRaised {
+			r.log.Error("the recorder is not keeping up: samples are being lost", "lost", lost-r.lossSeen)
+			r.emit(pipeline.Event{Kind: "warning_raised", Name: "recorder_behind", Start: now, End: now,
+				Tags: map[string]string{"severity": "critical"}, Fields: map[string]float64{"active": 1, "lost_samples": float64(lost - r.lossSeen)}})
+			r.lossRaised = true
+		}
+		r.lossSeen, r.lossSince = lost, now
+	case r.lossRaised && now.Sub(r.lossSince) >= 5*time.Second:
+		r.emit(pipeline.Event{Kind: "warning_cleared", Name: "recorder_behind", Start: r.lossSince, End: now,
+			Tags: map[string]string{"severity": "critical"}, Fields: map[string]float64{"active": 0}})
+		r.lossRaised = false
 	}
 }
 

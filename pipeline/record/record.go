@@ -70,11 +70,17 @@ type Recorder struct {
 	enc    lineprotocol.Encoder
 	points atomic.Uint64
 	failed atomic.Uint64
-	prefix [][]byte // escaped series key per channel
+	lost   atomic.Uint64 // encoded but dropped because the disk refused them
+	prefix [][]byte      // escaped series key per channel
 	sum    *summarizer
 	roles  []role
 	qtext  []string // ,quality="ok" and so on, with the space before the time
+	werr   error    // a write that failed between syncs; Sync returns it
 }
+
+// chunkBytes is how much Write buffers before handing it to the kernel (no
+// fsync): a small buffer stays in the CPU cache; Sync makes it durable.
+const chunkBytes = 256 << 10
 
 // Open creates the run's directory and its first file.
 func Open(cfg Config, reg *pipeline.Registry) (*Recorder, error) {
@@ -178,6 +184,10 @@ func (r *Recorder) Points() uint64 { return r.points.Load() }
 // Failed returns how many points the encoder refused.
 func (r *Recorder) Failed() uint64 { return r.failed.Load() }
 
+// Lost returns how many encoded points were dropped because the disk kept
+// refusing writes.
+func (r *Recorder) Lost() uint64 { return r.lost.Load() }
+
 // Write encodes one sample. The escaped series key of each channel
 // (measurement and tags) is built once with the line-protocol encoder; the
 // fields and time are appended to it the way the encoder writes them.
@@ -203,6 +213,32 @@ func (r *Recorder) Write(s pipeline.Sample) {
 	b = append(b, '\n')
 	r.enc.SetBuffer(b)
 	r.points.Add(1)
+	if len(b) >= chunkBytes && r.f != nil {
+		r.flush()
+		if r.werr != nil && len(r.enc.Bytes()) >= maxUnwritten {
+			// The disk refuses: keep memory bounded and count what is lost.
+			r.lost.Add(uint64(bytes.Count(r.enc.Bytes(), []byte{'\n'})))
+			r.enc.Reset()
+		}
+	}
+}
+
+// maxUnwritten bounds what is held in memory while the disk refuses writes.
+const maxUnwritten = 16 << 20
+
+// flush hands the buffered lines to the kernel without syncing them.
+func (r *Recorder) flush() {
+	b := r.enc.Bytes()
+	if len(b) == 0 || r.werr != nil {
+		return
+	}
+	n, err := r.f.Write(b)
+	r.size += int64(n)
+	if err != nil {
+		r.werr = fmt.Errorf("record: write: %w", err)
+		return
+	}
+	r.enc.Reset()
 }
 
 // buildPrefixes encodes each channel's series key once.
@@ -270,14 +306,9 @@ func (r *Recorder) check() {
 // Sync writes the buffered points and fsyncs the file, rotating when it has
 // grown past the configured size.
 func (r *Recorder) Sync() error {
-	b := r.enc.Bytes()
-	if len(b) > 0 {
-		n, err := r.f.Write(b)
-		r.size += int64(n)
-		if err != nil {
-			return fmt.Errorf("record: write: %w", err)
-		}
-		r.enc.Reset()
+	r.flush()
+	if err := r.werr; err != nil {
+		return err
 	}
 	if err := r.f.Sync(); err != nil {
 		return fmt.Errorf("record: sync: %w", err)
