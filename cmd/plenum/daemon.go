@@ -110,7 +110,16 @@ func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *s
 		anon := cfg.MQTT.Anonymous == nil || *cfg.MQTT.Anonymous
 		// The broker outlives the publisher's last "offline" message: it is
 		// closed at the end of the shutdown, not by ctx.
-		brk, err = broker.Start(context.Background(), broker.Config{Addr: cfg.MQTT.Listen, Anonymous: anon, Prefix: cfg.MQTT.Prefix, Logger: quiet(log)})
+		var users []broker.User
+		for _, u := range cfg.MQTT.Users {
+			pw, err := os.ReadFile(u.PasswordFile)
+			if err != nil {
+				ln.Close()
+				return fmt.Errorf("mqtt user %s: password_file: %w", u.Name, err)
+			}
+			users = append(users, broker.User{Name: u.Name, Password: strings.TrimSpace(string(pw)), Commands: u.Commands})
+		}
+		brk, err = broker.Start(context.Background(), broker.Config{Addr: cfg.MQTT.Listen, Anonymous: anon, Users: users, Prefix: cfg.MQTT.Prefix, Logger: quiet(log)})
 		if err != nil {
 			ln.Close()
 			return err
@@ -143,7 +152,7 @@ func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *s
 			}
 		}
 		// The recorder must see every sample: a ring of several seconds.
-		rr = &runs{cfg: cfg, reg: reg, sub: p.Subscribe("recorder", 1<<18), log: log, emit: p.Emit}
+		rr = &runs{cfg: cfg, reg: reg, sub: p.Subscribe("recorder", 1<<18), log: log, emit: p.Emit, store: p.Store()}
 		mux.Handle("/api/runs/", rr.handler())
 	}
 	if cfg.StateDir != "" {
@@ -155,6 +164,9 @@ func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *s
 			mcfg.Outbox = ob
 		}
 	}
+	if cfg.MQTT.Commands && rr != nil {
+		mcfg.OnCommand = rr.command
+	}
 	pub, err := mqttpub.New(mcfg, reg, p.Subscribe("mqtt", 1<<14))
 	if err != nil {
 		ln.Close()
@@ -164,7 +176,7 @@ func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *s
 	if rr != nil {
 		rr.publish = pub.PublishSummary
 		if !cfg.Record.Manual {
-			id, err := rr.start("", "")
+			id, err := rr.start(startRequest{})
 			if err != nil {
 				ln.Close()
 				return err

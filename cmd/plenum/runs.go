@@ -12,6 +12,7 @@ import (
 	"net/http"
 	"net/url"
 	"os"
+	"strconv"
 	"strings"
 	"sync"
 	"time"
@@ -33,6 +34,7 @@ type runs struct {
 	log     *slog.Logger
 	publish func([]byte) // the run summary, at least once
 	emit    func(pipeline.Event)
+	store   *pipeline.Store // latest values, for the conditions at the start; may be nil
 
 	// What the recorder failed to keep: samples its subscription dropped
 	// and points the disk refused. A rise raises recorder_behind.
@@ -47,16 +49,59 @@ type runs struct {
 	auto bool // the current run was started by the pull trigger
 }
 
+// startRequest is what a start command may carry.
+type startRequest struct {
+	Label, Notes string
+	Entered      record.Conditions // values entered with the command win over sensors
+}
+
+// conditions fills the ambient conditions at the start: entered values
+// first, then the latest fresh values of the ambient channels.
+func (r *runs) conditions(entered record.Conditions, now time.Time) record.Conditions {
+	c := entered
+	fromSensors := false
+	if r.store != nil {
+		for _, f := range []struct {
+			name string
+			dst  **float64
+		}{{"baro_pressure", &c.PressurePa}, {"ambient_temp", &c.TemperatureC}, {"ambient_humidity", &c.RelativeHumidity}} {
+			if *f.dst != nil {
+				continue
+			}
+			id, ok := r.reg.Lookup(f.name)
+			if !ok {
+				continue
+			}
+			if v := r.store.Get(id); v.Fresh(now, 30*time.Second) {
+				x := v.Value
+				*f.dst, fromSensors = &x, true
+			}
+		}
+	}
+	switch {
+	case !entered.Empty() && fromSensors:
+		c.Source = "sensors+entered"
+	case !entered.Empty():
+		c.Source = "entered"
+	case fromSensors:
+		c.Source = "sensors"
+	}
+	return c
+}
+
 // start opens a new run.
-func (r *runs) start(label, notes string) (string, error) {
+func (r *runs) start(req startRequest) (string, error) {
 	r.mu.Lock()
 	defer r.mu.Unlock()
 	if r.cur != nil {
 		return "", fmt.Errorf("run %s is already being recorded", r.cur.ID())
 	}
-	id := time.Now().UTC().Format("20060102T150405.000Z")
+	label, notes := req.Label, req.Notes
+	now := time.Now()
+	id := now.UTC().Format("20060102T150405.000Z")
 	rec, err := record.Open(record.Config{Dir: r.cfg.Record.Dir, Run: id, Vehicle: r.cfg.Vehicle, Label: label, Notes: notes,
-		SyncEvery: time.Duration(r.cfg.Record.SyncEvery), RotateBytes: int64(r.cfg.Record.RotateMB) << 20, ConfigYAML: r.cfg.Raw}, r.reg)
+		SyncEvery: time.Duration(r.cfg.Record.SyncEvery), RotateBytes: int64(r.cfg.Record.RotateMB) << 20, ConfigYAML: r.cfg.Raw,
+		Conditions: r.conditions(req.Entered, now)}, r.reg)
 	if err != nil {
 		return "", err
 	}
@@ -110,7 +155,7 @@ func (r *runs) Run(ctx context.Context) {
 			start, end := trig.Update(s.Time, thr, rpm)
 			switch {
 			case start && r.current() == "":
-				if id, err := r.start("pull", "started by the wide-open-throttle trigger"); err != nil {
+				if id, err := r.start(startRequest{Label: "pull", Notes: "started by the wide-open-throttle trigger"}); err != nil {
 					r.log.Error("auto trigger: cannot start a run", "err", err)
 				} else {
 					r.mu.Lock()
@@ -228,7 +273,12 @@ func (r *runs) handler() http.Handler {
 		}
 	}
 	mux.HandleFunc("POST /api/runs/start", authed(func(w http.ResponseWriter, req *http.Request) {
-		id, err := r.start(req.FormValue("label"), req.FormValue("notes"))
+		sr := startRequest{Label: req.FormValue("label"), Notes: req.FormValue("notes")}
+		if err := parseEntered(req, &sr.Entered); err != nil {
+			http.Error(w, err.Error(), http.StatusBadRequest)
+			return
+		}
+		id, err := r.start(sr)
 		if err != nil {
 			http.Error(w, err.Error(), http.StatusConflict)
 			return
@@ -246,6 +296,44 @@ func (r *runs) handler() http.Handler {
 	return mux
 }
 
+// checkConditions refuses entered conditions outside what the ambient
+// channels accept (50–110 kPa, −40–60 °C, 0–1).
+func checkConditions(c record.Conditions) error {
+	for _, f := range []struct {
+		name     string
+		v        *float64
+		min, max float64
+	}{{"pressure_pa", c.PressurePa, 50000, 110000}, {"temperature_c", c.TemperatureC, -40, 60}, {"relative_humidity", c.RelativeHumidity, 0, 1}} {
+		if f.v != nil && !(*f.v >= f.min && *f.v <= f.max) {
+			return fmt.Errorf("%s: %g is outside %g–%g", f.name, *f.v, f.min, f.max)
+		}
+	}
+	return nil
+}
+
+// parseEntered reads the optional form fields pressure_kpa, temperature_c
+// and humidity_percent: conditions read off a weather station.
+func parseEntered(req *http.Request, c *record.Conditions) error {
+	for _, f := range []struct {
+		key      string
+		dst      **float64
+		scale    float64
+		min, max float64
+	}{{"pressure_kpa", &c.PressurePa, 1000, 50, 110}, {"temperature_c", &c.TemperatureC, 1, -40, 60}, {"humidity_percent", &c.RelativeHumidity, 0.01, 0, 100}} {
+		s := req.FormValue(f.key)
+		if s == "" {
+			continue
+		}
+		v, err := strconv.ParseFloat(s, 64)
+		if err != nil || v < f.min || v > f.max {
+			return fmt.Errorf("%s: %q is not a number between %g and %g", f.key, s, f.min, f.max)
+		}
+		x := v * f.scale
+		*f.dst = &x
+	}
+	return nil
+}
+
 // cmdRunControl is `plenum run-start` and `plenum run-stop`: they ask a
 // running daemon's local HTTP API, with the control token from
 // PLENUM_CONTROL_TOKEN or -token-file.
@@ -255,6 +343,9 @@ func cmdRunControl(verb string, args []string, stdout io.Writer) error {
 	tokenFile := fs.String("token-file", "", "file holding the control token (default: $PLENUM_CONTROL_TOKEN)")
 	label := fs.String("label", "", "run label (run-start)")
 	notes := fs.String("notes", "", "free-form notes (run-start)")
+	pressure := fs.String("pressure-kpa", "", "ambient pressure read off a barometer, kPa (run-start; default: the sensor)")
+	temp := fs.String("temperature-c", "", "ambient temperature, °C (run-start; default: the sensor)")
+	hum := fs.String("humidity-percent", "", "relative humidity, % (run-start; default: the sensor)")
 	if err := fs.Parse(args); err != nil {
 		return usageError{err.Error()}
 	}
@@ -266,7 +357,7 @@ func cmdRunControl(verb string, args []string, stdout io.Writer) error {
 		}
 		token = strings.TrimSpace(string(b))
 	}
-	form := url.Values{"label": {*label}, "notes": {*notes}}
+	form := url.Values{"label": {*label}, "notes": {*notes}, "pressure_kpa": {*pressure}, "temperature_c": {*temp}, "humidity_percent": {*hum}}
 	req, err := http.NewRequest(http.MethodPost, "http://"+*addr+"/api/runs/"+verb, strings.NewReader(form.Encode()))
 	if err != nil {
 		return err
@@ -285,4 +376,78 @@ func cmdRunControl(verb string, args []string, stdout io.Writer) error {
 	}
 	stdout.Write(body)
 	return nil
+}
+
+// mqttCommand is the JSON payload of <prefix>/<vehicle>/cmd/run/start and
+// …/cmd/run/stop. Every key is optional; token is required when
+// record.control_token is set.
+type mqttCommand struct {
+	Request    string             `json:"request"` // echoed in the reply
+	Token      string             `json:"token"`
+	Label      string             `json:"label"`
+	Notes      string             `json:"notes"`
+	Conditions *record.Conditions `json:"conditions"` // entered conditions, SI units
+}
+
+// mqttReply is published on <prefix>/<vehicle>/reply/run/start|stop.
+type mqttReply struct {
+	Request string          `json:"request,omitempty"`
+	OK      bool            `json:"ok"`
+	Run     string          `json:"run,omitempty"`
+	Error   string          `json:"error,omitempty"`
+	Summary *record.Summary `json:"summary,omitempty"`
+}
+
+// command serves the MQTT command topics run/start and run/stop.
+func (r *runs) command(suffix string, payload []byte) []byte {
+	var c mqttCommand
+	rep := mqttReply{}
+	reply := func() []byte {
+		b, _ := json.Marshal(rep)
+		return b
+	}
+	if len(payload) > 0 {
+		if err := json.Unmarshal(payload, &c); err != nil {
+			rep.Error = fmt.Sprintf("cmd/%s: payload is not a JSON command: %v", suffix, err)
+			return reply()
+		}
+	}
+	rep.Request = c.Request
+	if tok := r.cfg.Record.ControlToken; tok != "" && subtle.ConstantTimeCompare([]byte(c.Token), []byte(tok)) != 1 {
+		rep.Error = "unauthorized: the token does not match record.control_token"
+		r.log.Warn("mqtt run command refused: bad token", "topic", suffix)
+		return reply()
+	}
+	switch suffix {
+	case "run/start":
+		sr := startRequest{Label: c.Label, Notes: c.Notes}
+		if c.Conditions != nil {
+			if err := checkConditions(*c.Conditions); err != nil {
+				rep.Error = "conditions: " + err.Error()
+				return reply()
+			}
+			sr.Entered = *c.Conditions
+			sr.Entered.Source = ""
+		}
+		id, err := r.start(sr)
+		if err != nil {
+			rep.Error = err.Error()
+			return reply()
+		}
+		r.log.Info("run started by MQTT command", "run", id)
+		rep.OK, rep.Run = true, id
+	case "run/stop":
+		sum, err := r.stop()
+		if sum.Run == "" {
+			rep.Error = err.Error()
+			return reply()
+		}
+		rep.OK, rep.Run, rep.Summary = err == nil, sum.Run, &sum
+		if err != nil {
+			rep.Error = err.Error()
+		}
+	default:
+		rep.Error = fmt.Sprintf("unknown command %q: use run/start or run/stop", suffix)
+	}
+	return reply()
 }

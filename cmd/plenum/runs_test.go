@@ -38,7 +38,11 @@ func TestRunStartStopCommands(t *testing.T) {
 	}
 	t.Setenv("PLENUM_CONTROL_TOKEN", "s3cret-token")
 	var out, errb bytes.Buffer
-	if code := run([]string{"run-start", "-addr", httpAddr, "-label", "pull 1", "-notes", "fresh plugs"}, &out, &errb); code != 0 {
+	if code := run([]string{"run-start", "-addr", httpAddr, "-humidity-percent", "140"}, &out, &errb); code == 0 || !strings.Contains(errb.String(), "humidity_percent") {
+		t.Fatalf("run-start with 140 %% humidity: %d %s", code, errb.String())
+	}
+	time.Sleep(700 * time.Millisecond) // let the ambient sensors be read
+	if code := run([]string{"run-start", "-addr", httpAddr, "-label", "pull 1", "-notes", "fresh plugs", "-pressure-kpa", "99.1"}, &out, &errb); code != 0 {
 		t.Fatalf("run-start: %d %s", code, errb.String())
 	}
 	var started map[string]string
@@ -62,8 +66,11 @@ func TestRunStartStopCommands(t *testing.T) {
 		}
 	}
 	meta, _ := os.ReadFile(filepath.Join(dir, "run.json"))
-	if !strings.Contains(string(meta), `"label": "pull 1"`) || !strings.Contains(string(meta), "fresh plugs") {
-		t.Errorf("run.json: %s", meta)
+	var m record.Meta
+	if err := json.Unmarshal(meta, &m); err != nil || m.Label != "pull 1" || m.Notes != "fresh plugs" || m.Conditions == nil ||
+		m.Conditions.PressurePa == nil || *m.Conditions.PressurePa != 99100 || m.Conditions.Source != "sensors+entered" ||
+		m.Conditions.TemperatureC == nil || m.Conditions.RelativeHumidity == nil {
+		t.Errorf("run.json (%v): %s", err, meta)
 	}
 	if code := run([]string{"run-stop", "-addr", httpAddr}, &out, &errb); code == 0 {
 		t.Fatal("run-stop with no run succeeded")

@@ -25,6 +25,7 @@ import (
 	"fmt"
 	"log/slog"
 	"math"
+	"strings"
 	"sync/atomic"
 	"time"
 
@@ -50,11 +51,19 @@ type Config struct {
 	// kept on disk until the broker acknowledges them (QoS 1), in order,
 	// across broker outages and restarts.
 	Outbox *Outbox
+	// OnCommand, when set, receives every message on
+	// <prefix>/<vehicle>/cmd/<suffix> (subscribed at QoS 1 on each connect).
+	// What it returns is published at QoS 1 on <prefix>/<vehicle>/reply/<suffix>.
+	// It runs on the MQTT client's goroutine and must not block for long.
+	// Who may publish commands is the broker's business: the embedded broker
+	// lets only users with command rights write there.
+	OnCommand func(suffix string, payload []byte) []byte
 }
 
 // Stats are the publisher's counters.
 type Stats struct {
 	Published, Coalesced, Failed atomic.Uint64
+	Commands                     atomic.Uint64 // command messages received
 }
 
 // Publisher forwards one pipeline subscription to MQTT.
@@ -111,6 +120,21 @@ func New(cfg Config, reg *pipeline.Registry, sub *pipeline.Subscription) (*Publi
 		SetOnConnectHandler(func(c paho.Client) {
 			// Handlers must not block: publish without waiting.
 			c.Publish(p.Topic("status"), 1, true, p.statusPayload("online"))
+			if cfg.OnCommand != nil {
+				tok := c.Subscribe(p.Topic("cmd/#"), 1, p.onCommand)
+				go func() {
+					if tok.WaitTimeout(10*time.Second) && tok.Error() != nil {
+						log.Error("mqtt: cannot subscribe to the command topics", "err", tok.Error())
+					}
+					if st, ok := tok.(*paho.SubscribeToken); ok {
+						for topic, code := range st.Result() {
+							if code >= 0x80 {
+								log.Error("mqtt: the broker refused the command subscription", "topic", topic, "code", code)
+							}
+						}
+					}
+				}()
+			}
 			log.Info("mqtt connected", "broker", cfg.Broker)
 		}).
 		SetConnectionLostHandler(func(_ paho.Client, err error) {
@@ -118,6 +142,19 @@ func New(cfg Config, reg *pipeline.Registry, sub *pipeline.Subscription) (*Publi
 		})
 	p.client = paho.NewClient(opts)
 	return p, nil
+}
+
+// onCommand hands a command message to Config.OnCommand and publishes its
+// reply.
+func (p *Publisher) onCommand(c paho.Client, m paho.Message) {
+	suffix, ok := strings.CutPrefix(m.Topic(), p.Topic("cmd/"))
+	if !ok || suffix == "" {
+		return
+	}
+	p.stats.Commands.Add(1)
+	if reply := p.cfg.OnCommand(suffix, m.Payload()); reply != nil {
+		c.Publish(p.Topic("reply/"+suffix), 1, false, reply)
+	}
 }
 
 func validSegment(s string) bool {

@@ -45,6 +45,7 @@ type Config struct {
 	SyncEvery   time.Duration // default 200 ms
 	ConfigYAML  []byte        // the configuration the run is made with, kept as config.yaml
 	RotateBytes int64         // default 64 MiB
+	Conditions  Conditions    // ambient conditions at the start, kept in run.json
 }
 
 // Meta is the run's identity, in run.json.
@@ -54,6 +55,8 @@ type Meta struct {
 	Label   string    `json:"label,omitempty"`
 	Notes   string    `json:"notes,omitempty"`
 	Start   time.Time `json:"start"`
+	// Conditions at the start: measured, entered, or absent.
+	Conditions *Conditions `json:"conditions,omitempty"`
 }
 
 // Recorder appends points to the current file of one run. Write and
@@ -100,7 +103,12 @@ func Open(cfg Config, reg *pipeline.Registry) (*Recorder, error) {
 	if _, err := os.Stat(filepath.Join(dir, "run.json")); err == nil {
 		return nil, fmt.Errorf("record: run %s exists already; earlier runs are never written to", cfg.Run)
 	}
-	meta, _ := json.MarshalIndent(Meta{ID: cfg.Run, Vehicle: cfg.Vehicle, Label: cfg.Label, Notes: cfg.Notes, Start: time.Now().UTC()}, "", "  ")
+	m := Meta{ID: cfg.Run, Vehicle: cfg.Vehicle, Label: cfg.Label, Notes: cfg.Notes, Start: time.Now().UTC()}
+	if !cfg.Conditions.Empty() {
+		c := cfg.Conditions
+		m.Conditions = &c
+	}
+	meta, _ := json.MarshalIndent(m, "", "  ")
 	if err := writeSynced(filepath.Join(dir, "run.json"), meta); err != nil {
 		return nil, err
 	}
@@ -323,7 +331,7 @@ func (r *Recorder) Sync() error {
 func (r *Recorder) ID() string { return r.cfg.Run }
 
 // Summary returns the run's summary so far.
-func (r *Recorder) Summary() Summary { return r.sum.s }
+func (r *Recorder) Summary() Summary { return r.sum.summary() }
 
 // Close syncs, writes summary.json beside the data and marks the run as
 // ended normally.
@@ -334,7 +342,7 @@ func (r *Recorder) Close() error {
 	if err := r.f.Close(); err != nil {
 		return fmt.Errorf("record: %w", err)
 	}
-	if err := writeSynced(filepath.Join(r.dir, "summary.json"), r.sum.s.JSON()); err != nil {
+	if err := writeSynced(filepath.Join(r.dir, "summary.json"), r.sum.summary().JSON()); err != nil {
 		return err
 	}
 	return writeSynced(filepath.Join(r.dir, "ended"), []byte(time.Now().UTC().Format(time.RFC3339Nano)+"\n"))

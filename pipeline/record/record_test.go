@@ -262,11 +262,12 @@ func TestSummary(t *testing.T) {
 	dir := t.TempDir()
 	reg := pipeline.NewRegistry()
 	ids := map[string]pipeline.ChannelID{}
-	for _, n := range []string{"engine_speed", "dyno_torque", "corrected_power", "boost_pressure", "lambda", "intake_air_temp"} {
+	for _, n := range []string{"engine_speed", "dyno_torque", "corrected_power", "boost_pressure", "lambda", "intake_air_temp", "baro_pressure"} {
 		id, _ := reg.Register(pipeline.Channel{Name: n, Quantity: n, Source: "s"})
 		ids[n] = id
 	}
-	r, err := Open(Config{Dir: dir, Run: "pull", Vehicle: "v"}, reg)
+	tc := 21.5
+	r, err := Open(Config{Dir: dir, Run: "pull", Vehicle: "v", Conditions: Conditions{TemperatureC: &tc, Source: "entered"}}, reg)
 	if err != nil {
 		t.Fatal(err)
 	}
@@ -285,6 +286,8 @@ func TestSummary(t *testing.T) {
 	put("engine_speed", 6000, 3*time.Second)
 	put("dyno_torque", 150, 3*time.Second)
 	put("intake_air_temp", 48, 3*time.Second)
+	put("baro_pressure", 100000, 0)
+	put("baro_pressure", 101000, 3*time.Second)
 	r.WriteEvent(pipeline.Event{Kind: "turbo_lag", Start: t0})
 	r.WriteEvent(pipeline.Event{Kind: "warning_raised", Name: "lean_under_boost", Start: t0})
 	if err := r.Close(); err != nil {
@@ -300,7 +303,16 @@ func TestSummary(t *testing.T) {
 	}
 	if *s.PeakTorqueNm != 200 || *s.PeakTorqueRPM != 3000 || *s.PeakCorrectedPowerW != 62832 || *s.PeakPowerRPM != 3000 ||
 		*s.PeakBoostPa != 110000 || *s.MinLambdaUnderLoad != 0.79 || *s.MaxLambdaUnderLoad != 0.86 || *s.MaxIntakeAirC != 48 ||
-		s.LagEvents != 1 || s.WarningsRaised != 1 || s.Samples != 11 || s.End.Sub(s.Start) != 3*time.Second {
+		s.LagEvents != 1 || s.WarningsRaised != 1 || s.Samples != 13 || s.End.Sub(s.Start) != 3*time.Second {
 		t.Fatalf("summary %s", b)
+	}
+	// The mean of the two barometer readings; no temperature sensor.
+	if c := s.Conditions; c == nil || c.PressurePa == nil || *c.PressurePa != 100500 || c.TemperatureC != nil || c.Source != "mean of sensors" {
+		t.Fatalf("summary conditions %s", b)
+	}
+	mb, _ := os.ReadFile(filepath.Join(dir, "pull", "run.json"))
+	var m Meta
+	if err := json.Unmarshal(mb, &m); err != nil || m.Conditions == nil || *m.Conditions.TemperatureC != 21.5 || m.Conditions.Source != "entered" {
+		t.Fatalf("run.json %s (%v)", mb, err)
 	}
 }

@@ -26,6 +26,26 @@ type Summary struct {
 	MaxIntakeAirC       *float64  `json:"max_intake_air_temp_celsius,omitempty"`
 	LagEvents           int       `json:"turbo_lag_events"`
 	WarningsRaised      int       `json:"warnings_raised"`
+	// Conditions are the means of the ambient channels over the run, where
+	// the car had those sensors.
+	Conditions *Conditions `json:"conditions,omitempty"`
+}
+
+// Conditions are the ambient conditions of a run: what the power correction
+// standards need. A nil field was neither measured nor entered.
+type Conditions struct {
+	PressurePa       *float64 `json:"pressure_pa,omitempty"`
+	TemperatureC     *float64 `json:"temperature_c,omitempty"`
+	RelativeHumidity *float64 `json:"relative_humidity,omitempty"` // 0–1
+	// Source says where the values come from: "sensors" (the latest fresh
+	// values at the start), "entered" (given with the start command),
+	// "sensors+entered", or "mean of sensors" in a summary.
+	Source string `json:"source,omitempty"`
+}
+
+// Empty reports whether c holds no value.
+func (c Conditions) Empty() bool {
+	return c.PressurePa == nil && c.TemperatureC == nil && c.RelativeHumidity == nil
 }
 
 // underLoad is the boost above which λ counts as "under load" (common
@@ -43,6 +63,9 @@ const (
 	roleBoost
 	roleLambda
 	roleIAT
+	roleAmbP
+	roleAmbT
+	roleAmbH
 )
 
 func roleOf(name string) role {
@@ -59,6 +82,12 @@ func roleOf(name string) role {
 		return roleLambda
 	case "intake_air_temp":
 		return roleIAT
+	case "baro_pressure":
+		return roleAmbP
+	case "ambient_temp":
+		return roleAmbT
+	case "ambient_humidity":
+		return roleAmbH
 	}
 	return roleNone
 }
@@ -67,6 +96,8 @@ func roleOf(name string) role {
 type summarizer struct {
 	rpm, boost         float64
 	haveRPM, haveBoost bool
+	ambSum             [3]float64 // pressure, temperature, humidity
+	ambN               [3]int
 	s                  Summary
 }
 
@@ -117,7 +148,27 @@ func (z *summarizer) sample(ro role, s pipeline.Sample) {
 		}
 	case roleIAT:
 		peak(&z.s.MaxIntakeAirC, s.Value, true)
+	case roleAmbP, roleAmbT, roleAmbH:
+		z.ambSum[ro-roleAmbP] += s.Value
+		z.ambN[ro-roleAmbP]++
 	}
+}
+
+// summary returns the summary with the ambient means filled in.
+func (z *summarizer) summary() Summary {
+	s := z.s
+	var c Conditions
+	for i, p := range []**float64{&c.PressurePa, &c.TemperatureC, &c.RelativeHumidity} {
+		if z.ambN[i] > 0 {
+			m := z.ambSum[i] / float64(z.ambN[i])
+			*p = &m
+		}
+	}
+	if !c.Empty() {
+		c.Source = "mean of sensors"
+		s.Conditions = &c
+	}
+	return s
 }
 
 func (z *summarizer) event(e pipeline.Event) {

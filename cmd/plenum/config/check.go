@@ -189,6 +189,34 @@ func (cfg *Config) check(file string, root *yaml.Node) Errors {
 	if cfg.MQTT.MaxRateHz < 0 || cfg.MQTT.MaxRateHz > 1000 {
 		c.fail("must be between 0 and 1000", "mqtt", "max_rate_hz")
 	}
+	users := map[string]bool{}
+	commandUsers := 0
+	for i, u := range cfg.MQTT.Users {
+		if cfg.MQTT.Broker != "embedded" {
+			c.fail("accounts are for the embedded broker; an external broker keeps its own", "mqtt", "users", i)
+			break
+		}
+		if u.Name == "" || users[u.Name] || u.Name == "plenum-daemon" {
+			c.fail("every user needs a unique name (plenum-daemon is taken)", "mqtt", "users", i, "name")
+		}
+		users[u.Name] = true
+		if u.PasswordFile == "" {
+			c.fail("needs a file holding the password", "mqtt", "users", i, "password_file")
+		}
+		if u.Commands {
+			commandUsers++
+		}
+	}
+	if cfg.MQTT.Commands {
+		switch {
+		case cfg.Record.Dir == "":
+			c.fail("run commands need record.dir", "mqtt", "commands")
+		case cfg.MQTT.Broker == "embedded" && commandUsers == 0:
+			c.fail("no user may send them: give a user in mqtt.users commands: true", "mqtt", "commands")
+		case cfg.MQTT.Broker != "embedded" && cfg.Record.ControlToken == "":
+			c.fail("with an external broker, commands need record.control_token, carried in each command's token", "mqtt", "commands")
+		}
+	}
 	if (cfg.MQTT.CertFile == "") != (cfg.MQTT.KeyFile == "") {
 		c.fail("cert_file and key_file go together", "mqtt", "cert_file")
 	}

@@ -190,6 +190,19 @@ type MQTT struct {
 	MaxRateHz     float64  `yaml:"max_rate_hz"`
 	SnapshotEvery Duration `yaml:"snapshot_every"`
 	Anonymous     *bool    `yaml:"anonymous_read"`
+	// Users are accounts of the embedded broker, for dashboards that must
+	// log in and for clients allowed to send run commands.
+	Users []MQTTUser `yaml:"users"`
+	// Commands makes the daemon accept run commands on
+	// <prefix>/<vehicle>/cmd/run/start and …/stop (off by default).
+	Commands bool `yaml:"commands"`
+}
+
+// MQTTUser is one account of the embedded broker.
+type MQTTUser struct {
+	Name         string `yaml:"name"`
+	PasswordFile string `yaml:"password_file"` // the password is never in the config itself
+	Commands     bool   `yaml:"commands"`      // may publish to …/cmd/…
 }
 
 // HTTP configures the metrics listener.

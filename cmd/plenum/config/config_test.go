@@ -40,6 +40,14 @@ func TestErrorsNameFileLineAndField(t *testing.T) {
 		{"non-monotonic table", "vehicle: x\nengine:\n  displacement_l: 2\n  ve_table:\n    engine_speeds_rpm: [1000, 900]\n    manifold_pressures_kpa: [30, 100]\n    values: [[0.5, 0.6], [0.7, 0.8]]\n",
 			"bad.yaml:5: engine.ve_table.engine_speeds_rpm[1]: must increase strictly"},
 		{"missing vehicle", "engine: {displacement_l: 2, volumetric_efficiency: 0.9}\n", "bad.yaml:1: vehicle: must name"},
+		{"commands without a command user", "vehicle: x\nengine: {displacement_l: 2, volumetric_efficiency: 0.9}\nrecord: {dir: /tmp/r}\nmqtt:\n  users:\n    - {name: wall, password_file: /etc/pw}\n  commands: true\n",
+			"bad.yaml:7: mqtt.commands: no user may send them"},
+		{"commands on an external broker without a token", "vehicle: x\nengine: {displacement_l: 2, volumetric_efficiency: 0.9}\nrecord: {dir: /tmp/r}\nmqtt:\n  broker: tcp://10.0.0.2:1883\n  commands: true\n",
+			"bad.yaml:6: mqtt.commands: with an external broker, commands need record.control_token"},
+		{"commands without recording", "vehicle: x\nengine: {displacement_l: 2, volumetric_efficiency: 0.9}\nmqtt:\n  users: [{name: op, password_file: /etc/pw, commands: true}]\n  commands: true\n",
+			"bad.yaml:5: mqtt.commands: run commands need record.dir"},
+		{"user without password file", "vehicle: x\nengine: {displacement_l: 2, volumetric_efficiency: 0.9}\nmqtt:\n  users:\n    - name: op\n",
+			"mqtt.users[0].password_file: needs a file"},
 		{"bad broker", "vehicle: x\nengine: {displacement_l: 2, volumetric_efficiency: 0.9}\nmqtt:\n  broker: http://x\n", "bad.yaml:4: mqtt.broker"},
 	}
 	for _, c := range cases {
