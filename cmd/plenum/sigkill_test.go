@@ -279,4 +279,3 @@ func keys(m map[string][32]byte) []string {
 	sort.Strings(k)
 	return k
 }
-
