@@ -98,11 +98,14 @@ func (p *Pipeline) Put(s Sample) bool {
 	}
 }
 
-// Emit hands an event to the pipeline for fan-out.
+// Emit hands an event to the pipeline for fan-out. Once Run has returned,
+// the event is fanned out directly, so that what happens during a shutdown
+// (a run closing, say) still reaches the recorder and the publishers.
 func (p *Pipeline) Emit(e Event) {
 	select {
 	case p.evIn <- e:
 	case <-p.done:
+		p.fan.event(e)
 	}
 }
 
@@ -125,7 +128,17 @@ func (p *Pipeline) Counters() Counters {
 // Run is the ingest loop. It returns when ctx is done, after processing what
 // was already queued, and closes the pipeline for further Puts.
 func (p *Pipeline) Run(ctx context.Context) error {
-	defer close(p.done)
+	defer func() {
+		close(p.done)
+		for { // events queued while the loop was finishing
+			select {
+			case e := <-p.evIn:
+				p.fan.event(e)
+			default:
+				return
+			}
+		}
+	}()
 	for {
 		select {
 		case s := <-p.in:
