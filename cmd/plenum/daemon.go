@@ -16,12 +16,15 @@ import (
 	"sync"
 	"time"
 
+	"github.com/prometheus/client_golang/prometheus"
+
 	"github.com/plenum-engine/plenum/cmd/plenum/config"
 	"github.com/plenum-engine/plenum/pipeline"
 	"github.com/plenum-engine/plenum/pipeline/broker"
 	"github.com/plenum-engine/plenum/pipeline/mqttpub"
 	"github.com/plenum-engine/plenum/pipeline/promexport"
 	"github.com/plenum-engine/plenum/pipeline/record"
+	"github.com/plenum-engine/plenum/pipeline/tsdbpush"
 )
 
 // source is anything that feeds the pipeline until its context ends.
@@ -70,13 +73,24 @@ func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *s
 	p.BindEmitters()
 	sink.set(p)
 
+	// Pushing the recorded lines to a time-series database.
+	pusher, err := openPusher(cfg, log)
+	if err != nil {
+		return err
+	}
+	var extra []prometheus.Collector
+	if pusher != nil {
+		defer pusher.Close()
+		extra = pushMetrics(pusher)
+	}
+
 	// Metrics.
 	col, err := promexport.New(p, time.Now)
 	if err != nil {
 		return err
 	}
 	evm := promexport.NewEvents(p.SubscribeEvents("event_metrics"))
-	h, err := promexport.Handler(col, evm)
+	h, err := promexport.Handler(col, append([]prometheus.Collector{evm}, extra...)...)
 	if err != nil {
 		return err
 	}
@@ -153,6 +167,9 @@ func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *s
 		}
 		// The recorder must see every sample: a ring of several seconds.
 		rr = &runs{cfg: cfg, reg: reg, sub: p.Subscribe("recorder", 1<<18), log: log, emit: p.Emit, store: p.Store()}
+		if pusher != nil {
+			rr.forward = pusher
+		}
 		mux.Handle("/api/runs/", rr.handler())
 	}
 	if cfg.StateDir != "" {
@@ -232,6 +249,19 @@ func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *s
 	} else {
 		close(recDone)
 	}
+	pushCtx, pushCancel := context.WithCancel(context.Background())
+	defer pushCancel()
+	pushDone := make(chan struct{})
+	if pusher != nil {
+		go func() {
+			defer close(pushDone)
+			if err := pusher.Run(pushCtx); err != nil {
+				log.Error("push: the backlog could not be written at the end; unsent lines may be lost", "err", err)
+			}
+		}()
+	} else {
+		close(pushDone)
+	}
 	evCtx, evCancel := context.WithCancel(context.Background())
 	defer evCancel()
 	go evm.Run(evCtx)
@@ -248,6 +278,8 @@ func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *s
 	<-pipeDone
 	recCancel()
 	<-recDone
+	pushCancel() // after the recorder: its last lines are in the backlog
+	<-pushDone
 	if rr != nil {
 		time.Sleep(300 * time.Millisecond) // let the outbox hand the summary to a connected broker
 	}
@@ -263,6 +295,56 @@ func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *s
 		brk.Close()
 	}
 	return runErr
+}
+
+// openPusher opens the push backlog when record.push is configured.
+func openPusher(cfg *config.Config, log *slog.Logger) (*tsdbpush.Pusher, error) {
+	pu := cfg.Record.Push
+	if pu.URL == "" || cfg.Record.Dir == "" {
+		return nil, nil
+	}
+	pc := tsdbpush.Config{URL: pu.URL, Username: pu.Username, Dir: pu.Dir, MaxBacklogBytes: int64(pu.MaxBacklogMB) << 20,
+		FlushEvery: time.Duration(pu.FlushEvery), Gzip: pu.Gzip, Logger: log.With("component", "push")}
+	if pc.Dir == "" {
+		pc.Dir = filepath.Join(cfg.StateDir, "push-"+cfg.Vehicle)
+	}
+	read := func(field, path string) (string, error) {
+		if path == "" {
+			return "", nil
+		}
+		b, err := os.ReadFile(path)
+		if err != nil {
+			return "", fmt.Errorf("record.push.%s: %w", field, err)
+		}
+		return strings.TrimSpace(string(b)), nil
+	}
+	var err error
+	if pc.Token, err = read("token_file", pu.TokenFile); err != nil {
+		return nil, err
+	}
+	if pc.Password, err = read("password_file", pu.PasswordFile); err != nil {
+		return nil, err
+	}
+	p, err := tsdbpush.Open(pc)
+	if err != nil {
+		return nil, fmt.Errorf("record.push: %w", err)
+	}
+	return p, nil
+}
+
+// pushMetrics exposes the pusher's counters.
+func pushMetrics(p *tsdbpush.Pusher) []prometheus.Collector {
+	counter := func(name, help string, f func(tsdbpush.Stats) uint64) prometheus.Collector {
+		return prometheus.NewCounterFunc(prometheus.CounterOpts{Name: name, Help: help}, func() float64 { return float64(f(p.Stats())) })
+	}
+	return []prometheus.Collector{
+		counter("plenum_push_sent_lines_total", "Recorded lines the time-series database accepted.", func(s tsdbpush.Stats) uint64 { return s.SentLines }),
+		counter("plenum_push_retries_total", "Write requests retried after a failure.", func(s tsdbpush.Stats) uint64 { return s.Retries }),
+		counter("plenum_push_rejected_lines_total", "Lines the database refused as malformed, kept under rejected/.", func(s tsdbpush.Stats) uint64 { return s.RejectedLines }),
+		counter("plenum_push_dropped_lines_total", "Lines dropped unsent because the backlog was full.", func(s tsdbpush.Stats) uint64 { return s.DroppedLines }),
+		prometheus.NewGaugeFunc(prometheus.GaugeOpts{Name: "plenum_push_backlog_bytes", Help: "Bytes recorded but not yet accepted by the database."},
+			func() float64 { return float64(p.Stats().BacklogBytes) }),
+	}
 }
 
 func waitTimeout(wg *sync.WaitGroup, d time.Duration) {

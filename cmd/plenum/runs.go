@@ -35,6 +35,7 @@ type runs struct {
 	publish func([]byte) // the run summary, at least once
 	emit    func(pipeline.Event)
 	store   *pipeline.Store // latest values, for the conditions at the start; may be nil
+	forward record.Forwarder // the push backlog; nil: none
 
 	// What the recorder failed to keep: samples its subscription dropped
 	// and points the disk refused. A rise raises recorder_behind.
@@ -101,7 +102,7 @@ func (r *runs) start(req startRequest) (string, error) {
 	id := now.UTC().Format("20060102T150405.000Z")
 	rec, err := record.Open(record.Config{Dir: r.cfg.Record.Dir, Run: id, Vehicle: r.cfg.Vehicle, Label: label, Notes: notes,
 		SyncEvery: time.Duration(r.cfg.Record.SyncEvery), RotateBytes: int64(r.cfg.Record.RotateMB) << 20, ConfigYAML: r.cfg.Raw,
-		Conditions: r.conditions(req.Entered, now)}, r.reg)
+		Conditions: r.conditions(req.Entered, now), Forward: r.forward}, r.reg)
 	if err != nil {
 		return "", err
 	}

@@ -46,6 +46,16 @@ type Config struct {
 	ConfigYAML  []byte        // the configuration the run is made with, kept as config.yaml
 	RotateBytes int64         // default 64 MiB
 	Conditions  Conditions    // ambient conditions at the start, kept in run.json
+	// Forward, when set, receives every block of whole lines as it is
+	// written to the run's file, e.g. to push them to a time-series
+	// database. It must copy and must not block.
+	Forward Forwarder
+}
+
+// Forwarder takes whole lines of line protocol. Append copies them and
+// returns at once; an error means they were not taken.
+type Forwarder interface {
+	Append(lines []byte) error
 }
 
 // Meta is the run's identity, in run.json.
@@ -79,6 +89,7 @@ type Recorder struct {
 	roles  []role
 	qtext  []string // ,quality="ok" and so on, with the space before the time
 	werr   error    // a write that failed between syncs; Sync returns it
+	fwdErr atomic.Uint64
 }
 
 // chunkBytes is how much Write buffers before handing it to the kernel (no
@@ -246,8 +257,16 @@ func (r *Recorder) flush() {
 		r.werr = fmt.Errorf("record: write: %w", err)
 		return
 	}
+	if r.cfg.Forward != nil {
+		if err := r.cfg.Forward.Append(b); err != nil {
+			r.fwdErr.Add(1)
+		}
+	}
 	r.enc.Reset()
 }
+
+// ForwardFailures returns how many blocks of lines Config.Forward refused.
+func (r *Recorder) ForwardFailures() uint64 { return r.fwdErr.Load() }
 
 // buildPrefixes encodes each channel's series key once.
 func (r *Recorder) buildPrefixes() {

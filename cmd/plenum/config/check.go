@@ -189,6 +189,27 @@ func (cfg *Config) check(file string, root *yaml.Node) Errors {
 	if cfg.MQTT.MaxRateHz < 0 || cfg.MQTT.MaxRateHz > 1000 {
 		c.fail("must be between 0 and 1000", "mqtt", "max_rate_hz")
 	}
+	if pu := cfg.Record.Push; pu.URL != "" {
+		u, err := url.Parse(pu.URL)
+		switch {
+		case err != nil || (u.Scheme != "http" && u.Scheme != "https") || u.Host == "":
+			c.fail("must be an http:// or https:// write endpoint", "record", "push", "url")
+		case !strings.Contains(u.RawQuery, "precision=ns"):
+			c.fail("needs precision=ns in its query: the recorder writes nanosecond times", "record", "push", "url")
+		}
+		if cfg.Record.Dir == "" {
+			c.fail("pushing needs record.dir: what is pushed is what is recorded", "record", "push")
+		}
+		if pu.TokenFile != "" && pu.Username != "" {
+			c.fail("give either token_file or username, not both", "record", "push", "token_file")
+		}
+		if (pu.Username == "") != (pu.PasswordFile == "") {
+			c.fail("username and password_file go together", "record", "push", "username")
+		}
+		if pu.MaxBacklogMB < 0 || pu.MaxBacklogMB > 1<<20 {
+			c.fail("must be between 0 (default 256) and 1048576", "record", "push", "max_backlog_mb")
+		}
+	}
 	users := map[string]bool{}
 	commandUsers := 0
 	for i, u := range cfg.MQTT.Users {

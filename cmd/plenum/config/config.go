@@ -52,6 +52,26 @@ type Record struct {
 	// ControlToken enables the run commands of the HTTP API; requests must
 	// carry "Authorization: Bearer <token>". Empty: commands are off.
 	ControlToken string `yaml:"control_token"`
+	// Push sends the recorded lines to an InfluxDB-compatible write
+	// endpoint as well; empty URL: off.
+	Push Push `yaml:"push"`
+}
+
+// Push configures sending the recorded line protocol over HTTP.
+type Push struct {
+	// URL of the write endpoint with its database and precision=ns, e.g.
+	// http://db.workshop.lan:8086/write?db=plenum&precision=ns (InfluxDB 1.x,
+	// VictoriaMetrics) or …/api/v2/write?org=o&bucket=b&precision=ns.
+	URL          string `yaml:"url"`
+	TokenFile    string `yaml:"token_file"`    // InfluxDB 2.x API token, sent as "Token …"
+	Username     string `yaml:"username"`      // basic auth, with password_file
+	PasswordFile string `yaml:"password_file"` //
+	// Dir holds the backlog that survives restarts (default:
+	// <state_dir>/push-<vehicle>); MaxBacklogMB bounds it (default 256).
+	Dir          string   `yaml:"dir"`
+	MaxBacklogMB int      `yaml:"max_backlog_mb"`
+	FlushEvery   Duration `yaml:"flush_every"` // default 1s
+	Gzip         bool     `yaml:"gzip"`
 }
 
 // CAN is one ECU connection over CAN with OBD-II requests.

@@ -48,6 +48,10 @@ func TestErrorsNameFileLineAndField(t *testing.T) {
 			"bad.yaml:5: mqtt.commands: run commands need record.dir"},
 		{"user without password file", "vehicle: x\nengine: {displacement_l: 2, volumetric_efficiency: 0.9}\nmqtt:\n  users:\n    - name: op\n",
 			"mqtt.users[0].password_file: needs a file"},
+		{"push without precision", "vehicle: x\nengine: {displacement_l: 2, volumetric_efficiency: 0.9}\nrecord:\n  dir: /tmp/r\n  push:\n    url: http://db:8086/write?db=plenum\n",
+			"bad.yaml:6: record.push.url: needs precision=ns"},
+		{"push without recording", "vehicle: x\nengine: {displacement_l: 2, volumetric_efficiency: 0.9}\nrecord:\n  push:\n    url: http://db:8086/write?db=plenum&precision=ns\n",
+			"record.push: pushing needs record.dir"},
 		{"bad broker", "vehicle: x\nengine: {displacement_l: 2, volumetric_efficiency: 0.9}\nmqtt:\n  broker: http://x\n", "bad.yaml:4: mqtt.broker"},
 	}
 	for _, c := range cases {
