@@ -34,7 +34,7 @@ type runs struct {
 	log     *slog.Logger
 	publish func([]byte) // the run summary, at least once
 	emit    func(pipeline.Event)
-	store   *pipeline.Store // latest values, for the conditions at the start; may be nil
+	store   *pipeline.Store  // latest values, for the conditions at the start; may be nil
 	forward record.Forwarder // the push backlog; nil: none
 
 	// What the recorder failed to keep: samples its subscription dropped
