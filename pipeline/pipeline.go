@@ -20,6 +20,8 @@ type Pipeline struct {
 	fan    fanout
 	done   chan struct{}
 	health *HealthSet
+	dirty  []bool   // per node, in topological order: ProcessFrame's work list
+	frame  []Sample // Run's frame being gathered
 
 	accepted  atomic.Uint64
 	flagged   atomic.Uint64
@@ -52,6 +54,7 @@ func New(reg *Registry, g *Graph, opt Options) *Pipeline {
 		evIn:   make(chan Event, 256),
 		done:   make(chan struct{}),
 		health: NewHealthSet(),
+		dirty:  make([]bool, len(g.nodes)),
 	}
 }
 
@@ -142,14 +145,14 @@ func (p *Pipeline) Run(ctx context.Context) error {
 	for {
 		select {
 		case s := <-p.in:
-			p.Process(s)
+			p.gather(s)
 		case e := <-p.evIn:
 			p.fan.event(e)
 		case <-ctx.Done():
 			for {
 				select {
 				case s := <-p.in:
-					p.Process(s)
+					p.gather(s)
 				case e := <-p.evIn:
 					p.fan.event(e)
 				default:
@@ -160,13 +163,86 @@ func (p *Pipeline) Run(ctx context.Context) error {
 	}
 }
 
+// gather processes s with the samples queued right behind it that share its
+// time (the readings of one serial line, the PIDs of one OBD answer) as one
+// frame, so that a derivation reading several of them runs once, on the
+// complete frame. It never waits for more samples.
+func (p *Pipeline) gather(s Sample) {
+	p.frame = append(p.frame[:0], s)
+	for {
+		select {
+		case n := <-p.in:
+			if n.Time.Equal(s.Time) {
+				p.frame = append(p.frame, n)
+				continue
+			}
+			p.ProcessFrame(p.frame)
+			s = n
+			p.frame = append(p.frame[:0], n)
+		default:
+			p.ProcessFrame(p.frame)
+			return
+		}
+	}
+}
+
+// ProcessFrame runs samples taken at one moment through validation, the
+// store and the fan-out, then evaluates every derivation depending on any of
+// them once, in topological order, at the latest of their times. Derived
+// values are thus computed from the whole frame, not from each partly
+// updated state in turn. From a single goroutine, like Process.
+func (p *Pipeline) ProcessFrame(ss []Sample) {
+	if len(ss) == 1 {
+		p.Process(ss[0])
+		return
+	}
+	var t time.Time
+	any := false
+	for _, s := range ss {
+		if !p.accept(s) {
+			continue
+		}
+		if s.Time.After(t) {
+			t = s.Time
+		}
+		if int(s.Channel) < len(p.graph.dependents) {
+			for _, n := range p.graph.dependents[s.Channel] {
+				p.dirty[n.order] = true
+				any = true
+			}
+		}
+	}
+	if !any {
+		return
+	}
+	for i, n := range p.graph.nodes {
+		if p.dirty[i] {
+			p.dirty[i] = false
+			p.evaluate(n, t)
+		}
+	}
+}
+
 // Process runs one sample through validation, the store, the derivations and
 // the fan-out synchronously. Run calls it for every queued sample; replay and
 // benchmarks may call it directly from a single goroutine.
 func (p *Pipeline) Process(s Sample) {
+	if !p.accept(s) {
+		return
+	}
+	if int(s.Channel) < len(p.graph.dependents) {
+		for _, n := range p.graph.dependents[s.Channel] {
+			p.evaluate(n, s.Time)
+		}
+	}
+}
+
+// accept validates s, stores it and fans it out; false if its channel is
+// unknown.
+func (p *Pipeline) accept(s Sample) bool {
 	if int(s.Channel) >= len(p.chans) {
 		p.rejected.Add(1)
-		return
+		return false
 	}
 	c := &p.chans[s.Channel]
 	if s.Quality == OK {
@@ -182,11 +258,7 @@ func (p *Pipeline) Process(s Sample) {
 	p.accepted.Add(1)
 	p.store.Set(s)
 	p.fan.sample(s)
-	if int(s.Channel) < len(p.graph.dependents) {
-		for _, n := range p.graph.dependents[s.Channel] {
-			p.evaluate(n, s.Time)
-		}
-	}
+	return true
 }
 
 func (p *Pipeline) evaluate(n *node, t time.Time) {

@@ -212,3 +212,51 @@ func BenchmarkIngest(b *testing.B) {
 	}
 	b.ReportMetric(float64(b.N)/b.Elapsed().Seconds(), "samples/s")
 }
+
+// A frame (samples of one moment) evaluates each dependent derivation once,
+// on the complete frame; Run gathers queued samples of one time into frames.
+func TestFrameEvaluatesOnce(t *testing.T) {
+	reg := newReg(t, "a", "b", "c")
+	d1 := &sumDeriv{name: "d1", in: []Input{{Name: "a"}, {Name: "b"}}, out: "ab"}
+	d2 := &sumDeriv{name: "d2", in: []Input{{Name: "ab"}, {Name: "c"}}, out: "abc"}
+	g, err := BuildGraph(reg, []Derivation{d1, d2})
+	if err != nil {
+		t.Fatal(err)
+	}
+	p := New(reg, g, Options{})
+	sub := p.Subscribe("rec", 1024)
+	a, _ := reg.Lookup("a")
+	b, _ := reg.Lookup("b")
+	c, _ := reg.Lookup("c")
+	abc, _ := reg.Lookup("abc")
+	t0 := time.Unix(1000, 0)
+	p.ProcessFrame([]Sample{{Channel: a, Value: 1, Time: t0}, {Channel: b, Value: 2, Time: t0}, {Channel: c, Value: 4, Time: t0}})
+	if d1.calls != 1 || d2.calls != 1 {
+		t.Fatalf("calls d1 %d d2 %d, want 1 each", d1.calls, d2.calls)
+	}
+	if v := p.Store().Get(abc); v.Value != 7 || !v.Time.Equal(t0) {
+		t.Fatalf("abc = %+v, want 7 at t0", v)
+	}
+	buf, _ := sub.Drain(nil, nil)
+	if len(buf) != 5 { // 3 inputs, ab, abc
+		t.Fatalf("%d samples fanned out, want 5: %+v", len(buf), buf)
+	}
+
+	// Through Run: 3 frames of 3 samples each, queued before Run starts.
+	d1.calls, d2.calls = 0, 0
+	for i := 1; i <= 3; i++ {
+		ti := t0.Add(time.Duration(i) * 10 * time.Millisecond)
+		for _, ch := range []ChannelID{a, b, c} {
+			p.Put(Sample{Channel: ch, Value: float64(i), Time: ti})
+		}
+	}
+	ctx, cancel := context.WithCancel(context.Background())
+	cancel()
+	p.Run(ctx)
+	if d1.calls != 3 || d2.calls != 3 {
+		t.Fatalf("through Run: calls d1 %d d2 %d, want 3 each", d1.calls, d2.calls)
+	}
+	if v := p.Store().Get(abc); v.Value != 9 {
+		t.Fatalf("abc = %v, want 9", v.Value)
+	}
+}

@@ -4,6 +4,8 @@ import (
 	"bufio"
 	"context"
 	"io"
+	"math"
+	"path/filepath"
 	"log/slog"
 	"os"
 	"strconv"
@@ -13,6 +15,7 @@ import (
 
 	"github.com/plenum-engine/plenum/cmd/plenum/config"
 	"github.com/plenum-engine/plenum/pipeline"
+	"github.com/plenum-engine/plenum/pipeline/record"
 )
 
 // BenchmarkIngestDemoPhysics pushes samples of the demo's channels through
@@ -199,4 +202,111 @@ func BenchmarkWarningLatency(b *testing.B) {
 	}
 	b.ReportMetric(float64(total.Microseconds())/float64(b.N), "latency_us")
 	b.ReportMetric(float64(worst.Microseconds()), "worst_latency_us")
+}
+
+// writeSweepRun records a synthetic run of the demo's serial channels: rate
+// input samples per second in all (frames of every channel at one time) for
+// dur, with the engine sweeping from 2000 to 6500 rpm every 10 s at wide-open
+// throttle, so that every derivation and detector has work.
+func writeSweepRun(tb testing.TB, dir string, dur time.Duration, rate int) (string, int) {
+	tb.Helper()
+	cfg, err := config.Parse("demo.yaml", demoConfig)
+	if err != nil {
+		tb.Fatal(err)
+	}
+	reg := pipeline.NewRegistry()
+	var ids []pipeline.ChannelID
+	var names []string
+	for _, in := range cfg.Serial[0].Inputs {
+		ch, _ := pipeline.Standard(in.Channel)
+		ch.Source = "bench_mcu"
+		id, err := reg.Register(ch)
+		if err != nil {
+			tb.Fatal(err)
+		}
+		ids, names = append(ids, id), append(names, in.Channel)
+	}
+	rec, err := record.Open(record.Config{Dir: dir, Run: "sweep", Vehicle: cfg.Vehicle}, reg)
+	if err != nil {
+		tb.Fatal(err)
+	}
+	frames := int(dur.Seconds() * float64(rate) / float64(len(ids)))
+	step := dur / time.Duration(frames)
+	t0 := time.Unix(1_800_000_000, 0)
+	for f := 0; f < frames; f++ {
+		t := t0.Add(time.Duration(f) * step)
+		x := math.Mod(t.Sub(t0).Seconds(), 10) / 10 // position in the sweep
+		rpm := 2000 + 4500*x
+		mapPa := 100000 + 110000*math.Min(1, 2*x)
+		for i, id := range ids {
+			var v float64
+			switch names[i] {
+			case "engine_speed":
+				v = rpm
+			case "throttle_position":
+				v = 1
+			case "manifold_pressure":
+				v = mapPa
+			case "compressor_outlet_pressure":
+				v = mapPa + 8000
+			case "baro_pressure":
+				v = 100800
+			case "intake_air_temp":
+				v = 35 + 10*x
+			case "charge_temp_pre_cooler":
+				v = 60 + 60*x
+			case "wideband_voltage":
+				v = 1.9 + 0.2*math.Sin(float64(f)/7)
+			case "dyno_torque":
+				v = 250 + 150*math.Sin(math.Pi*x)
+			case "coolant_temp", "oil_temp":
+				v = 90
+			case "oil_pressure":
+				v = 400000
+			case "exhaust_temp":
+				v = 600 + 300*x
+			case "ambient_temp":
+				v = 20
+			case "ambient_humidity":
+				v = 0.5
+			default:
+				c := reg.Channel(id)
+				v = c.Min + (c.Max-c.Min)*0.4
+			}
+			rec.Write(pipeline.Sample{Channel: id, Time: t, Value: v})
+		}
+	}
+	if err := rec.Close(); err != nil {
+		tb.Fatal(err)
+	}
+	return rec.Dir(), frames * len(ids)
+}
+
+// BenchmarkReplayTenMinutes2kHz replays a 10-minute run of 2000 input
+// samples per second (1.2 M samples of the demo's 15 serial channels) with
+// the demo's configuration: reading and decoding the line protocol, every
+// derivation and detector, and encoding the output to a file. Target: under
+// 2 s per run.
+func BenchmarkReplayTenMinutes2kHz(b *testing.B) {
+	dir := b.TempDir()
+	runDir, n := writeSweepRun(b, dir, 10*time.Minute, 2000)
+	cfgPath := filepath.Join(dir, "demo.yaml")
+	if err := os.WriteFile(cfgPath, demoConfig, 0o644); err != nil {
+		b.Fatal(err)
+	}
+	out := filepath.Join(dir, "out.lp")
+	b.ResetTimer()
+	for i := 0; i < b.N; i++ {
+		var so, se strings.Builder
+		if code := run([]string{"replay", "-config", cfgPath, "-in", runDir, "-out", out}, &so, &se); code != 0 {
+			b.Fatalf("replay: %d %s", code, se.String())
+		}
+	}
+	b.StopTimer()
+	per := b.Elapsed().Seconds() / float64(b.N)
+	b.ReportMetric(per, "s/run")
+	b.ReportMetric(float64(n)/per, "input_samples/s")
+	if st, err := os.Stat(out); err == nil {
+		b.ReportMetric(float64(st.Size())/(1<<20), "output_MiB")
+	}
 }

@@ -161,12 +161,13 @@ func addLine(p *plot.Plot, label string, xy [][2]float64, scale float64, col col
 }
 
 // readAll reads every sample of a recording, derived ones included.
-func readAll(files []string) ([]recorded, error) { return readSamples(files, true) }
+func readAll(files []string) (recording, error) { return readSamples(files, true) }
 
 // align pairs each power, torque, boost and lambda sample with the latest
 // engine speed, keeping only samples under load (throttle over 90 %) for the
 // engine-speed panels, and keeps the extra channels against time.
-func align(label string, in []recorded, extra []string) series {
+func align(label string, rec recording, extra []string) series {
+	in := rec.samples
 	s := series{label: label, vals: map[string][][2]float64{}}
 	want := map[string]bool{}
 	for _, ch := range extra {
@@ -175,23 +176,24 @@ func align(label string, in []recorded, extra []string) series {
 	rpm, thr := math.NaN(), math.NaN()
 	var t0 float64
 	for i, r := range in {
-		ts := float64(r.t.UnixNano()) / 1e9
+		ts := float64(r.ns) / 1e9
 		if i == 0 {
 			t0 = ts
 		}
-		switch r.channel {
+		name := rec.channel(r)
+		switch name {
 		case "engine_speed":
 			rpm = r.value
 		case "throttle_position":
 			thr = r.value
 		}
-		if want[r.channel] {
-			s.vals["t:"+r.channel] = append(s.vals["t:"+r.channel], [2]float64{ts - t0, r.value})
+		if want[name] {
+			s.vals["t:"+name] = append(s.vals["t:"+name], [2]float64{ts - t0, r.value})
 		}
-		switch r.channel {
+		switch name {
 		case "corrected_power", "dyno_torque", "boost_pressure", "lambda":
 			if !math.IsNaN(rpm) && (math.IsNaN(thr) || thr > 0.9) && r.quality.Usable() {
-				s.vals[r.channel] = append(s.vals[r.channel], [2]float64{rpm, r.value})
+				s.vals[name] = append(s.vals[name], [2]float64{rpm, r.value})
 			}
 		}
 	}

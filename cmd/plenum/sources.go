@@ -159,6 +159,7 @@ type simDevice struct {
 	dir    string
 	eng    *sim.Shared
 	sens   []sim.Sensor
+	period time.Duration
 	scale  float64
 	log    *slog.Logger
 }
@@ -186,7 +187,11 @@ func startSimDevice(sc *config.Simulator, eng *sim.Shared, log *slog.Logger) (*s
 	if scale <= 0 {
 		scale = 1
 	}
-	return &simDevice{path: path, master: master, dir: dir, eng: eng, sens: sim.DemoSensors(), scale: scale, log: log}, nil
+	period := 10 * time.Millisecond
+	if sc != nil && sc.FrameRateHz > 0 {
+		period = time.Duration(float64(time.Second) / sc.FrameRateHz)
+	}
+	return &simDevice{path: path, master: master, dir: dir, eng: eng, sens: sim.DemoSensors(), scale: scale, log: log, period: period}, nil
 }
 
 func (d *simDevice) Name() string { return "simulator" }
@@ -196,10 +201,11 @@ func (d *simDevice) close() {
 	os.RemoveAll(d.dir)
 }
 
-// Run writes a frame every 10 ms of real time (100 Hz), each advancing the
-// model by 10 ms × the time scale; the device counter runs in real time.
+// Run writes a frame every period of real time (10 ms: 100 Hz by default),
+// each advancing the model by the period × the time scale; the device
+// counter runs in real time.
 func (d *simDevice) Run(ctx context.Context) error {
-	const period = 10 * time.Millisecond
+	period := d.period
 	tick := time.NewTicker(period)
 	defer tick.Stop()
 	readings := make([]serial.Reading, len(d.sens))

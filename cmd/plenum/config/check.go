@@ -244,6 +244,9 @@ func (cfg *Config) check(file string, root *yaml.Node) Errors {
 	if cfg.Sim != nil && (cfg.Sim.TimeScale < 0 || cfg.Sim.TimeScale > 100) {
 		c.fail("must be between 0 and 100", "simulator", "time_scale")
 	}
+	if cfg.Sim != nil && (cfg.Sim.FrameRateHz < 0 || cfg.Sim.FrameRateHz > 1000) {
+		c.fail("must be between 0 (default 100) and 1000", "simulator", "frame_rate_hz")
+	}
 	for i, cn := range cfg.CAN {
 		if cn.Name == "" || names[cn.Name] {
 			c.fail("every source needs a unique name", "can", i, "name")

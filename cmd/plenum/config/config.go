@@ -234,6 +234,9 @@ type HTTP struct {
 type Simulator struct {
 	TimeScale float64 `yaml:"time_scale"`
 	Seed      uint64  `yaml:"seed"`
+	// FrameRateHz is how many frames a second the simulated microcontroller
+	// writes (default 100).
+	FrameRateHz float64 `yaml:"frame_rate_hz"`
 }
 
 // Duration is a time.Duration written as "250ms", "2s".
