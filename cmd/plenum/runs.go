@@ -219,7 +219,7 @@ func (r *runs) Run(ctx context.Context) {
 // watchLoss says loudly when the recorder cannot keep up: a
 // recorder_behind warning (raised at the first loss, cleared after 5 s
 // without any) and an error log once per burst. The counts stay in
-// plenum_subscriber_dropped_total{subscriber="recorder"}.
+// plenum_consumer_dropped_samples_total{consumer="recorder"}.
 func (r *runs) watchLoss(now time.Time) {
 	r.mu.Lock()
 	lost := r.sub.Dropped() + r.lostClosed

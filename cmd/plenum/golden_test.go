@@ -1,0 +1,92 @@
+package main
+
+import (
+	"bytes"
+	"encoding/json"
+	"flag"
+	"os"
+	"path/filepath"
+	"testing"
+
+	"github.com/plenum-engine/plenum/pipeline/record"
+)
+
+var update = flag.Bool("update", false, "rewrite golden files")
+
+// goldenRun is a whole 60 s demo cycle recorded by the daemon (`plenum run`
+// with the demo configuration and simulator.frame_rate_hz: 20), gzipped;
+// only the record paths in its config.yaml were changed.
+const goldenRun = "../../testdata/golden-run"
+
+// TestGoldenRun replays the recorded run with its own configuration. The
+// replayed summary must equal the expected one byte for byte, and agree
+// with the summary the live daemon wrote when it recorded the run: the same
+// inputs through the same derivations give the same peaks, lag events and
+// warnings.
+func TestGoldenRun(t *testing.T) {
+	dir := t.TempDir()
+	sumPath := filepath.Join(dir, "summary.json")
+	var so, se bytes.Buffer
+	if code := run([]string{"replay", "-in", goldenRun, "-out", filepath.Join(dir, "out.lp"), "-summary", sumPath}, &so, &se); code != 0 {
+		t.Fatalf("replay: %d %s", code, se.String())
+	}
+	got, err := os.ReadFile(sumPath)
+	if err != nil {
+		t.Fatal(err)
+	}
+	want := filepath.Join(goldenRun, "expected-replay-summary.json")
+	if *update {
+		if err := os.WriteFile(want, got, 0o644); err != nil {
+			t.Fatal(err)
+		}
+	}
+	exp, err := os.ReadFile(want)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if !bytes.Equal(got, exp) {
+		t.Errorf("replayed summary differs from %s (run with -update after a deliberate change):\n%s", want, got)
+	}
+
+	var rep, live record.Summary
+	if err := json.Unmarshal(got, &rep); err != nil {
+		t.Fatal(err)
+	}
+	b, err := os.ReadFile(filepath.Join(goldenRun, "summary.json"))
+	if err != nil {
+		t.Fatal(err)
+	}
+	if err := json.Unmarshal(b, &live); err != nil {
+		t.Fatal(err)
+	}
+	eq := func(name string, a, b *float64) {
+		t.Helper()
+		if a == nil || b == nil || *a != *b {
+			t.Errorf("%s: replay %v, live %v", name, deref(a), deref(b))
+		}
+	}
+	eq("peak corrected power", rep.PeakCorrectedPowerW, live.PeakCorrectedPowerW)
+	eq("engine speed at peak power", rep.PeakPowerRPM, live.PeakPowerRPM)
+	eq("peak torque", rep.PeakTorqueNm, live.PeakTorqueNm)
+	eq("engine speed at peak torque", rep.PeakTorqueRPM, live.PeakTorqueRPM)
+	eq("peak boost", rep.PeakBoostPa, live.PeakBoostPa)
+	eq("min lambda under load", rep.MinLambdaUnderLoad, live.MinLambdaUnderLoad)
+	eq("max lambda under load", rep.MaxLambdaUnderLoad, live.MaxLambdaUnderLoad)
+	eq("max IAT", rep.MaxIntakeAirC, live.MaxIntakeAirC)
+	if rep.LagEvents != live.LagEvents || rep.WarningsRaised != live.WarningsRaised || !rep.Start.Equal(live.Start) || !rep.End.Equal(live.End) {
+		t.Errorf("replay: %d lag events, %d warnings, %v–%v; live: %d, %d, %v–%v", rep.LagEvents, rep.WarningsRaised, rep.Start, rep.End,
+			live.LagEvents, live.WarningsRaised, live.Start, live.End)
+	}
+	// The demo cycle's known content: two tip-ins, the lean moment, the
+	// cold rev (see TestDemoDetectors), boost near the wastegate's 110 kPa.
+	if rep.LagEvents != 2 || rep.WarningsRaised < 3 || *rep.PeakBoostPa < 100000 || *rep.PeakBoostPa > 120000 {
+		t.Errorf("golden run content: %s", got)
+	}
+}
+
+func deref(p *float64) any {
+	if p == nil {
+		return nil
+	}
+	return *p
+}
