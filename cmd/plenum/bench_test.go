@@ -24,6 +24,13 @@ import (
 // charge air) and detectors (turbo lag, warnings, turbo guard), and a
 // recorder-sized subscription.
 func BenchmarkIngestDemoPhysics(b *testing.B) {
+	b.Run("sample_by_sample", func(b *testing.B) { benchIngestDemo(b, false) })
+	b.Run("frames_of_15", func(b *testing.B) { benchIngestDemo(b, true) })
+}
+
+// benchIngestDemo feeds the demo's channels one sample at a time, each at
+// its own time (the worst case), or as frames of one serial line.
+func benchIngestDemo(b *testing.B, frames bool) {
 	cfg, err := config.Parse("demo.yaml", demoConfig)
 	if err != nil {
 		b.Fatal(err)
@@ -59,11 +66,23 @@ func BenchmarkIngestDemoPhysics(b *testing.B) {
 	}
 	t0 := time.Unix(0, 0)
 	buf := make([]pipeline.Sample, 0, 1<<16)
+	frame := make([]pipeline.Sample, 0, len(ids))
 	b.ReportAllocs()
 	b.ResetTimer()
 	for i := 0; i < b.N; i++ {
 		k := i % len(ids)
-		p.Process(pipeline.Sample{Channel: ids[k], Value: vals[k], Time: t0.Add(time.Duration(i) * time.Microsecond)})
+		s := pipeline.Sample{Channel: ids[k], Value: vals[k], Time: t0.Add(time.Duration(i) * time.Microsecond)}
+		if !frames {
+			p.Process(s)
+		} else {
+			// The readings of one serial line share its time.
+			s.Time = t0.Add(time.Duration(i/len(ids)) * time.Millisecond)
+			frame = append(frame, s)
+			if len(frame) == len(ids) || i == b.N-1 {
+				p.ProcessFrame(frame)
+				frame = frame[:0]
+			}
+		}
 		if i&0x3fff == 0 {
 			buf, _ = sub.Drain(buf[:0], nil)
 		}
