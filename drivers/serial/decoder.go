@@ -3,6 +3,7 @@ package serial
 import (
 	"errors"
 	"fmt"
+	"math"
 	"sync/atomic"
 	"time"
 
@@ -105,7 +106,8 @@ type Decoder struct {
 	sep      byte
 	inputs   []Input
 	byKey    map[string]int
-	byCol    []int // column index (0-based) → input index, -1 if unmapped
+	byCol    []int          // column index (0-based) → input index, -1 if unmapped
+	tables   [][]calibrated // per input: every count calibrated in advance, or nil
 	sink     Sink
 	c        Counters
 	frame    Frame
@@ -129,6 +131,7 @@ func NewDecoder(format Format, sep byte, inputs []Input, sink Sink, c Counters) 
 		if err := in.Sensor.Validate(); err != nil {
 			return nil, fmt.Errorf("input %d (%s%d): %w", i, in.Key, in.Column, err)
 		}
+		d.tables = append(d.tables, countTable(in))
 		switch format {
 		case Framed:
 			if in.Key == "" || len(in.Key) > MaxKeyLen || !validKey([]byte(in.Key)) {
@@ -179,7 +182,7 @@ func (d *Decoder) Line(line []byte, now time.Time) error {
 		d.c.Frames.Add(1)
 		for i := 0; i < n && i < len(d.byCol); i++ {
 			if j := d.byCol[i]; j >= 0 {
-				d.emit(&d.inputs[j], d.nums[i], !d.inputs[j].Counts, now)
+				d.emit(j, d.nums[i], !d.inputs[j].Counts, now)
 			}
 		}
 		return nil
@@ -231,7 +234,7 @@ func (d *Decoder) Line(line []byte, now time.Time) error {
 			}
 			continue
 		}
-		d.emit(&d.inputs[j], r.Value, r.MilliVolts, t)
+		d.emit(j, r.Value, r.MilliVolts, t)
 	}
 	return unknown
 }
@@ -283,11 +286,46 @@ func (d *Decoder) stamp(ms uint32, now time.Time) time.Time {
 	return now
 }
 
-func (d *Decoder) emit(in *Input, raw float64, mv bool, t time.Time) {
+// calibrated is a cached calibration result.
+type calibrated struct {
+	v float64
+	q pipeline.Quality
+}
+
+// maxTableCounts bounds the converters whose every count is calibrated in
+// advance: 12 bits, 64 KiB per input.
+const maxTableCounts = 4095
+
+// countTable calibrates every count of in's converter once, for curves that
+// cost more than a table look-up (thermistors, tables); nil otherwise. A
+// look-up gives exactly what Apply computes for that count.
+func countTable(in Input) []calibrated {
+	if _, lin := in.Sensor.Curve.(calib.Linear); lin || in.Sensor.ADCMax > maxTableCounts || in.Sensor.ADCMax != math.Trunc(in.Sensor.ADCMax) {
+		return nil
+	}
+	tab := make([]calibrated, int(in.Sensor.ADCMax)+1)
+	for n := range tab {
+		v, q := in.Sensor.Apply(in.Sensor.CountsToMV(float64(n)))
+		tab[n] = calibrated{v, q}
+	}
+	return tab
+}
+
+func (d *Decoder) emit(j int, raw float64, mv bool, t time.Time) {
+	in := &d.inputs[j]
 	if !mv {
+		if tab := d.tables[j]; tab != nil && raw >= 0 && raw < float64(len(tab)) && raw == math.Trunc(raw) {
+			c := tab[int(raw)]
+			d.put(in, c.v, c.q, t)
+			return
+		}
 		raw = in.Sensor.CountsToMV(raw)
 	}
 	v, q := in.Sensor.Apply(raw)
+	d.put(in, v, q, t)
+}
+
+func (d *Decoder) put(in *Input, v float64, q pipeline.Quality, t time.Time) {
 	switch q {
 	case pipeline.OutOfRange:
 		d.c.OutOfRange.Add(1)

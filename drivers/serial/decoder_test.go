@@ -262,3 +262,42 @@ func TestDelimitedColumnsInCounts(t *testing.T) {
 		t.Fatalf("samples %+v", c.s)
 	}
 }
+
+// The counts table of a thermistor input gives, for every count of the
+// converter, bit for bit what calibrating that count directly gives,
+// faults and out-of-range flags included; a count that is not a whole
+// number still goes through the curve.
+func TestCountTableIsExact(t *testing.T) {
+	s := ntcSensor()
+	in := Input{Key: "a1", Channel: 1, Sensor: s}
+	tab := countTable(in)
+	if len(tab) != 1024 {
+		t.Fatalf("table of %d entries, want 1024", len(tab))
+	}
+	if countTable(Input{Key: "a0", Sensor: mapSensor()}) != nil {
+		t.Error("a linear input got a table")
+	}
+	var c collect
+	d, err := NewDecoder(Framed, 0, []Input{in}, &c, NewCounters(pipeline.NewHealthSet().Source("x")))
+	if err != nil {
+		t.Fatal(err)
+	}
+	now := time.Unix(100, 0)
+	for n := 0; n <= 1023; n++ {
+		d.emit(0, float64(n), false, now)
+	}
+	d.emit(0, 511.5, false, now)
+	if len(c.s) != 1025 {
+		t.Fatalf("%d samples", len(c.s))
+	}
+	for n, got := range c.s {
+		counts := float64(n)
+		if n == 1024 {
+			counts = 511.5
+		}
+		v, q := s.Apply(s.CountsToMV(counts))
+		if got.Quality != q || math.Float64bits(got.Value) != math.Float64bits(v) && !(math.IsNaN(v) && math.IsNaN(got.Value)) {
+			t.Fatalf("count %g: %v %v, direct %v %v", counts, got.Value, got.Quality, v, q)
+		}
+	}
+}
