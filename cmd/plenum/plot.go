@@ -24,7 +24,11 @@ import (
 // engine speed or on time.
 type series struct {
 	label string
-	vals  map[string][][2]float64 // channel → (x, y) pairs
+	vals  map[string][][2]float64 // "t:<channel>" → (time, y) pairs
+	// pulls holds, per engine-speed panel channel, one list of (rpm, y)
+	// pairs per wide-open-throttle pull, so that two pulls of one run are
+	// two lines rather than one zigzag between them.
+	pulls map[string][][][2]float64
 }
 
 // runColours are the line colours of overlaid runs (our own choice).
@@ -88,8 +92,15 @@ func cmdPlot(args []string, stdout io.Writer) error {
 		p.Y.Label.Text = pn.y
 		p.Add(plotter.NewGrid())
 		for i, r := range runs {
-			if err := addLine(p, r.label, r.vals[pn.chs[0]], pn.scale, runColours[i%len(runColours)]); err != nil {
-				return err
+			ps := r.pulls[pn.chs[0]]
+			for k, v := range ps {
+				label := r.label
+				if len(ps) > 1 {
+					label = fmt.Sprintf("%s, pull %d", r.label, k+1)
+				}
+				if err := addLine(p, label, v, pn.scale, runColours[i%len(runColours)], pullDashes[k%len(pullDashes)]); err != nil {
+					return err
+				}
 			}
 		}
 		p.Legend.Top, p.Legend.Left = true, true
@@ -102,7 +113,7 @@ func cmdPlot(args []string, stdout io.Writer) error {
 		p.Y.Label.Text = ch + unitSuffix(ch)
 		p.Add(plotter.NewGrid())
 		for i, r := range runs {
-			if err := addLine(p, r.label, r.vals["t:"+ch], 1, runColours[i%len(runColours)]); err != nil {
+			if err := addLine(p, r.label, r.vals["t:"+ch], 1, runColours[i%len(runColours)], nil); err != nil {
 				return err
 			}
 		}
@@ -141,7 +152,10 @@ func cmdPlot(args []string, stdout io.Writer) error {
 	return nil
 }
 
-func addLine(p *plot.Plot, label string, xy [][2]float64, scale float64, col color.RGBA) error {
+// pullDashes tell the pulls of one run apart: solid, dashed, dotted, dash-dot.
+var pullDashes = [][]vg.Length{nil, {vg.Points(6), vg.Points(3)}, {vg.Points(1.5), vg.Points(2)}, {vg.Points(6), vg.Points(2), vg.Points(1.5), vg.Points(2)}}
+
+func addLine(p *plot.Plot, label string, xy [][2]float64, scale float64, col color.RGBA, dashes []vg.Length) error {
 	if len(xy) == 0 {
 		return nil
 	}
@@ -155,6 +169,7 @@ func addLine(p *plot.Plot, label string, xy [][2]float64, scale float64, col col
 	}
 	l.Color = col
 	l.Width = vg.Points(1.2)
+	l.Dashes = dashes
 	p.Add(l)
 	p.Legend.Add(label, l)
 	return nil
@@ -168,7 +183,8 @@ func readAll(files []string) (recording, error) { return readSamples(files, true
 // engine-speed panels, and keeps the extra channels against time.
 func align(label string, rec recording, extra []string) series {
 	in := rec.samples
-	s := series{label: label, vals: map[string][][2]float64{}}
+	s := series{label: label, vals: map[string][][2]float64{}, pulls: map[string][][][2]float64{}}
+	pull, open := -1, false // the current pull; whether the throttle is open
 	want := map[string]bool{}
 	for _, ch := range extra {
 		want[ch] = true
@@ -186,6 +202,12 @@ func align(label string, rec recording, extra []string) series {
 			rpm = r.value
 		case "throttle_position":
 			thr = r.value
+			if w := thr > 0.9; w && !open {
+				pull++
+				open = true
+			} else if !w {
+				open = false
+			}
 		}
 		if want[name] {
 			s.vals["t:"+name] = append(s.vals["t:"+name], [2]float64{ts - t0, r.value})
@@ -193,15 +215,25 @@ func align(label string, rec recording, extra []string) series {
 		switch name {
 		case "corrected_power", "dyno_torque", "boost_pressure", "lambda":
 			if !math.IsNaN(rpm) && (math.IsNaN(thr) || thr > 0.9) && r.quality.Usable() {
-				s.vals[name] = append(s.vals[name], [2]float64{rpm, r.value})
+				k := max(pull, 0) // without a throttle channel: one pull
+				for len(s.pulls[name]) <= k {
+					s.pulls[name] = append(s.pulls[name], nil)
+				}
+				s.pulls[name][k] = append(s.pulls[name][k], [2]float64{rpm, r.value})
 			}
 		}
 	}
-	// Against engine speed, a sweep reads best sorted by speed.
-	for k, v := range s.vals {
-		if !strings.HasPrefix(k, "t:") {
-			sort.SliceStable(v, func(i, j int) bool { return v[i][0] < v[j][0] })
+	// Against engine speed, a pull reads best sorted by speed; pulls too
+	// short to show a curve (under 20 points) are left out.
+	for name, ps := range s.pulls {
+		kept := ps[:0]
+		for _, v := range ps {
+			if len(v) >= 20 {
+				sort.SliceStable(v, func(i, j int) bool { return v[i][0] < v[j][0] })
+				kept = append(kept, v)
+			}
 		}
+		s.pulls[name] = kept
 	}
 	return s
 }
@@ -226,7 +258,9 @@ func unitSuffix(ch string) string {
 		return " (" + strings.ReplaceAll(string(c.Unit), "_", " ") + ")"
 	}
 	derived := map[string]string{"air_mass_flow": "grams per second", "boost_pressure": "pascals", "lambda": "ratio",
-		"fuel_mass_flow": "grams per second", "corrected_power": "watts", "brake_power": "watts"}
+		"fuel_mass_flow": "grams per second", "corrected_power": "watts", "brake_power": "watts",
+		"cooldown_idle_remaining": "seconds", "turbo_thermal_state": "ratio", "compressor_pressure_ratio": "ratio",
+		"intercooler_effectiveness": "ratio", "compressor_efficiency": "ratio", "volumetric_efficiency": "ratio"}
 	if u, ok := derived[ch]; ok {
 		return " (" + u + ")"
 	}
