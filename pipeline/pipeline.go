@@ -3,6 +3,7 @@ package pipeline
 import (
 	"context"
 	"math"
+	"runtime"
 	"sync/atomic"
 	"time"
 )
@@ -28,6 +29,7 @@ type Pipeline struct {
 	derived   atomic.Uint64
 	rejected  atomic.Uint64
 	inDropped atomic.Uint64
+	emitting  atomic.Int64 // Emits in progress
 }
 
 // Options tune a pipeline.
@@ -105,8 +107,16 @@ func (p *Pipeline) Put(s Sample) bool {
 // the event is fanned out directly, so that what happens during a shutdown
 // (a run closing, say) still reaches the recorder and the publishers.
 func (p *Pipeline) Emit(e Event) {
+	p.emitting.Add(1)
+	defer p.emitting.Add(-1)
 	select {
-	case p.evIn <- e:
+	case <-p.done:
+		p.fan.event(e)
+		return
+	default:
+	}
+	select {
+	case p.evIn <- e: // Run's loop, or its last sweep, takes it
 	case <-p.done:
 		p.fan.event(e)
 	}
@@ -133,6 +143,11 @@ func (p *Pipeline) Counters() Counters {
 func (p *Pipeline) Run(ctx context.Context) error {
 	defer func() {
 		close(p.done)
+		// An Emit that saw the pipeline running may still be putting its
+		// event in the queue: wait for it, then sweep the queue once more.
+		for p.emitting.Load() > 0 {
+			runtime.Gosched()
+		}
 		for { // events queued while the loop was finishing
 			select {
 			case e := <-p.evIn:

@@ -3,6 +3,7 @@ package pipeline
 import (
 	"context"
 	"math"
+	"strconv"
 	"strings"
 	"testing"
 	"time"
@@ -258,5 +259,32 @@ func TestFrameEvaluatesOnce(t *testing.T) {
 	}
 	if v := p.Store().Get(abc); v.Value != 9 {
 		t.Fatalf("abc = %v, want 9", v.Value)
+	}
+}
+
+// Events emitted while Run is returning, or after, are never lost.
+func TestEmitAroundStopLosesNothing(t *testing.T) {
+	for round := 0; round < 200; round++ {
+		reg := newReg(t, "a")
+		p := New(reg, nil, Options{})
+		sub := p.SubscribeEvents("ev")
+		ctx, cancel := context.WithCancel(context.Background())
+		done := make(chan struct{})
+		go func() { p.Run(ctx); close(done) }()
+		const n = 50
+		emitted := make(chan struct{})
+		go func() {
+			for i := 0; i < n; i++ {
+				p.Emit(Event{Kind: "k", Name: strconv.Itoa(i)})
+			}
+			close(emitted)
+		}()
+		cancel()
+		<-done
+		<-emitted
+		_, evs := sub.Drain(nil, nil)
+		if len(evs) != n {
+			t.Fatalf("round %d: %d of %d events arrived", round, len(evs), n)
+		}
 	}
 }
