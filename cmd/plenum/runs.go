@@ -1,6 +1,7 @@
 package main
 
 import (
+	"bytes"
 	"context"
 	"crypto/subtle"
 	"encoding/json"
@@ -399,19 +400,40 @@ type mqttReply struct {
 	Summary *record.Summary `json:"summary,omitempty"`
 }
 
+// parseCommand reads a command payload (empty: no keys) and checks its
+// conditions.
+func parseCommand(payload []byte) (mqttCommand, error) {
+	var c mqttCommand
+	if len(payload) == 0 {
+		return c, nil
+	}
+	dec := json.NewDecoder(bytes.NewReader(payload))
+	dec.DisallowUnknownFields()
+	if err := dec.Decode(&c); err != nil {
+		return mqttCommand{}, fmt.Errorf("payload is not a JSON command: %w", err)
+	}
+	if dec.More() {
+		return mqttCommand{}, errors.New("payload holds more than one JSON value")
+	}
+	if c.Conditions != nil {
+		if err := checkConditions(*c.Conditions); err != nil {
+			return mqttCommand{}, fmt.Errorf("conditions: %w", err)
+		}
+	}
+	return c, nil
+}
+
 // command serves the MQTT command topics run/start and run/stop.
 func (r *runs) command(suffix string, payload []byte) []byte {
-	var c mqttCommand
 	rep := mqttReply{}
 	reply := func() []byte {
-		b, _ := json.Marshal(rep)
+		b, _ := json.Marshal(rep) // plain strings and numbers: cannot fail
 		return b
 	}
-	if len(payload) > 0 {
-		if err := json.Unmarshal(payload, &c); err != nil {
-			rep.Error = fmt.Sprintf("cmd/%s: payload is not a JSON command: %v", suffix, err)
-			return reply()
-		}
+	c, err := parseCommand(payload)
+	if err != nil {
+		rep.Error = fmt.Sprintf("cmd/%s: %v", suffix, err)
+		return reply()
 	}
 	rep.Request = c.Request
 	if tok := r.cfg.Record.ControlToken; tok != "" && subtle.ConstantTimeCompare([]byte(c.Token), []byte(tok)) != 1 {
@@ -423,10 +445,6 @@ func (r *runs) command(suffix string, payload []byte) []byte {
 	case "run/start":
 		sr := startRequest{Label: c.Label, Notes: c.Notes}
 		if c.Conditions != nil {
-			if err := checkConditions(*c.Conditions); err != nil {
-				rep.Error = "conditions: " + err.Error()
-				return reply()
-			}
 			sr.Entered = *c.Conditions
 			sr.Entered.Source = ""
 		}

@@ -1,0 +1,92 @@
+package main
+
+import (
+	"encoding/json"
+	"os"
+	"path/filepath"
+	"strings"
+	"testing"
+)
+
+func TestParseCommand(t *testing.T) {
+	cases := []struct {
+		payload, wantErr string
+	}{
+		{``, ""},
+		{`{"request":"r1","label":"pull 2","conditions":{"pressure_pa":99800,"temperature_c":17,"relative_humidity":0.5}}`, ""},
+		{`{"lable":"typo"}`, `unknown field "lable"`},
+		{`{"conditions":{"relative_humidity":62}}`, "relative_humidity: 62 is outside 0–1"},
+		{`{"conditions":{"pressure_pa":9980}}`, "pressure_pa: 9980 is outside"},
+		{`{"label":"a"} {"label":"b"}`, "more than one JSON value"},
+		{`start please`, "not a JSON command"},
+	}
+	for _, c := range cases {
+		_, err := parseCommand([]byte(c.payload))
+		if (c.wantErr == "") != (err == nil) || (err != nil && !strings.Contains(err.Error(), c.wantErr)) {
+			t.Errorf("parseCommand(%q) = %v, want %q", c.payload, err, c.wantErr)
+		}
+	}
+}
+
+// FuzzParseCommand: any payload gives a command or an error, never a panic;
+// an accepted command has its conditions in range and reads back the same.
+func FuzzParseCommand(f *testing.F) {
+	f.Add([]byte(`{"request":"r1","token":"t","label":"pull","notes":"n","conditions":{"pressure_pa":101325,"temperature_c":20,"relative_humidity":0.4}}`))
+	f.Add([]byte(`{"conditions":{"temperature_c":1e308}}`))
+	f.Add([]byte(`{}`))
+	f.Add([]byte(`[1,2]`))
+	f.Fuzz(func(t *testing.T, payload []byte) {
+		c, err := parseCommand(payload)
+		if err != nil {
+			return
+		}
+		if c.Conditions != nil {
+			if err := checkConditions(*c.Conditions); err != nil {
+				t.Fatalf("accepted out-of-range conditions: %v", err)
+			}
+		}
+		b, err := json.Marshal(c)
+		if err != nil {
+			t.Fatal(err)
+		}
+		c2, err := parseCommand(b)
+		if err != nil || c2.Request != c.Request || c2.Label != c.Label || c2.Notes != c.Notes || c2.Token != c.Token {
+			t.Fatalf("round trip: %+v → %s → %+v (%v)", c, b, c2, err)
+		}
+	})
+}
+
+// FuzzReadSamples: any recording gives samples in time order with valid
+// keys, or an error naming the file; never a panic.
+func FuzzReadSamples(f *testing.F) {
+	good, err := os.ReadFile("testdata/short-run.lp")
+	if err != nil {
+		f.Fatal(err)
+	}
+	f.Add(good)
+	f.Add([]byte("plenum,channel=engine_speed,source=m value=3000,quality=\"ok\" 5\nplenum,channel=engine_speed,source=m value=2000 4\n"))
+	f.Add([]byte("plenum_event,kind=turbo_lag,run=r t90_seconds=0.8 1\n"))
+	f.Add([]byte("plenum,channel=x value=1i 1\nplenum,channel=\\ x\\,y value=\"s\" 2\n"))
+	dir := f.TempDir()
+	f.Fuzz(func(t *testing.T, data []byte) {
+		path := filepath.Join(dir, "in.lp")
+		if err := os.WriteFile(path, data, 0o644); err != nil {
+			t.Fatal(err)
+		}
+		rec, err := readSamples([]string{path}, true)
+		if err != nil {
+			if !strings.Contains(err.Error(), path) {
+				t.Fatalf("error does not name the file: %v", err)
+			}
+			return
+		}
+		for i, s := range rec.samples {
+			if int(s.key) >= len(rec.keys) {
+				t.Fatalf("sample %d has key %d of %d", i, s.key, len(rec.keys))
+			}
+			if i > 0 && s.ns < rec.samples[i-1].ns {
+				t.Fatalf("samples out of time order at %d", i)
+			}
+		}
+	})
+}
