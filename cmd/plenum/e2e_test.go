@@ -25,6 +25,7 @@ import (
 	"github.com/prometheus/common/model"
 
 	"github.com/plenum-engine/plenum/cmd/plenum/config"
+	"github.com/plenum-engine/plenum/pipeline/interop"
 )
 
 // syncBuffer is a goroutine-safe writer for the daemon's stdout.
@@ -229,33 +230,11 @@ func spans(v []float64, d float64) bool {
 	return hi-lo >= d
 }
 
-func integration(t *testing.T, tools ...string) {
-	t.Helper()
-	if os.Getenv("PLENUM_INTEGRATION") != "1" {
-		t.Skip("interop test: set PLENUM_INTEGRATION=1 to run it against Debian's tools")
-	}
-	for _, tool := range tools {
-		if _, err := exec.LookPath(tool); err != nil {
-			t.Fatalf("PLENUM_INTEGRATION=1 but %s is not installed: %v", tool, err)
-		}
-	}
-}
-
-func freePort(t *testing.T) int {
-	t.Helper()
-	ln, err := net.Listen("tcp", "127.0.0.1:0")
-	if err != nil {
-		t.Fatal(err)
-	}
-	defer ln.Close()
-	return ln.Addr().(*net.TCPAddr).Port
-}
-
 // TestMosquittoInterop publishes through Debian's mosquitto as the external
 // broker and reads back with mosquitto_sub.
 func TestMosquittoInterop(t *testing.T) {
-	integration(t, "mosquitto", "mosquitto_sub")
-	port := freePort(t)
+	interop.Need(t, "mosquitto mosquitto-clients", "mosquitto", "mosquitto_sub")
+	port := interop.FreePort(t)
 	dir := t.TempDir()
 	conf := filepath.Join(dir, "mosquitto.conf")
 	os.WriteFile(conf, []byte(fmt.Sprintf("listener %d 127.0.0.1\nallow_anonymous true\npersistence false\n", port)), 0o644)
@@ -297,7 +276,7 @@ func TestMosquittoInterop(t *testing.T) {
 // TestPromtoolChecksScrape runs promtool check metrics on a real scrape, and
 // promtool check rules on the shipped alert rules.
 func TestPromtoolChecksScrape(t *testing.T) {
-	integration(t, "promtool")
+	interop.Need(t, "prometheus", "promtool")
 	ctx, cancel := context.WithCancel(context.Background())
 	defer cancel()
 	httpAddr, _, done := startDemo(t, ctx, 4, nil)

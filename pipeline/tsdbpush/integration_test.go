@@ -10,7 +10,6 @@ import (
 	"io"
 	"log/slog"
 	"math"
-	"net"
 	"net/http"
 	"net/http/httptest"
 	"net/http/httputil"
@@ -25,6 +24,7 @@ import (
 	"time"
 
 	"github.com/plenum-engine/plenum/pipeline"
+	"github.com/plenum-engine/plenum/pipeline/interop"
 	"github.com/plenum-engine/plenum/pipeline/record"
 )
 
@@ -41,18 +41,6 @@ type point struct {
 	ns      int64
 	value   float64
 	quality string
-}
-
-func needIntegration(t *testing.T, bin string) string {
-	t.Helper()
-	if os.Getenv("PLENUM_INTEGRATION") != "1" {
-		t.Skip("set PLENUM_INTEGRATION=1 to push to Debian's influxd and victoria-metrics")
-	}
-	path, err := exec.LookPath(bin)
-	if err != nil {
-		t.Fatalf("PLENUM_INTEGRATION=1 but %s is missing (apt-get install -y influxdb victoria-metrics): %v", bin, err)
-	}
-	return path
 }
 
 // recordRun records itSamples samples on three channels with the real
@@ -197,16 +185,6 @@ func flakyAck(t *testing.T, target string) (*httptest.Server, *atomic.Int64) {
 	return srv, &lied
 }
 
-func freePort(t *testing.T) int {
-	t.Helper()
-	l, err := net.Listen("tcp", "127.0.0.1:0")
-	if err != nil {
-		t.Fatal(err)
-	}
-	defer l.Close()
-	return l.Addr().(*net.TCPAddr).Port
-}
-
 // startServer runs bin until the test ends and waits for ready to answer
 // want.
 func startServer(t *testing.T, bin string, ready string, want int, args ...string) {
@@ -300,10 +278,10 @@ func influxCount(t *testing.T, base, db string) int64 {
 }
 
 func TestIntegrationInfluxDB1(t *testing.T) {
-	bin := needIntegration(t, "influxd")
+	bin := interop.Need(t, "influxdb", "influxd")[0]
 	start := time.Now()
 	dir := t.TempDir()
-	httpPort, rpcPort := freePort(t), freePort(t)
+	httpPort, rpcPort := interop.FreePort(t), interop.FreePort(t)
 	conf := fmt.Sprintf(`reporting-disabled = true
 bind-address = "127.0.0.1:%d"
 [meta]
@@ -438,9 +416,9 @@ func vmCount(ss []vmSeries) int {
 const vmRelTol = 1e-11
 
 func TestIntegrationVictoriaMetrics(t *testing.T) {
-	bin := needIntegration(t, "victoria-metrics")
+	bin := interop.Need(t, "victoria-metrics", "victoria-metrics")[0]
 	start := time.Now()
-	port := freePort(t)
+	port := interop.FreePort(t)
 	base := fmt.Sprintf("http://127.0.0.1:%d", port)
 	startServer(t, bin, base+"/health", http.StatusOK,
 		"-storageDataPath="+t.TempDir(),
