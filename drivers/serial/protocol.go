@@ -273,26 +273,31 @@ func parseDecimal(b []byte) (float64, bool) {
 		neg = b[0] == '-'
 		b = b[1:]
 	}
+	// The integer part, then the fraction: two tight loops.
 	var mant uint64
-	digits, frac := 0, -1
-	for _, c := range b {
-		switch {
-		case c >= '0' && c <= '9':
-			if digits == 15 {
-				return 0, false
-			}
-			mant = mant*10 + uint64(c-'0')
-			digits++
-			if frac >= 0 {
-				frac++
-			}
-		case c == '.' && frac < 0:
-			frac = 0
-		default:
+	i := 0
+	for i < len(b) && b[i]-'0' <= 9 {
+		mant = mant*10 + uint64(b[i]-'0')
+		i++
+	}
+	digits, frac := i, 0
+	if i < len(b) {
+		if b[i] != '.' {
 			return 0, false
 		}
+		i++
+		start := i
+		for i < len(b) && b[i]-'0' <= 9 {
+			mant = mant*10 + uint64(b[i]-'0')
+			i++
+		}
+		frac = i - start
+		if i < len(b) || frac == 0 {
+			return 0, false // a stray byte, or a point without decimals
+		}
+		digits += frac
 	}
-	if digits == 0 || frac == 0 || frac > 9 {
+	if digits == 0 || digits > 15 || frac > 9 {
 		return 0, false
 	}
 	v := float64(mant)

@@ -2,6 +2,7 @@ package serial
 
 import (
 	"errors"
+	"math"
 	"os"
 	"strconv"
 	"strings"
@@ -203,5 +204,42 @@ func FuzzParseLine(f *testing.F) {
 		}
 		var d [8]float64
 		ParseDelimited(line, ',', d[:])
+	})
+}
+
+// parseDecimal against the standard library's correctly rounded
+// strconv.ParseFloat: with at most 15 digits (exact in a float64 mantissa)
+// and a power of ten up to 1e9 (exact too), one IEEE division is correctly
+// rounded, so the two agree bit for bit (Clinger's fast path).
+func TestParseDecimalMatchesStrconv(t *testing.T) {
+	good := []string{"0", "-0", "+7", "512", "2480.5", "-12.5", ".5", "123456789012345", "0.000000001", "99999.999999999", "101.325"}
+	bad := []string{"", "-", "+", ".", "1.", "1.2.3", "1e3", "12a", " 1", "1,5", "1234567890123456", "0.0000000001", "--1", "0x10", "1.5m"}
+	for _, s := range good {
+		got, ok := parseDecimal([]byte(s))
+		want, err := strconv.ParseFloat(s, 64)
+		if !ok || err != nil || math.Float64bits(got) != math.Float64bits(want) {
+			t.Errorf("parseDecimal(%q) = %v %v, strconv %v %v", s, got, ok, want, err)
+		}
+	}
+	for _, s := range bad {
+		if v, ok := parseDecimal([]byte(s)); ok {
+			t.Errorf("parseDecimal(%q) accepted: %v", s, v)
+		}
+	}
+}
+
+func FuzzParseDecimal(f *testing.F) {
+	for _, s := range []string{"512", "-12.5", ".5", "123456789012345", "1.", "1e3"} {
+		f.Add([]byte(s))
+	}
+	f.Fuzz(func(t *testing.T, b []byte) {
+		got, ok := parseDecimal(b)
+		if !ok {
+			return
+		}
+		want, err := strconv.ParseFloat(string(b), 64)
+		if err != nil || math.Float64bits(got) != math.Float64bits(want) {
+			t.Fatalf("parseDecimal(%q) = %v, strconv %v %v", b, got, want, err)
+		}
 	})
 }
