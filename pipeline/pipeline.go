@@ -212,7 +212,7 @@ func (p *Pipeline) ProcessFrame(ss []Sample) {
 		return
 	}
 	var t time.Time
-	any := false
+	work := false
 	for _, s := range ss {
 		if !p.accept(s) {
 			continue
@@ -223,11 +223,11 @@ func (p *Pipeline) ProcessFrame(ss []Sample) {
 		if int(s.Channel) < len(p.graph.dependents) {
 			for _, n := range p.graph.dependents[s.Channel] {
 				p.dirty[n.order] = true
-				any = true
+				work = true
 			}
 		}
 	}
-	if !any {
+	if !work {
 		return
 	}
 	for i, n := range p.graph.nodes {

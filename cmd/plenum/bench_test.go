@@ -47,17 +47,10 @@ func benchIngestDemo(b *testing.B, frames bool) {
 		}
 		ids = append(ids, id)
 	}
-	cfg.StateDir = ""
-	ds, _, err := buildAll(cfg, reg)
+	p, err := offlinePipeline(cfg, reg)
 	if err != nil {
 		b.Fatal(err)
 	}
-	g, err := pipeline.BuildGraph(reg, ds)
-	if err != nil {
-		b.Fatal(err)
-	}
-	p := pipeline.New(reg, g, pipeline.Options{})
-	p.BindEmitters()
 	sub := p.Subscribe("recorder", 1<<16)
 	// Plausible values per channel so that every derivation computes.
 	vals := make([]float64, len(ids))
@@ -147,7 +140,6 @@ func BenchmarkWarningLatency(b *testing.B) {
 	if err != nil {
 		b.Fatal(err)
 	}
-	cfg.StateDir = ""
 	reg := pipeline.NewRegistry()
 	ids := map[string]pipeline.ChannelID{}
 	for _, n := range []string{"manifold_pressure", "baro_pressure", "wideband_voltage", "engine_speed"} {
@@ -160,16 +152,10 @@ func BenchmarkWarningLatency(b *testing.B) {
 		}
 		ids[n] = id
 	}
-	ds, _, err := buildAll(cfg, reg)
+	p, err := offlinePipeline(cfg, reg)
 	if err != nil {
 		b.Fatal(err)
 	}
-	g, err := pipeline.BuildGraph(reg, ds)
-	if err != nil {
-		b.Fatal(err)
-	}
-	p := pipeline.New(reg, g, pipeline.Options{})
-	p.BindEmitters()
 	sub := p.SubscribeEvents("latency")
 	got := make(chan time.Time, 1)
 	stop := make(chan struct{})

@@ -126,12 +126,12 @@ func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *s
 		// closed at the end of the shutdown, not by ctx.
 		var users []broker.User
 		for _, u := range cfg.MQTT.Users {
-			pw, err := os.ReadFile(u.PasswordFile)
+			pw, err := readSecret("mqtt user "+u.Name+": password_file", u.PasswordFile)
 			if err != nil {
 				ln.Close()
-				return fmt.Errorf("mqtt user %s: password_file: %w", u.Name, err)
+				return err
 			}
-			users = append(users, broker.User{Name: u.Name, Password: strings.TrimSpace(string(pw)), Commands: u.Commands})
+			users = append(users, broker.User{Name: u.Name, Password: pw, Commands: u.Commands})
 		}
 		brk, err = broker.Start(context.Background(), broker.Config{Addr: cfg.MQTT.Listen, Anonymous: anon, Users: users, Prefix: cfg.MQTT.Prefix, Logger: quiet(log)})
 		if err != nil {
@@ -143,13 +143,9 @@ func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *s
 	} else {
 		mcfg.Broker = cfg.MQTT.Broker
 		mcfg.Username = cfg.MQTT.Username
-		if cfg.MQTT.PasswordFile != "" {
-			b, err := os.ReadFile(cfg.MQTT.PasswordFile)
-			if err != nil {
-				ln.Close()
-				return fmt.Errorf("mqtt password_file: %w", err)
-			}
-			mcfg.Password = strings.TrimSpace(string(b))
+		if mcfg.Password, err = readSecret("mqtt password_file", cfg.MQTT.PasswordFile); err != nil {
+			ln.Close()
+			return err
 		}
 		if mcfg.TLS, err = tlsConfig(cfg.MQTT); err != nil {
 			ln.Close()
@@ -297,6 +293,20 @@ func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *s
 	return runErr
 }
 
+// readSecret reads a password or token file (surrounding white space
+// trimmed); an empty path gives an empty secret. Secrets are never kept in
+// the configuration itself.
+func readSecret(field, path string) (string, error) {
+	if path == "" {
+		return "", nil
+	}
+	b, err := os.ReadFile(path)
+	if err != nil {
+		return "", fmt.Errorf("%s: %w", field, err)
+	}
+	return strings.TrimSpace(string(b)), nil
+}
+
 // openPusher opens the push backlog when record.push is configured.
 func openPusher(cfg *config.Config, log *slog.Logger) (*tsdbpush.Pusher, error) {
 	pu := cfg.Record.Push
@@ -308,21 +318,11 @@ func openPusher(cfg *config.Config, log *slog.Logger) (*tsdbpush.Pusher, error) 
 	if pc.Dir == "" {
 		pc.Dir = filepath.Join(cfg.StateDir, "push-"+cfg.Vehicle)
 	}
-	read := func(field, path string) (string, error) {
-		if path == "" {
-			return "", nil
-		}
-		b, err := os.ReadFile(path)
-		if err != nil {
-			return "", fmt.Errorf("record.push.%s: %w", field, err)
-		}
-		return strings.TrimSpace(string(b)), nil
-	}
 	var err error
-	if pc.Token, err = read("token_file", pu.TokenFile); err != nil {
+	if pc.Token, err = readSecret("record.push.token_file", pu.TokenFile); err != nil {
 		return nil, err
 	}
-	if pc.Password, err = read("password_file", pu.PasswordFile); err != nil {
+	if pc.Password, err = readSecret("record.push.password_file", pu.PasswordFile); err != nil {
 		return nil, err
 	}
 	p, err := tsdbpush.Open(pc)

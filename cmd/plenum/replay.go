@@ -125,7 +125,6 @@ type asyncWriter struct {
 	full chan []byte // buffers to write, in order
 	free chan []byte // written buffers, for reuse
 	done chan error  // the writer goroutine's first error, at the end
-	err  error
 }
 
 func newAsyncWriter(w io.Writer, size int) *asyncWriter {
@@ -382,6 +381,25 @@ func qualityOf(b []byte) pipeline.Quality {
 	return pipeline.OK
 }
 
+// offlinePipeline builds cfg's derivations and detectors over reg for use
+// away from the car (replay, benchmarks): the live turbo state is neither
+// read nor written. Feed it with Process or ProcessFrame.
+func offlinePipeline(cfg *config.Config, reg *pipeline.Registry) (*pipeline.Pipeline, error) {
+	c := *cfg
+	c.StateDir = ""
+	ds, _, err := buildAll(&c, reg)
+	if err != nil {
+		return nil, err
+	}
+	g, err := pipeline.BuildGraph(reg, ds)
+	if err != nil {
+		return nil, fmt.Errorf("replay: %w", err)
+	}
+	p := pipeline.New(reg, g, pipeline.Options{})
+	p.BindEmitters()
+	return p, nil
+}
+
 // replay runs the samples through the configured derivations synchronously,
 // writes every sample and event the pipeline fans out, and returns the
 // summary of the replayed run.
@@ -406,17 +424,10 @@ func replay(cfg *config.Config, rec recording, w io.Writer, asCSV bool) (record.
 		ids[i] = id
 	}
 	in := rec.samples
-	cfg.StateDir = "" // a replay neither reads nor writes the live turbo state
-	ds, _, err := buildAll(cfg, reg)
+	p, err := offlinePipeline(cfg, reg)
 	if err != nil {
 		return record.Summary{}, err
 	}
-	g, err := pipeline.BuildGraph(reg, ds)
-	if err != nil {
-		return record.Summary{}, fmt.Errorf("replay: %w", err)
-	}
-	p := pipeline.New(reg, g, pipeline.Options{})
-	p.BindEmitters()
 	sub := p.Subscribe("replay", 1<<12)
 	enc := record.NewEncoder("replay", cfg.Vehicle, reg)
 	var cw *csv.Writer
@@ -424,7 +435,7 @@ func replay(cfg *config.Config, rec recording, w io.Writer, asCSV bool) (record.
 		cw = csv.NewWriter(w)
 		cw.Write([]string{"time", "channel", "source", "value", "quality"})
 	}
-	chans := func() []pipeline.Channel { return reg.Channels() }()
+	chans := reg.Channels()
 	var buf []pipeline.Sample
 	var evs []pipeline.Event
 	// Samples of one time (one serial line, one OBD answer) are one frame,

@@ -57,20 +57,37 @@ type startRequest struct {
 	Entered      record.Conditions // values entered with the command win over sensors
 }
 
+// conditionField is one ambient condition: its key in run.json and MQTT
+// commands, its form field on the HTTP API (in the units people read off a
+// weather station), the channel that measures it, and the range accepted.
+type conditionField struct {
+	name, form, channel string
+	dst                 **float64
+	scale               float64 // form units × scale = canonical units
+	min, max            float64 // canonical units: what the ambient channels accept
+}
+
+// conditionFields lists the fields of c: the one table the start command's
+// parsing, checking and sensor lookup share.
+func conditionFields(c *record.Conditions) []conditionField {
+	return []conditionField{
+		{"pressure_pa", "pressure_kpa", "baro_pressure", &c.PressurePa, 1000, 50000, 110000},
+		{"temperature_c", "temperature_c", "ambient_temp", &c.TemperatureC, 1, -40, 60},
+		{"relative_humidity", "humidity_percent", "ambient_humidity", &c.RelativeHumidity, 0.01, 0, 1},
+	}
+}
+
 // conditions fills the ambient conditions at the start: entered values
 // first, then the latest fresh values of the ambient channels.
 func (r *runs) conditions(entered record.Conditions, now time.Time) record.Conditions {
 	c := entered
 	fromSensors := false
 	if r.store != nil {
-		for _, f := range []struct {
-			name string
-			dst  **float64
-		}{{"baro_pressure", &c.PressurePa}, {"ambient_temp", &c.TemperatureC}, {"ambient_humidity", &c.RelativeHumidity}} {
+		for _, f := range conditionFields(&c) {
 			if *f.dst != nil {
 				continue
 			}
-			id, ok := r.reg.Lookup(f.name)
+			id, ok := r.reg.Lookup(f.channel)
 			if !ok {
 				continue
 			}
@@ -98,17 +115,16 @@ func (r *runs) start(req startRequest) (string, error) {
 	if r.cur != nil {
 		return "", fmt.Errorf("run %s is already being recorded", r.cur.ID())
 	}
-	label, notes := req.Label, req.Notes
 	now := time.Now()
 	id := now.UTC().Format("20060102T150405.000Z")
-	rec, err := record.Open(record.Config{Dir: r.cfg.Record.Dir, Run: id, Vehicle: r.cfg.Vehicle, Label: label, Notes: notes,
+	rec, err := record.Open(record.Config{Dir: r.cfg.Record.Dir, Run: id, Vehicle: r.cfg.Vehicle, Label: req.Label, Notes: req.Notes,
 		SyncEvery: time.Duration(r.cfg.Record.SyncEvery), RotateBytes: int64(r.cfg.Record.RotateMB) << 20, ConfigYAML: r.cfg.Raw,
 		Conditions: r.conditions(req.Entered, now), Forward: r.forward}, r.reg)
 	if err != nil {
 		return "", err
 	}
 	r.cur = rec
-	r.emit(pipeline.Event{Kind: "run_started", Name: id, Start: time.Now(), Tags: map[string]string{"label": label}})
+	r.emit(pipeline.Event{Kind: "run_started", Name: id, Start: time.Now(), Tags: map[string]string{"label": req.Label}})
 	return id, nil
 }
 
@@ -123,6 +139,9 @@ func (r *runs) stop() (record.Summary, error) {
 	r.cur, r.auto = nil, false
 	err := rec.Close()
 	r.lostClosed += rec.Lost()
+	if n := rec.ForwardFailures(); n > 0 {
+		r.log.Error("push: blocks of this run were refused by the push backlog; they are in the run's files but were not pushed", "run", rec.ID(), "blocks", n)
+	}
 	sum := rec.Summary()
 	r.publish(sum.JSON())
 	r.emit(pipeline.Event{Kind: "run_ended", Name: rec.ID(), Start: sum.Start, End: sum.End,
@@ -301,13 +320,9 @@ func (r *runs) handler() http.Handler {
 // checkConditions refuses entered conditions outside what the ambient
 // channels accept (50–110 kPa, −40–60 °C, 0–1).
 func checkConditions(c record.Conditions) error {
-	for _, f := range []struct {
-		name     string
-		v        *float64
-		min, max float64
-	}{{"pressure_pa", c.PressurePa, 50000, 110000}, {"temperature_c", c.TemperatureC, -40, 60}, {"relative_humidity", c.RelativeHumidity, 0, 1}} {
-		if f.v != nil && !(*f.v >= f.min && *f.v <= f.max) {
-			return fmt.Errorf("%s: %g is outside %g–%g", f.name, *f.v, f.min, f.max)
+	for _, f := range conditionFields(&c) {
+		if v := *f.dst; v != nil && !(*v >= f.min && *v <= f.max) {
+			return fmt.Errorf("%s: %g is outside %g–%g", f.name, *v, f.min, f.max)
 		}
 	}
 	return nil
@@ -316,21 +331,16 @@ func checkConditions(c record.Conditions) error {
 // parseEntered reads the optional form fields pressure_kpa, temperature_c
 // and humidity_percent: conditions read off a weather station.
 func parseEntered(req *http.Request, c *record.Conditions) error {
-	for _, f := range []struct {
-		key      string
-		dst      **float64
-		scale    float64
-		min, max float64
-	}{{"pressure_kpa", &c.PressurePa, 1000, 50, 110}, {"temperature_c", &c.TemperatureC, 1, -40, 60}, {"humidity_percent", &c.RelativeHumidity, 0.01, 0, 100}} {
-		s := req.FormValue(f.key)
+	for _, f := range conditionFields(c) {
+		s := req.FormValue(f.form)
 		if s == "" {
 			continue
 		}
 		v, err := strconv.ParseFloat(s, 64)
-		if err != nil || v < f.min || v > f.max {
-			return fmt.Errorf("%s: %q is not a number between %g and %g", f.key, s, f.min, f.max)
-		}
 		x := v * f.scale
+		if err != nil || !(x >= f.min && x <= f.max) {
+			return fmt.Errorf("%s: %q is not a number between %g and %g", f.form, s, f.min/f.scale, f.max/f.scale)
+		}
 		*f.dst = &x
 	}
 	return nil
@@ -353,11 +363,10 @@ func cmdRunControl(verb string, args []string, stdout io.Writer) error {
 	}
 	token := os.Getenv("PLENUM_CONTROL_TOKEN")
 	if *tokenFile != "" {
-		b, err := os.ReadFile(*tokenFile)
-		if err != nil {
-			return fmt.Errorf("run-%s: %w", verb, err)
+		var err error
+		if token, err = readSecret("run-"+verb+": -token-file", *tokenFile); err != nil {
+			return err
 		}
-		token = strings.TrimSpace(string(b))
 	}
 	form := url.Values{"label": {*label}, "notes": {*notes}, "pressure_kpa": {*pressure}, "temperature_c": {*temp}, "humidity_percent": {*hum}}
 	req, err := http.NewRequest(http.MethodPost, "http://"+*addr+"/api/runs/"+verb, strings.NewReader(form.Encode()))

@@ -63,7 +63,6 @@ type Config struct {
 // Stats are the publisher's counters.
 type Stats struct {
 	Published, Coalesced, Failed atomic.Uint64
-	Commands                     atomic.Uint64 // command messages received
 }
 
 // Publisher forwards one pipeline subscription to MQTT.
@@ -151,7 +150,6 @@ func (p *Publisher) onCommand(c paho.Client, m paho.Message) {
 	if !ok || suffix == "" {
 		return
 	}
-	p.stats.Commands.Add(1)
 	if reply := p.cfg.OnCommand(suffix, m.Payload()); reply != nil {
 		c.Publish(p.Topic("reply/"+suffix), 1, false, reply)
 	}

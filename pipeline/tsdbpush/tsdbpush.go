@@ -80,6 +80,8 @@ import (
 	"sync"
 	"sync/atomic"
 	"time"
+
+	"github.com/plenum-engine/plenum/pipeline/record"
 )
 
 // Config configures a Pusher. URL and Dir are required; every other field has
@@ -1010,21 +1012,18 @@ func syncDir(dir string) error {
 	return nil
 }
 
-// cutTorn truncates a segment after its last newline and returns the size
-// kept.
+// cutTorn cuts a segment after its last newline, the way the recorder
+// recovers its own files (reading only the tail), and returns the size kept.
 func cutTorn(path string) (int64, error) {
-	b, err := os.ReadFile(path)
+	st, err := os.Stat(path)
 	if err != nil {
 		return 0, fmt.Errorf("tsdbpush: %w", err)
 	}
-	keep := wholeLen(b)
-	if keep == len(b) {
-		return int64(keep), nil
+	cut, err := record.CutTornTail(path)
+	if err != nil {
+		return 0, fmt.Errorf("tsdbpush: cut torn tail: %w", err)
 	}
-	if err := os.Truncate(path, int64(keep)); err != nil {
-		return 0, fmt.Errorf("tsdbpush: cut torn tail of %s: %w", path, err)
-	}
-	return int64(keep), nil
+	return st.Size() - cut, nil
 }
 
 // cutAt truncates a segment to the whole lines within its first n bytes.
