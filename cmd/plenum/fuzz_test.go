@@ -2,10 +2,14 @@ package main
 
 import (
 	"encoding/json"
+	"net/http"
+	"net/http/httptest"
 	"os"
 	"path/filepath"
 	"strings"
 	"testing"
+
+	"github.com/plenum-engine/plenum/pipeline/record"
 )
 
 func TestParseCommand(t *testing.T) {
@@ -89,4 +93,30 @@ func FuzzReadSamples(f *testing.F) {
 			}
 		}
 	})
+}
+
+func TestParseEntered(t *testing.T) {
+	cases := []struct {
+		form    string
+		wantErr string
+		wantPa  float64
+	}{
+		{"pressure_kpa=99.1", "", 99100},
+		{"pressure_kpa=NaN", "pressure_kpa", 0},
+		{"pressure_kpa=120", "between 50 and 110", 0},
+		{"humidity_percent=140", "humidity_percent", 0},
+		{"temperature_c=abc", "temperature_c", 0},
+	}
+	for _, c := range cases {
+		req := httptest.NewRequest(http.MethodPost, "/api/runs/start", strings.NewReader(c.form))
+		req.Header.Set("Content-Type", "application/x-www-form-urlencoded")
+		var cond record.Conditions
+		err := parseEntered(req, &cond)
+		if (c.wantErr == "") != (err == nil) || (err != nil && !strings.Contains(err.Error(), c.wantErr)) {
+			t.Errorf("%s: err %v, want %q", c.form, err, c.wantErr)
+		}
+		if c.wantPa != 0 && (cond.PressurePa == nil || *cond.PressurePa != c.wantPa) {
+			t.Errorf("%s: pressure %v, want %g", c.form, cond.PressurePa, c.wantPa)
+		}
+	}
 }
