@@ -87,3 +87,21 @@ func (s *HealthSet) All() []*Health {
 	sort.Slice(out, func(i, j int) bool { return out[i].name < out[j].name })
 	return out
 }
+
+// HealthReport is what one part (a source or a publisher) says of itself when
+// metrics are scraped. The Prometheus collector exports it as
+// plenum_<Kind>_up{<Kind>="<Name>"}, plenum_<Kind>_<counter>_total and
+// plenum_<Kind>_<gauge> with the same label, so every part reports the same way.
+type HealthReport struct {
+	Kind     string       // metric family: "source", "push", "mqtt", "recorder"
+	Name     string       // the part's label value, e.g. "ecu_can0"
+	Up       bool         // delivering (a source) or connected (a publisher)
+	Counters []NamedCount // monotonic counts, snake_case names without _total
+	Gauges   []NamedValue // levels, snake_case names with their unit
+}
+
+// NamedValue is one gauge's value.
+type NamedValue struct {
+	Name  string
+	Value float64
+}
