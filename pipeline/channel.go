@@ -43,6 +43,9 @@ type Channel struct {
 	Sensor   string        // sensor label, bounded cardinality
 	MaxAge   time.Duration // a value older than this is stale; 0 means 2 s
 	Min, Max float64       // plausible range; both 0 means unchecked
+	// Origin and Description come from the channel catalogue.
+	Origin      Origin
+	Description string // one sentence for people
 }
 
 var nameRE = regexp.MustCompile(`^[a-z][a-z0-9_]*$`)

@@ -6,22 +6,28 @@ import (
 	"sync/atomic"
 )
 
-// Health is one source's health: whether it is up, and named counters of
-// frames, errors, timeouts and so on. Safe for concurrent use.
+// Health keeps one part's up flag and named counters in one place, for parts
+// that count from several goroutines (a driver and its decoder). Report gives
+// them in the shape the collector reads. The zero value is usable (Kind and
+// Name then empty); safe for concurrent use.
 type Health struct {
-	name     string
-	up       atomic.Bool
-	mu       sync.Mutex
-	counters map[string]*atomic.Uint64
+	kind, name string
+	up         atomic.Bool
+	mu         sync.Mutex
+	counters   map[string]*atomic.Uint64
 }
 
-// Name returns the source name.
+// NewHealth returns the health of the part name of the given kind ("source",
+// "push", "mqtt", "recorder"), down and with no counters.
+func NewHealth(kind, name string) *Health { return &Health{kind: kind, name: name} }
+
+// Name returns the part's name.
 func (h *Health) Name() string { return h.name }
 
-// SetUp records whether the source is delivering.
+// SetUp records whether the part is delivering.
 func (h *Health) SetUp(up bool) { h.up.Store(up) }
 
-// Up reports whether the source is delivering.
+// Up reports whether the part is delivering.
 func (h *Health) Up() bool { return h.up.Load() }
 
 // Counter returns the named counter, creating it at zero. Keep the pointer:
@@ -31,6 +37,9 @@ func (h *Health) Counter(name string) *atomic.Uint64 {
 	defer h.mu.Unlock()
 	c, ok := h.counters[name]
 	if !ok {
+		if h.counters == nil {
+			h.counters = map[string]*atomic.Uint64{}
+		}
 		c = new(atomic.Uint64)
 		h.counters[name] = c
 	}
@@ -49,43 +58,15 @@ func (h *Health) Counters() []NamedCount {
 	return out
 }
 
+// Report returns the part's up flag and counters.
+func (h *Health) Report() HealthReport {
+	return HealthReport{Kind: h.kind, Name: h.name, Up: h.Up(), Counters: h.Counters()}
+}
+
 // NamedCount is one counter's value.
 type NamedCount struct {
 	Name  string
 	Value uint64
-}
-
-// HealthSet holds the health of every source.
-type HealthSet struct {
-	mu      sync.Mutex
-	sources map[string]*Health
-}
-
-// NewHealthSet returns an empty set.
-func NewHealthSet() *HealthSet { return &HealthSet{sources: map[string]*Health{}} }
-
-// Source returns the named source's health, creating it (down) when new.
-func (s *HealthSet) Source(name string) *Health {
-	s.mu.Lock()
-	defer s.mu.Unlock()
-	h, ok := s.sources[name]
-	if !ok {
-		h = &Health{name: name, counters: map[string]*atomic.Uint64{}}
-		s.sources[name] = h
-	}
-	return h
-}
-
-// All returns the sources sorted by name.
-func (s *HealthSet) All() []*Health {
-	s.mu.Lock()
-	defer s.mu.Unlock()
-	out := make([]*Health, 0, len(s.sources))
-	for _, h := range s.sources {
-		out = append(out, h)
-	}
-	sort.Slice(out, func(i, j int) bool { return out[i].name < out[j].name })
-	return out
 }
 
 // HealthReport is what one part (a source or a publisher) says of itself when

@@ -12,17 +12,16 @@ import (
 // validates them, stores them, runs the dependent derivations and fans out
 // every accepted and derived sample to the subscriptions.
 type Pipeline struct {
-	reg    *Registry
-	store  *Store
-	graph  *Graph
-	chans  []Channel
-	in     chan Sample
-	evIn   chan Event
-	fan    fanout
-	done   chan struct{}
-	health *HealthSet
-	dirty  []bool   // per node, in topological order: ProcessFrame's work list
-	frame  []Sample // Run's frame being gathered
+	reg   *Registry
+	store *Store
+	graph *Graph
+	chans []Channel
+	in    chan []Sample // frames
+	free  chan []Sample // frame buffers to reuse
+	evIn  chan Event
+	fan   fanout
+	done  chan struct{}
+	dirty []bool // per node, in topological order: ProcessFrame's work list
 
 	accepted  atomic.Uint64
 	flagged   atomic.Uint64
@@ -34,7 +33,8 @@ type Pipeline struct {
 
 // Options tune a pipeline.
 type Options struct {
-	// QueueSize bounds the fan-in queue between drivers and the ingest loop.
+	// QueueSize bounds the fan-in queue between drivers and the ingest loop,
+	// in frames (default 4096).
 	QueueSize int
 }
 
@@ -42,21 +42,21 @@ type Options struct {
 // All channels, including derived ones, must be registered before New.
 func New(reg *Registry, g *Graph, opt Options) *Pipeline {
 	if opt.QueueSize <= 0 {
-		opt.QueueSize = 8192
+		opt.QueueSize = 4096
 	}
 	if g == nil {
 		g = &Graph{}
 	}
 	return &Pipeline{
-		reg:    reg,
-		store:  NewStore(reg.Len()),
-		graph:  g,
-		chans:  reg.Channels(),
-		in:     make(chan Sample, opt.QueueSize),
-		evIn:   make(chan Event, 256),
-		done:   make(chan struct{}),
-		health: NewHealthSet(),
-		dirty:  make([]bool, len(g.nodes)),
+		reg:   reg,
+		store: NewStore(reg.Len()),
+		graph: g,
+		chans: reg.Channels(),
+		in:    make(chan []Sample, opt.QueueSize),
+		free:  make(chan []Sample, opt.QueueSize),
+		evIn:  make(chan Event, 256),
+		done:  make(chan struct{}),
+		dirty: make([]bool, len(g.nodes)),
 	}
 }
 
@@ -65,9 +65,6 @@ func (p *Pipeline) Registry() *Registry { return p.reg }
 
 // Store returns the latest-value store.
 func (p *Pipeline) Store() *Store { return p.store }
-
-// Health returns the per-source health set.
-func (p *Pipeline) Health() *HealthSet { return p.health }
 
 // Subscribe adds a consumer with a queue of size samples. Subscribe before Run
 // to see every sample from the start.
@@ -85,21 +82,50 @@ func (p *Pipeline) SubscribeEvents(name string) *Subscription {
 // Subscriptions lists the consumers, for drop counters.
 func (p *Pipeline) Subscriptions() []*Subscription { return p.fan.list() }
 
-// Put hands a sample to the pipeline. It blocks only while the fan-in queue is
-// full, and returns false once the pipeline has stopped.
+// Put hands one sample to the pipeline as a frame of its own. It blocks only
+// while the fan-in queue is full, and returns false once the pipeline has
+// stopped.
 func (p *Pipeline) Put(s Sample) bool {
+	return p.PutFrame([]Sample{s})
+}
+
+// PutFrame hands the samples of one moment (the readings of one serial line,
+// the values of one OBD answer) to the pipeline as one frame: they are stored
+// together, and each derivation depending on any of them runs once, on the
+// complete frame. The pipeline copies ss, so the caller may reuse it when
+// PutFrame returns. It blocks only while the fan-in queue is full, and
+// returns false once the pipeline has stopped.
+func (p *Pipeline) PutFrame(ss []Sample) bool {
+	if len(ss) == 0 {
+		return true
+	}
 	select {
 	case <-p.done:
-		p.inDropped.Add(1)
+		p.inDropped.Add(uint64(len(ss)))
 		return false
 	default:
 	}
+	var buf []Sample
 	select {
-	case p.in <- s:
+	case buf = <-p.free:
+	default:
+	}
+	buf = append(buf[:0], ss...)
+	select {
+	case p.in <- buf:
 		return true
 	case <-p.done:
-		p.inDropped.Add(1)
+		p.inDropped.Add(uint64(len(ss)))
 		return false
+	}
+}
+
+// take processes one queued frame and returns its buffer for reuse.
+func (p *Pipeline) take(f []Sample) {
+	p.ProcessFrame(f)
+	select {
+	case p.free <- f:
+	default:
 	}
 }
 
@@ -159,15 +185,15 @@ func (p *Pipeline) Run(ctx context.Context) error {
 	}()
 	for {
 		select {
-		case s := <-p.in:
-			p.gather(s)
+		case f := <-p.in:
+			p.take(f)
 		case e := <-p.evIn:
 			p.fan.event(e)
 		case <-ctx.Done():
 			for {
 				select {
-				case s := <-p.in:
-					p.gather(s)
+				case f := <-p.in:
+					p.take(f)
 				case e := <-p.evIn:
 					p.fan.event(e)
 				default:
@@ -178,34 +204,12 @@ func (p *Pipeline) Run(ctx context.Context) error {
 	}
 }
 
-// gather processes s with the samples queued right behind it that share its
-// time (the readings of one serial line, the PIDs of one OBD answer) as one
-// frame, so that a derivation reading several of them runs once, on the
-// complete frame. It never waits for more samples.
-func (p *Pipeline) gather(s Sample) {
-	p.frame = append(p.frame[:0], s)
-	for {
-		select {
-		case n := <-p.in:
-			if n.Time.Equal(s.Time) {
-				p.frame = append(p.frame, n)
-				continue
-			}
-			p.ProcessFrame(p.frame)
-			s = n
-			p.frame = append(p.frame[:0], n)
-		default:
-			p.ProcessFrame(p.frame)
-			return
-		}
-	}
-}
-
 // ProcessFrame runs samples taken at one moment through validation, the
 // store and the fan-out, then evaluates every derivation depending on any of
 // them once, in topological order, at the latest of their times. Derived
 // values are thus computed from the whole frame, not from each partly
-// updated state in turn. From a single goroutine, like Process.
+// updated state in turn. Run calls it for every queued frame; replay and
+// benchmarks may call it directly, from a single goroutine.
 func (p *Pipeline) ProcessFrame(ss []Sample) {
 	if len(ss) == 1 {
 		p.Process(ss[0])
@@ -238,9 +242,9 @@ func (p *Pipeline) ProcessFrame(ss []Sample) {
 	}
 }
 
-// Process runs one sample through validation, the store, the derivations and
-// the fan-out synchronously. Run calls it for every queued sample; replay and
-// benchmarks may call it directly from a single goroutine.
+// Process runs one sample, a frame of its own, through validation, the
+// store, the derivations and the fan-out synchronously, from a single
+// goroutine like ProcessFrame.
 func (p *Pipeline) Process(s Sample) {
 	if !p.accept(s) {
 		return
@@ -329,7 +333,3 @@ func (p *Pipeline) BindEmitters() {
 		}
 	}
 }
-
-// AdoptHealth makes h the pipeline's health set, so that sources created
-// before the pipeline report into the same set the exporters read.
-func (p *Pipeline) AdoptHealth(h *HealthSet) { p.health = h }

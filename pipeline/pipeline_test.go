@@ -3,6 +3,7 @@ package pipeline
 import (
 	"context"
 	"math"
+	"runtime"
 	"strconv"
 	"strings"
 	"testing"
@@ -215,7 +216,7 @@ func BenchmarkIngest(b *testing.B) {
 }
 
 // A frame (samples of one moment) evaluates each dependent derivation once,
-// on the complete frame; Run gathers queued samples of one time into frames.
+// on the complete frame, whether processed directly or queued with PutFrame.
 func TestFrameEvaluatesOnce(t *testing.T) {
 	reg := newReg(t, "a", "b", "c")
 	d1 := &sumDeriv{name: "d1", in: []Input{{Name: "a"}, {Name: "b"}}, out: "ab"}
@@ -243,13 +244,16 @@ func TestFrameEvaluatesOnce(t *testing.T) {
 		t.Fatalf("%d samples fanned out, want 5: %+v", len(buf), buf)
 	}
 
-	// Through Run: 3 frames of 3 samples each, queued before Run starts.
+	// Through Run: 3 frames of 3 samples each, queued before Run starts,
+	// from one reused slice.
 	d1.calls, d2.calls = 0, 0
+	frame := make([]Sample, 3)
 	for i := 1; i <= 3; i++ {
 		ti := t0.Add(time.Duration(i) * 10 * time.Millisecond)
-		for _, ch := range []ChannelID{a, b, c} {
-			p.Put(Sample{Channel: ch, Value: float64(i), Time: ti})
+		for j, ch := range []ChannelID{a, b, c} {
+			frame[j] = Sample{Channel: ch, Value: float64(i), Time: ti}
 		}
+		p.PutFrame(frame)
 	}
 	ctx, cancel := context.WithCancel(context.Background())
 	cancel()
@@ -286,5 +290,86 @@ func TestEmitAroundStopLosesNothing(t *testing.T) {
 		if len(evs) != n {
 			t.Fatalf("round %d: %d of %d events arrived", round, len(evs), n)
 		}
+	}
+}
+
+// A slow producer cannot split a frame: the ingest loop takes what PutFrame
+// handed over as one unit, however the producer's calls interleave with the
+// loop. The control case hands the same samples one by one, pausing until
+// the loop has taken each, as a driver queueing a frame sample by sample
+// would when it is preempted: the derivations then run on partly updated
+// states and write one channel twice at one instant, which is what frames
+// exist to prevent.
+func TestSlowProducerCannotSplitFrames(t *testing.T) {
+	for _, tc := range []struct {
+		name      string
+		whole     bool
+		wantCalls int // d1 calls over the 20 moments
+		wantDups  int // (abc, time) keys written more than once
+	}{
+		{"PutFrame", true, 20, 0},
+		// Each sample triggers d1, except the first two: d1 needs all three.
+		{"sample by sample (control)", false, 3*20 - 2, 3*20 - 2 - 20},
+	} {
+		t.Run(tc.name, func(t *testing.T) {
+			reg := newReg(t, "a", "b", "c")
+			d1 := &sumDeriv{name: "d1", in: []Input{{Name: "a"}, {Name: "b"}, {Name: "c"}}, out: "abc"}
+			g, err := BuildGraph(reg, []Derivation{d1})
+			if err != nil {
+				t.Fatal(err)
+			}
+			p := New(reg, g, Options{})
+			sub := p.Subscribe("rec", 1<<12)
+			ctx, cancel := context.WithCancel(context.Background())
+			done := make(chan struct{})
+			go func() { p.Run(ctx); close(done) }()
+			ids := []ChannelID{0, 1, 2}
+			taken := func(n uint64) {
+				for p.Counters().Accepted < n {
+					runtime.Gosched()
+				}
+			}
+			const moments = 20
+			t0 := time.Unix(1000, 0)
+			var sent uint64
+			for i := 0; i < moments; i++ {
+				ti := t0.Add(time.Duration(i) * time.Millisecond)
+				frame := make([]Sample, len(ids))
+				for j, id := range ids {
+					frame[j] = Sample{Channel: id, Value: float64(i), Time: ti}
+				}
+				if tc.whole {
+					p.PutFrame(frame)
+					sent += uint64(len(frame))
+					taken(sent)
+					continue
+				}
+				for _, s := range frame {
+					p.Put(s)
+					sent++
+					taken(sent) // the slow producer: the loop drains between samples
+				}
+			}
+			cancel()
+			<-done
+			if d1.calls != tc.wantCalls {
+				t.Errorf("d1 ran %d times for %d moments, want %d", d1.calls, moments, tc.wantCalls)
+			}
+			abc, _ := reg.Lookup("abc")
+			buf, _ := sub.Drain(nil, nil)
+			seen := map[int64]int{}
+			for _, s := range buf {
+				if s.Channel == abc {
+					seen[s.Time.UnixNano()]++
+				}
+			}
+			dups := 0
+			for _, n := range seen {
+				dups += n - 1
+			}
+			if dups != tc.wantDups {
+				t.Errorf("%d duplicate (abc, time) samples, want %d", dups, tc.wantDups)
+			}
+		})
 	}
 }

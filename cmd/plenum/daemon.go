@@ -4,7 +4,6 @@ import (
 	"context"
 	"crypto/tls"
 	"crypto/x509"
-	"errors"
 	"fmt"
 	"io"
 	"log/slog"
@@ -13,7 +12,6 @@ import (
 	"os"
 	"path/filepath"
 	"strings"
-	"sync"
 	"time"
 
 	"github.com/prometheus/client_golang/prometheus"
@@ -27,22 +25,15 @@ import (
 	"github.com/plenum-engine/plenum/pipeline/tsdbpush"
 )
 
-// source is anything that feeds the pipeline until its context ends.
-type source interface {
-	Name() string
-	Run(ctx context.Context) error
-}
-
-// runDaemon assembles sources, derivations, the pipeline and the publishers
-// from cfg and runs them until ctx is done.
+// runDaemon builds the daemon's parts from cfg, starts them in stages and
+// runs them until ctx is done or a part fails, then stops them in the
+// reverse order: sources first, so that what they took last is processed,
+// recorded, pushed and published.
 func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *slog.Logger) error {
 	fmt.Fprintln(stdout, Safety)
+	// Build: nothing runs yet, so a failure leaves nothing to stop.
 	reg := pipeline.NewRegistry()
-	// The pipeline is created after all channels are known, but the sources
-	// need somewhere to put samples: they get a forwarding sink.
-	sink := &lateSink{}
-	health := pipeline.NewHealthSet()
-	srcs, cleanup, err := buildSources(ctx, cfg, reg, sink, health, log)
+	srcs, cleanup, err := buildSources(cfg, reg, log)
 	if err != nil {
 		return err
 	}
@@ -69,9 +60,7 @@ func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *s
 		return fmt.Errorf("derivations: %w", err)
 	}
 	p := pipeline.New(reg, g, pipeline.Options{})
-	p.AdoptHealth(health)
 	p.BindEmitters()
-	sink.set(p)
 
 	// Pushing the recorded lines to a time-series database.
 	pusher, err := openPusher(cfg, log)
@@ -84,36 +73,6 @@ func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *s
 		extra = pushMetrics(pusher)
 	}
 
-	// Metrics.
-	col, err := promexport.New(p, time.Now)
-	if err != nil {
-		return err
-	}
-	evm := promexport.NewEvents(p.SubscribeEvents("event_metrics"))
-	h, err := promexport.Handler(col, append([]prometheus.Collector{evm}, extra...)...)
-	if err != nil {
-		return err
-	}
-	mux := http.NewServeMux()
-	mux.Handle("/metrics", h)
-	for _, d := range ds {
-		if ve, ok := d.(*veEstimate); ok {
-			mux.Handle("/ve-table.csv", ve)
-		}
-	}
-	mux.HandleFunc("/", func(w http.ResponseWriter, r *http.Request) {
-		if r.URL.Path != "/" {
-			http.NotFound(w, r)
-			return
-		}
-		fmt.Fprintf(w, "plenum %s for %s\n/metrics  Prometheus exposition\n\n%s\n", version, cfg.Vehicle, Safety)
-	})
-	ln, err := net.Listen("tcp", cfg.HTTP.Listen)
-	if err != nil {
-		return fmt.Errorf("http listen %s: %w", cfg.HTTP.Listen, err)
-	}
-	srv := &http.Server{Handler: mux, ReadHeaderTimeout: 5 * time.Second}
-
 	// MQTT: the embedded broker unless an external one is configured.
 	mcfg := mqttpub.Config{
 		Prefix: cfg.MQTT.Prefix, Vehicle: cfg.Vehicle, MaxRate: cfg.MQTT.MaxRateHz,
@@ -122,36 +81,34 @@ func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *s
 	var brk *broker.Broker
 	if cfg.MQTT.Broker == "embedded" {
 		anon := cfg.MQTT.Anonymous == nil || *cfg.MQTT.Anonymous
-		// The broker outlives the publisher's last "offline" message: it is
-		// closed at the end of the shutdown, not by ctx.
 		var users []broker.User
 		for _, u := range cfg.MQTT.Users {
 			pw, err := readSecret("mqtt user "+u.Name+": password_file", u.PasswordFile)
 			if err != nil {
-				ln.Close()
 				return err
 			}
 			users = append(users, broker.User{Name: u.Name, Password: pw, Commands: u.Commands})
 		}
-		brk, err = broker.Start(context.Background(), broker.Config{Addr: cfg.MQTT.Listen, Anonymous: anon, Users: users, Prefix: cfg.MQTT.Prefix, Logger: quiet(log)})
+		// The broker outlives the publisher's last "offline" message: it is
+		// the last stage to stop.
+		brk, err = broker.Start(context.WithoutCancel(ctx), broker.Config{Addr: cfg.MQTT.Listen, Anonymous: anon, Users: users, Prefix: cfg.MQTT.Prefix, Logger: quiet(log)})
 		if err != nil {
-			ln.Close()
 			return err
 		}
+		defer brk.Close()
 		mcfg.Broker = "tcp://" + brk.Addr().String()
 		mcfg.Username, mcfg.Password = brk.Credentials()
 	} else {
 		mcfg.Broker = cfg.MQTT.Broker
 		mcfg.Username = cfg.MQTT.Username
 		if mcfg.Password, err = readSecret("mqtt password_file", cfg.MQTT.PasswordFile); err != nil {
-			ln.Close()
 			return err
 		}
 		if mcfg.TLS, err = tlsConfig(cfg.MQTT); err != nil {
-			ln.Close()
 			return err
 		}
 	}
+	mux := http.NewServeMux()
 	var rr *runs
 	if cfg.Record.Dir != "" {
 		if fixed, err := record.Recover(cfg.Record.Dir); err != nil {
@@ -182,10 +139,44 @@ func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *s
 	}
 	pub, err := mqttpub.New(mcfg, reg, p.Subscribe("mqtt", 1<<14))
 	if err != nil {
-		ln.Close()
 		return err
 	}
 	pub.SetStore(p.Store())
+
+	// Metrics: every source and publisher reports its health at scrape time.
+	parts := []promexport.Reporter{pub}
+	for _, s := range srcs {
+		if s.health != nil {
+			parts = append(parts, s.health)
+		}
+	}
+	col, err := promexport.New(p, time.Now, parts...)
+	if err != nil {
+		return err
+	}
+	evm := promexport.NewEvents(p.SubscribeEvents("event_metrics"))
+	h, err := promexport.Handler(col, append([]prometheus.Collector{evm}, extra...)...)
+	if err != nil {
+		return err
+	}
+	mux.Handle("/metrics", h)
+	for _, d := range ds {
+		if ve, ok := d.(*veEstimate); ok {
+			mux.Handle("/ve-table.csv", ve)
+		}
+	}
+	mux.HandleFunc("/", func(w http.ResponseWriter, r *http.Request) {
+		if r.URL.Path != "/" {
+			http.NotFound(w, r)
+			return
+		}
+		fmt.Fprintf(w, "plenum %s for %s\n/metrics  Prometheus exposition\n\n%s\n", version, cfg.Vehicle, Safety)
+	})
+	ln, err := net.Listen("tcp", cfg.HTTP.Listen)
+	if err != nil {
+		return fmt.Errorf("http listen %s: %w", cfg.HTTP.Listen, err)
+	}
+	srv := &http.Server{Handler: mux, ReadHeaderTimeout: 5 * time.Second}
 	if rr != nil {
 		rr.publish = pub.PublishSummary
 		if !cfg.Record.Manual {
@@ -205,92 +196,48 @@ func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *s
 		fmt.Fprintf(stdout, "mqtt:     publishing to %s under %s/%s/\n", cfg.MQTT.Broker, cfg.MQTT.Prefix, cfg.Vehicle)
 	}
 
-	runCtx, cancel := context.WithCancel(ctx)
-	defer cancel()
-	var wg sync.WaitGroup
-	errs := make(chan error, len(srcs)+4)
-	start := func(name string, f func(context.Context) error, c context.Context) {
-		wg.Add(1)
-		go func() {
-			defer wg.Done()
-			if err := f(c); err != nil && c.Err() == nil {
-				log.Error("component stopped", "component", name, "err", err)
-				errs <- fmt.Errorf("%s: %w", name, err)
+	// Start in stages, from the last consumer to the sources; stop in
+	// reverse. The recorder stops before the pusher (its last lines go into
+	// the backlog) and the publisher after both (it publishes the summary).
+	st := []stage{
+		{{"http", func(ctx context.Context) error { return serveHTTP(ctx, srv, ln) }}},
+		{{"mqtt", func(ctx context.Context) error {
+			if err := pub.Run(ctx); err != nil {
+				// Recording and metrics go on without MQTT.
+				log.Error("mqtt publisher stopped; live values and events are not published until a restart", "err", err)
+				<-ctx.Done()
 			}
-		}()
+			return nil
+		}}, {"event metrics", evm.Run}},
 	}
-	// The pipeline and the publisher stop after the sources, so that what the
-	// sources took last is still processed and published.
-	pipeCtx, pipeCancel := context.WithCancel(context.Background())
-	defer pipeCancel()
-	pipeDone := make(chan struct{})
-	go func() { p.Run(pipeCtx); close(pipeDone) }()
-	pubCtx, pubCancel := context.WithCancel(context.Background())
-	defer pubCancel()
-	pubDone := make(chan struct{})
-	go func() { pub.Run(pubCtx); close(pubDone) }()
-	go func() {
-		if err := srv.Serve(ln); err != nil && !errors.Is(err, http.ErrServerClosed) {
-			errs <- fmt.Errorf("http: %w", err)
-		}
-	}()
-	for _, s := range srcs {
-		start(s.Name(), s.Run, runCtx)
-	}
-	recCtx, recCancel := context.WithCancel(context.Background())
-	defer recCancel()
-	recDone := make(chan struct{})
-	if rr != nil {
-		go func() { defer close(recDone); rr.Run(recCtx) }()
-	} else {
-		close(recDone)
-	}
-	pushCtx, pushCancel := context.WithCancel(context.Background())
-	defer pushCancel()
-	pushDone := make(chan struct{})
 	if pusher != nil {
-		go func() {
-			defer close(pushDone)
-			if err := pusher.Run(pushCtx); err != nil {
-				log.Error("push: the backlog could not be written at the end; unsent lines may be lost", "err", err)
-			}
-		}()
-	} else {
-		close(pushDone)
+		st = append(st, stage{{"push", pusher.Run}})
 	}
-	evCtx, evCancel := context.WithCancel(context.Background())
-	defer evCancel()
-	go evm.Run(evCtx)
-
-	var runErr error
-	select {
-	case <-ctx.Done():
-	case runErr = <-errs:
-	}
-	log.Info("shutting down")
-	cancel()
-	waitTimeout(&wg, shutdownGrace)
-	pipeCancel()
-	<-pipeDone
-	recCancel()
-	<-recDone
-	pushCancel() // after the recorder: its last lines are in the backlog
-	<-pushDone
 	if rr != nil {
-		time.Sleep(300 * time.Millisecond) // let the outbox hand the summary to a connected broker
+		st = append(st, stage{{"recorder", func(ctx context.Context) error { rr.Run(ctx); return nil }}})
 	}
-	pubCancel()
+	st = append(st, stage{{"pipeline", p.Run}})
+	var drivers stage
+	for _, s := range srcs {
+		drivers = append(drivers, part{s.name, func(ctx context.Context) error { return s.run(ctx, p) }})
+	}
+	return runStages(ctx, log, append(st, drivers)...)
+}
+
+// serveHTTP serves on ln until ctx ends, then shuts the server down,
+// giving requests in flight a second.
+func serveHTTP(ctx context.Context, srv *http.Server, ln net.Listener) error {
+	errc := make(chan error, 1)
+	go func() { errc <- srv.Serve(ln) }()
 	select {
-	case <-pubDone:
-	case <-time.After(shutdownGrace):
+	case err := <-errc:
+		return fmt.Errorf("http: %w", err)
+	case <-ctx.Done():
 	}
-	sctx, scancel := context.WithTimeout(context.Background(), time.Second)
+	sctx, cancel := context.WithTimeout(context.WithoutCancel(ctx), time.Second)
+	defer cancel()
 	srv.Shutdown(sctx)
-	scancel()
-	if brk != nil {
-		brk.Close()
-	}
-	return runErr
+	return nil
 }
 
 // readSecret reads a password or token file (surrounding white space
@@ -347,15 +294,6 @@ func pushMetrics(p *tsdbpush.Pusher) []prometheus.Collector {
 	}
 }
 
-func waitTimeout(wg *sync.WaitGroup, d time.Duration) {
-	done := make(chan struct{})
-	go func() { wg.Wait(); close(done) }()
-	select {
-	case <-done:
-	case <-time.After(d):
-	}
-}
-
 // quiet turns the broker's info chatter down to warnings.
 func quiet(log *slog.Logger) *slog.Logger {
 	return slog.New(levelFilter{log.Handler(), slog.LevelWarn})
@@ -394,27 +332,4 @@ func tlsConfig(m config.MQTT) (*tls.Config, error) {
 		tc.Certificates = []tls.Certificate{cert}
 	}
 	return tc, nil
-}
-
-// lateSink forwards samples to the pipeline once it exists.
-type lateSink struct {
-	mu sync.RWMutex
-	p  *pipeline.Pipeline
-}
-
-func (s *lateSink) set(p *pipeline.Pipeline) {
-	s.mu.Lock()
-	s.p = p
-	s.mu.Unlock()
-}
-
-// Put forwards a sample; before the pipeline exists it is dropped.
-func (s *lateSink) Put(x pipeline.Sample) bool {
-	s.mu.RLock()
-	p := s.p
-	s.mu.RUnlock()
-	if p == nil {
-		return false
-	}
-	return p.Put(x)
 }

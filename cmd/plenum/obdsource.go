@@ -24,7 +24,7 @@ type obdSource struct {
 	tr      *obdcan.Transport
 	poller  *obd.Poller
 	ids     []pipeline.ChannelID // by obd.ChannelIndex; noID where not polled
-	sink    serial.Sink
+	sink    serial.Sink          // given at Run
 	health  *pipeline.Health
 	reads   *atomic.Uint64
 	lastAny atomic.Int64
@@ -38,7 +38,8 @@ func (s *obdSource) Name() string { return s.name }
 
 // Run polls until ctx is done. A failing bus is retried by the poller; Run
 // also marks the source down after a second without readings.
-func (s *obdSource) Run(ctx context.Context) error {
+func (s *obdSource) Run(ctx context.Context, sink serial.Sink) error {
+	s.sink = sink
 	defer func() {
 		for _, c := range s.closers {
 			c()
@@ -76,20 +77,20 @@ func (s *obdSource) emit(_ obd.Addr, ch obd.ChannelIndex, v float64, t time.Time
 	}
 	s.reads.Add(1)
 	s.lastAny.Store(time.Now().UnixNano())
-	s.sink.Put(pipeline.Sample{Channel: s.ids[ch], Value: v, Time: t})
+	s.sink.PutFrame([]pipeline.Sample{{Channel: s.ids[ch], Value: v, Time: t}})
 }
 
 // buildOBDSources registers the polled OBD channels and builds the pollers.
 // A "sim" bus gets a virtual bus at the configured bit rate with a simulated
 // ECU answering from eng.
-func buildOBDSources(cfg *config.Config, reg *pipeline.Registry, sink serial.Sink, health *pipeline.HealthSet, eng *sim.Shared, log *slog.Logger) ([]source, error) {
+func buildOBDSources(cfg *config.Config, reg *pipeline.Registry, eng *sim.Shared, log *slog.Logger) ([]source, error) {
 	var out []source
 	for i, cc := range cfg.CAN {
 		format := obd.ID11
 		if cc.Format == "29bit" {
 			format = obd.ID29
 		}
-		s := &obdSource{name: cc.Name, sink: sink, health: health.Source(cc.Name), log: log}
+		s := &obdSource{name: cc.Name, health: pipeline.NewHealth("source", cc.Name), log: log}
 		s.reads = s.health.Counter("readings")
 		var pcs []obd.PollChannel
 		s.ids = make([]pipeline.ChannelID, obd.NumStandardChannels())
@@ -149,7 +150,7 @@ func buildOBDSources(cfg *config.Config, reg *pipeline.Registry, sink serial.Sin
 			return nil, fmt.Errorf("can[%d]: %w", i, err)
 		}
 		s.poller = p
-		out = append(out, s)
+		out = append(out, source{name: s.name, run: s.Run, health: s.health})
 	}
 	return out, nil
 }

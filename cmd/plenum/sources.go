@@ -4,30 +4,40 @@ import (
 	"context"
 	"fmt"
 	"log/slog"
-	"os"
-	"path/filepath"
 	"time"
-
-	"github.com/creack/pty"
 
 	"github.com/plenum-engine/plenum/cmd/plenum/config"
 	"github.com/plenum-engine/plenum/drivers/calib"
 	"github.com/plenum-engine/plenum/drivers/serial"
 	"github.com/plenum-engine/plenum/drivers/sim"
 	"github.com/plenum-engine/plenum/pipeline"
+	"github.com/plenum-engine/plenum/pipeline/promexport"
 )
+
+// source is one driver, built but not yet running: run feeds the pipeline
+// it is handed until ctx ends; health, when set, reports at scrape time.
+type source struct {
+	name   string
+	run    func(ctx context.Context, sink serial.Sink) error
+	health promexport.Reporter
+}
 
 // buildSources registers the configured input channels and builds their
 // drivers. With a simulator section, the first serial source reads a
-// pseudo-terminal that the simulated microcontroller writes.
-func buildSources(ctx context.Context, cfg *config.Config, reg *pipeline.Registry, sink serial.Sink, health *pipeline.HealthSet, log *slog.Logger) ([]source, func(), error) {
-	var srcs []source
+// pseudo-terminal that the simulated microcontroller writes. cleanup
+// releases what the build opened.
+func buildSources(cfg *config.Config, reg *pipeline.Registry, log *slog.Logger) (srcs []source, cleanup func(), err error) {
 	var cleanups []func()
-	cleanup := func() {
+	cleanup = func() {
 		for i := len(cleanups) - 1; i >= 0; i-- {
 			cleanups[i]()
 		}
 	}
+	defer func() {
+		if err != nil {
+			cleanup()
+		}
+	}()
 	var eng *sim.Shared
 	if cfg.Sim != nil {
 		p := sim.DefaultParams()
@@ -46,17 +56,15 @@ func buildSources(ctx context.Context, cfg *config.Config, reg *pipeline.Registr
 			}
 			id, err := reg.Register(ch)
 			if err != nil {
-				cleanup()
 				return nil, nil, fmt.Errorf("serial[%d].inputs[%d]: %w", i, j, err)
 			}
 			sensor, err := sensorFor(sc, in, ch)
 			if err != nil {
-				cleanup()
 				return nil, nil, fmt.Errorf("serial[%d].inputs[%d].calibration: %w", i, j, err)
 			}
 			inputs = append(inputs, serial.Input{Key: in.Field, Column: in.Column, Channel: id, Sensor: sensor})
 		}
-		h := health.Source(sc.Name)
+		h := pipeline.NewHealth("source", sc.Name)
 		format, sep := serial.Framed, byte(',')
 		if sc.Format == "delimited" {
 			format = serial.Delimited
@@ -69,35 +77,35 @@ func buildSources(ctx context.Context, cfg *config.Config, reg *pipeline.Registr
 				sep = ';'
 			}
 		}
-		dec, err := serial.NewDecoder(format, sep, inputs, sink, serial.NewCounters(h))
+		dec, err := serial.NewDecoder(format, sep, inputs, serial.NewCounters(h))
 		if err != nil {
-			cleanup()
 			return nil, nil, fmt.Errorf("serial[%d]: %w", i, err)
 		}
 		path := sc.Device
 		if cfg.Sim != nil && i == 0 {
-			dev, err := startSimDevice(cfg.Sim, eng, log)
+			dc := sim.DeviceConfig{TimeScale: cfg.Sim.TimeScale}
+			if cfg.Sim.FrameRateHz > 0 {
+				dc.Period = time.Duration(float64(time.Second) / cfg.Sim.FrameRateHz)
+			}
+			dev, err := sim.OpenDevice(eng, dc)
 			if err != nil {
-				cleanup()
 				return nil, nil, err
 			}
-			cleanups = append(cleanups, dev.close)
-			srcs = append(srcs, dev)
-			path = dev.path
+			cleanups = append(cleanups, func() { dev.Close() })
+			srcs = append(srcs, source{name: "simulator", run: func(ctx context.Context, _ serial.Sink) error { return dev.Run(ctx) }})
+			path = dev.Path()
 		}
-		srcs = append(srcs, serial.NewDriver(serial.Config{Name: sc.Name, Path: path, Baud: sc.Baud, Logger: log}, dec, h))
+		drv := serial.NewDriver(serial.Config{Name: sc.Name, Path: path, Baud: sc.Baud, Logger: log}, dec, h)
+		srcs = append(srcs, source{name: sc.Name, run: drv.Run, health: drv})
 	}
 	if eng != nil && len(cfg.Serial) == 0 {
-		cleanup()
 		return nil, nil, fmt.Errorf("simulator: needs a serial source to drive (the simulated microcontroller steps the engine)")
 	}
-	obds, err := buildOBDSources(cfg, reg, sink, health, eng, log)
+	obds, err := buildOBDSources(cfg, reg, eng, log)
 	if err != nil {
-		cleanup()
 		return nil, nil, err
 	}
-	srcs = append(srcs, obds...)
-	return srcs, cleanup, nil
+	return append(srcs, obds...), cleanup, nil
 }
 
 func sensorFor(sc config.Serial, in config.SerialInput, ch pipeline.Channel) (calib.Sensor, error) {
@@ -148,86 +156,4 @@ func sensorFor(sc config.Serial, in config.SerialInput, ch pipeline.Channel) (ca
 		s.Min, s.Max = lo, hi
 	}
 	return s, s.Validate()
-}
-
-// simDevice is the simulated microcontroller: it steps the engine model and
-// writes frames of the line protocol into the master side of a pty whose
-// slave the real serial driver opens by path.
-type simDevice struct {
-	path   string
-	master *os.File
-	dir    string
-	eng    *sim.Shared
-	sens   []sim.Sensor
-	period time.Duration
-	scale  float64
-	log    *slog.Logger
-}
-
-func startSimDevice(sc *config.Simulator, eng *sim.Shared, log *slog.Logger) (*simDevice, error) {
-	master, tty, err := pty.Open()
-	if err != nil {
-		return nil, fmt.Errorf("simulator: open pseudo-terminal: %w", err)
-	}
-	name := tty.Name()
-	tty.Close()
-	// A stable path, like /dev/serial/by-id, that points at the pty.
-	dir, err := os.MkdirTemp("", "plenum-sim-")
-	if err != nil {
-		master.Close()
-		return nil, fmt.Errorf("simulator: %w", err)
-	}
-	path := filepath.Join(dir, "usb-plenum-sim-mcu")
-	if err := os.Symlink(name, path); err != nil {
-		master.Close()
-		os.RemoveAll(dir)
-		return nil, fmt.Errorf("simulator: %w", err)
-	}
-	scale := sc.TimeScale
-	if scale <= 0 {
-		scale = 1
-	}
-	period := 10 * time.Millisecond
-	if sc != nil && sc.FrameRateHz > 0 {
-		period = time.Duration(float64(time.Second) / sc.FrameRateHz)
-	}
-	return &simDevice{path: path, master: master, dir: dir, eng: eng, sens: sim.DemoSensors(), scale: scale, log: log, period: period}, nil
-}
-
-func (d *simDevice) Name() string { return "simulator" }
-
-func (d *simDevice) close() {
-	d.master.Close()
-	os.RemoveAll(d.dir)
-}
-
-// Run writes a frame every period of real time (10 ms: 100 Hz by default),
-// each advancing the model by the period × the time scale; the device
-// counter runs in real time.
-func (d *simDevice) Run(ctx context.Context) error {
-	period := d.period
-	tick := time.NewTicker(period)
-	defer tick.Stop()
-	readings := make([]serial.Reading, len(d.sens))
-	var buf []byte
-	var seq uint32
-	start := time.Now()
-	step := time.Duration(float64(period) * d.scale)
-	for {
-		select {
-		case <-ctx.Done():
-			return ctx.Err()
-		case <-tick.C:
-		}
-		st := d.eng.Step(step)
-		for i, s := range d.sens {
-			readings[i] = serial.NewReading(s.Field, s.Raw(st), !s.Counts)
-		}
-		seq++
-		ms := uint32(time.Since(start) / time.Millisecond)
-		buf = serial.AppendFrame(buf[:0], seq, ms, readings)
-		if _, err := d.master.Write(buf); err != nil {
-			return fmt.Errorf("simulator: write pty: %w", err)
-		}
-	}
 }

@@ -29,15 +29,16 @@ type Input struct {
 	Sensor  calib.Sensor
 }
 
-// Sink takes the decoded samples. Put is called from the driver's goroutine
-// and must not block for long; its result is ignored (a sink that drops a
-// sample counts that itself).
+// Sink takes the decoded samples, one frame per line: the readings of one
+// line at one time. PutFrame is called from the driver's goroutine, must not
+// block for long and must copy what it keeps (the slice is reused); its
+// result is ignored (a sink that drops a frame counts that itself).
 type Sink interface {
-	Put(pipeline.Sample) bool
+	PutFrame([]pipeline.Sample) bool
 }
 
-// Counters are a source's health counters, shared with a pipeline.Health so
-// that they are exported with the other sources' metrics. All are updated
+// Counters are a source's health counters, kept in a pipeline.Health that
+// the driver reports at scrape time. All are updated
 // atomically; read them together with Snapshot.
 type Counters struct {
 	Frames, BadChecksum, Truncated, Malformed, UnknownField, OutOfRange, SensorFault, SeqGaps, Overlong *atomic.Uint64
@@ -108,8 +109,8 @@ type Decoder struct {
 	byKey    map[string]int
 	byCol    []int          // column index (0-based) → input index, -1 if unmapped
 	tables   [][]calibrated // per input: every count calibrated in advance, or nil
-	sink     Sink
 	c        Counters
+	out      []pipeline.Sample // the current line's samples
 	frame    Frame
 	nums     [MaxReadings]float64
 	order    [MaxReadings]int16 // input index + 1 last seen at each reading position
@@ -119,14 +120,12 @@ type Decoder struct {
 	anchored bool
 }
 
-// NewDecoder checks the inputs and returns a decoder writing to sink.
-func NewDecoder(format Format, sep byte, inputs []Input, sink Sink, c Counters) (*Decoder, error) {
-	if sink == nil {
-		return nil, errors.New("serial: nil sink")
-	}
+// NewDecoder checks the inputs and returns a decoder.
+func NewDecoder(format Format, sep byte, inputs []Input, c Counters) (*Decoder, error) {
 	c.fill()
 	inputs = append([]Input(nil), inputs...)
-	d := &Decoder{format: format, sep: sep, inputs: inputs, byKey: map[string]int{}, sink: sink, c: c}
+	d := &Decoder{format: format, sep: sep, inputs: inputs, byKey: map[string]int{}, c: c,
+		out: make([]pipeline.Sample, 0, MaxReadings)}
 	for i, in := range inputs {
 		if err := in.Sensor.Validate(); err != nil {
 			return nil, fmt.Errorf("input %d (%s%d): %w", i, in.Key, in.Column, err)
@@ -166,9 +165,19 @@ func (d *Decoder) Reset() { d.haveSeq, d.anchored = false, false }
 // Counters returns the decoder's counters.
 func (d *Decoder) Counters() Counters { return d.c }
 
-// Line decodes one line received at host time now. Readings already decoded
-// from a line are kept even when a later field of it is unknown.
-func (d *Decoder) Line(line []byte, now time.Time) error {
+// Line decodes one line received at host time now and hands its readings to
+// sink as one frame. Readings decoded from a line are kept even when another
+// field of it is unknown.
+func (d *Decoder) Line(line []byte, now time.Time, sink Sink) error {
+	d.out = d.out[:0]
+	err := d.line(line, now)
+	if len(d.out) > 0 {
+		sink.PutFrame(d.out)
+	}
+	return err
+}
+
+func (d *Decoder) line(line []byte, now time.Time) error {
 	line = trimSpace(line)
 	if len(line) == 0 {
 		return nil
@@ -332,5 +341,5 @@ func (d *Decoder) put(in *Input, v float64, q pipeline.Quality, t time.Time) {
 	case pipeline.SensorFault:
 		d.c.SensorFault.Add(1)
 	}
-	d.sink.Put(pipeline.Sample{Channel: in.Channel, Quality: q, Time: t, Value: v})
+	d.out = append(d.out, pipeline.Sample{Channel: in.Channel, Quality: q, Time: t, Value: v})
 }

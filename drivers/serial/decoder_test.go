@@ -16,13 +16,15 @@ import (
 )
 
 type collect struct {
-	mu sync.Mutex
-	s  []pipeline.Sample
+	mu     sync.Mutex
+	s      []pipeline.Sample
+	frames int // PutFrame calls
 }
 
-func (c *collect) Put(s pipeline.Sample) bool {
+func (c *collect) PutFrame(ss []pipeline.Sample) bool {
 	c.mu.Lock()
-	c.s = append(c.s, s)
+	c.s = append(c.s, ss...)
+	c.frames++
 	c.mu.Unlock()
 	return true
 }
@@ -38,16 +40,24 @@ func mapSensor() calib.Sensor {
 		FaultBelowMV: 100, FaultAboveMV: 4900, Min: 20000, Max: 250000, ADCMax: 1023, RefMV: 5000}
 }
 
-func newTestDecoder(t testing.TB, sink Sink) (*Decoder, *pipeline.Health) {
-	h := pipeline.NewHealthSet().Source("mcu")
+// testDecoder is a Decoder bound to one sink, as the driver binds it.
+type testDecoder struct {
+	*Decoder
+	sink Sink
+}
+
+func (d testDecoder) Line(line []byte, now time.Time) error { return d.Decoder.Line(line, now, d.sink) }
+
+func newTestDecoder(t testing.TB, sink Sink) (testDecoder, *pipeline.Health) {
+	h := pipeline.NewHealth("source", "mcu")
 	d, err := NewDecoder(Framed, 0, []Input{
 		{Key: "a0", Channel: 0, Sensor: mapSensor()},
 		{Key: "a1", Channel: 1, Sensor: calib.Sensor{Curve: calib.NTCBeta{Divider: calib.Divider{PullupOhm: 2490, RefMV: 5000}, R0Ohm: 2500, T0C: 25, Beta: 3950}, ADCMax: 1023, RefMV: 5000}},
-	}, sink, NewCounters(h))
+	}, NewCounters(h))
 	if err != nil {
 		t.Fatal(err)
 	}
-	return d, h
+	return testDecoder{d, sink}, h
 }
 
 func count(h *pipeline.Health, name string) uint64 { return h.Counter(name).Load() }
@@ -121,18 +131,18 @@ func TestDeviceClockMapping(t *testing.T) {
 
 func TestDelimitedDecoder(t *testing.T) {
 	var c collect
-	h := pipeline.NewHealthSet().Source("sketch")
-	d, err := NewDecoder(Delimited, ',', []Input{{Column: 2, Channel: 5, Sensor: mapSensor()}}, &c, NewCounters(h))
+	h := pipeline.NewHealth("source", "sketch")
+	d, err := NewDecoder(Delimited, ',', []Input{{Column: 2, Channel: 5, Sensor: mapSensor()}}, NewCounters(h))
 	if err != nil {
 		t.Fatal(err)
 	}
-	if err := d.Line([]byte("17,2525,99\r"), time.Unix(1, 0)); err != nil {
+	if err := d.Line([]byte("17,2525,99\r"), time.Unix(1, 0), &c); err != nil {
 		t.Fatal(err)
 	}
 	if len(c.s) != 1 || c.s[0].Channel != 5 || math.Abs(c.s[0].Value-160000) > 1e-6 {
 		t.Fatalf("samples %+v", c.s)
 	}
-	if err := d.Line([]byte("17,abc"), time.Unix(1, 0)); err == nil || count(h, "malformed_lines") != 1 {
+	if err := d.Line([]byte("17,abc"), time.Unix(1, 0), &c); err == nil || count(h, "malformed_lines") != 1 {
 		t.Fatalf("bad delimited line: err %v, counted %d", err, count(h, "malformed_lines"))
 	}
 }
@@ -158,10 +168,10 @@ func TestPtyDriverSurvivesVanishingDevice(t *testing.T) {
 		return master
 	}
 	master := plug()
-	drv := NewDriver(Config{Name: "mcu", Path: link, Baud: 115200, MinBackoff: 20 * time.Millisecond, MaxBackoff: 100 * time.Millisecond}, dec, h)
+	drv := NewDriver(Config{Name: "mcu", Path: link, Baud: 115200, MinBackoff: 20 * time.Millisecond, MaxBackoff: 100 * time.Millisecond}, dec.Decoder, h)
 	ctx, cancel := contextWithCancel()
 	done := make(chan error, 1)
-	go func() { done <- drv.Run(ctx) }()
+	go func() { done <- drv.Run(ctx, &c) }()
 	defer func() { cancel(); <-done }()
 
 	write := func(m *os.File, seq uint32) {
@@ -205,24 +215,24 @@ func waitFor(t *testing.T, what string, cond func() bool) {
 func TestMissingDeviceAtStartIsRetried(t *testing.T) {
 	var c collect
 	dec, h := newTestDecoder(t, &c)
-	drv := NewDriver(Config{Name: "mcu", Path: filepath.Join(t.TempDir(), "absent"), MinBackoff: 10 * time.Millisecond, MaxBackoff: 20 * time.Millisecond}, dec, h)
+	drv := NewDriver(Config{Name: "mcu", Path: filepath.Join(t.TempDir(), "absent"), MinBackoff: 10 * time.Millisecond, MaxBackoff: 20 * time.Millisecond}, dec.Decoder, h)
 	ctx, cancel := contextWithTimeout(200 * time.Millisecond)
 	defer cancel()
-	if err := drv.Run(ctx); err == nil || h.Up() {
+	if err := drv.Run(ctx, &c); err == nil || h.Up() {
 		t.Fatalf("Run = %v, up %v: want the context's error and down", err, h.Up())
 	}
 }
 
 type nullSink struct{ n int }
 
-func (s *nullSink) Put(pipeline.Sample) bool { s.n++; return true }
+func (s *nullSink) PutFrame(ss []pipeline.Sample) bool { s.n += len(ss); return true }
 
 func BenchmarkParseCalibrate(b *testing.B) {
 	// The example line of PROTOCOL.md: a0 in counts (MAP), a1 in mV (MAP),
 	// a3 in counts (NTC, Beta: one logarithm).
 	var sink nullSink
 	d, err := NewDecoder(Framed, 0, []Input{{Key: "a0", Sensor: mapSensor()}, {Key: "a1", Channel: 1, Sensor: mapSensor()},
-		{Key: "a3", Channel: 2, Sensor: ntcSensor()}}, &sink, NewCounters(pipelineHealth()))
+		{Key: "a3", Channel: 2, Sensor: ntcSensor()}}, NewCounters(pipelineHealth()))
 	if err != nil {
 		b.Fatal(err)
 	}
@@ -231,14 +241,14 @@ func BenchmarkParseCalibrate(b *testing.B) {
 	b.ReportAllocs()
 	b.ResetTimer()
 	for i := 0; i < b.N; i++ {
-		if err := d.Line(line, now); err != nil {
+		if err := d.Line(line, now, &sink); err != nil {
 			b.Fatal(err)
 		}
 	}
 	b.ReportMetric(float64(b.N)/b.Elapsed().Seconds(), "lines/s")
 }
 
-func pipelineHealth() *pipeline.Health { return pipeline.NewHealthSet().Source("bench") }
+func pipelineHealth() *pipeline.Health { return pipeline.NewHealth("source", "bench") }
 
 func ntcSensor() calib.Sensor {
 	return calib.Sensor{Curve: calib.NTCBeta{Divider: calib.Divider{PullupOhm: 2490, RefMV: 5000}, R0Ohm: 2500, T0C: 25, Beta: 3950},
@@ -247,13 +257,13 @@ func ntcSensor() calib.Sensor {
 
 func TestDelimitedColumnsInCounts(t *testing.T) {
 	var c collect
-	h := pipeline.NewHealthSet().Source("sketch")
+	h := pipeline.NewHealth("source", "sketch")
 	d, err := NewDecoder(Delimited, '\t', []Input{{Column: 1, Channel: 1, Sensor: mapSensor()},
-		{Column: 3, Channel: 2, Counts: true, Sensor: ntcSensor()}}, &c, NewCounters(h))
+		{Column: 3, Channel: 2, Counts: true, Sensor: ntcSensor()}}, NewCounters(h))
 	if err != nil {
 		t.Fatal(err)
 	}
-	if err := d.Line([]byte("2525\t9\t511.5"), time.Unix(1, 0)); err != nil {
+	if err := d.Line([]byte("2525\t9\t511.5"), time.Unix(1, 0), &c); err != nil {
 		t.Fatal(err)
 	}
 	// 511.5 of 1023 counts is mid-scale: R = Rpu = 2490 Ω, a little under
@@ -278,7 +288,7 @@ func TestCountTableIsExact(t *testing.T) {
 		t.Error("a linear input got a table")
 	}
 	var c collect
-	d, err := NewDecoder(Framed, 0, []Input{in}, &c, NewCounters(pipeline.NewHealthSet().Source("x")))
+	d, err := NewDecoder(Framed, 0, []Input{in}, NewCounters(pipeline.NewHealth("source", "x")))
 	if err != nil {
 		t.Fatal(err)
 	}
@@ -287,6 +297,7 @@ func TestCountTableIsExact(t *testing.T) {
 		d.emit(0, float64(n), false, now)
 	}
 	d.emit(0, 511.5, false, now)
+	c.PutFrame(d.out)
 	if len(c.s) != 1025 {
 		t.Fatalf("%d samples", len(c.s))
 	}
@@ -298,6 +309,24 @@ func TestCountTableIsExact(t *testing.T) {
 		v, q := s.Apply(s.CountsToMV(counts))
 		if got.Quality != q || math.Float64bits(got.Value) != math.Float64bits(v) && !(math.IsNaN(v) && math.IsNaN(got.Value)) {
 			t.Fatalf("count %g: %v %v, direct %v %v", counts, got.Value, got.Quality, v, q)
+		}
+	}
+}
+
+// Each line reaches the sink as one frame holding all its readings at one
+// time, even when the line also carries a field no input maps.
+func TestLineIsOneFrame(t *testing.T) {
+	var c collect
+	d, _ := newTestDecoder(t, &c)
+	now := time.Unix(100, 0)
+	d.Line([]byte(frameLine("P1,1,1000,a0=2525m,a1=512")), now)
+	d.Line([]byte(frameLine("P1,2,1010,a0=2525m,zz=1,a1=512")), now.Add(10*time.Millisecond))
+	if c.frames != 2 || len(c.s) != 4 {
+		t.Fatalf("%d frames, %d samples; want 2 frames of 2", c.frames, len(c.s))
+	}
+	for i := 0; i < 4; i += 2 {
+		if !c.s[i].Time.Equal(c.s[i+1].Time) {
+			t.Errorf("frame %d: readings at %v and %v", i/2, c.s[i].Time, c.s[i+1].Time)
 		}
 	}
 }

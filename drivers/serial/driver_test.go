@@ -244,7 +244,7 @@ func TestDriverOverlongAndSplitLines(t *testing.T) {
 	port := &fakePort{}
 	var logs recordHandler
 	drv := NewDriver(Config{Name: "mcu", Path: filepath.Join(t.TempDir(), "none"), Logger: slog.New(&logs),
-		Open: func(string, int) (Port, error) { return port, nil }}, dec, h)
+		Open: func(string, int) (Port, error) { return port, nil }}, dec.Decoder, h)
 	good := frameLine("P1,1,10,a0=2525m") + "\n"
 	port.push(good[:7]) // a line split across reads
 	port.push(good[7:])
@@ -253,7 +253,7 @@ func TestDriverOverlongAndSplitLines(t *testing.T) {
 	port.push("\r\n" + frameLine("P1,2,20,a0=2525m") + "\r\n")
 	ctx, cancel := context.WithCancel(context.Background())
 	done := make(chan error, 1)
-	go func() { done <- drv.Run(ctx) }()
+	go func() { done <- drv.Run(ctx, &c) }()
 	waitFor(t, "two frames", func() bool { return drv.Stats().Frames == 2 })
 	st := drv.Stats()
 	if st.Overlong != 2 || !st.Up || c.len() != 2 {
@@ -276,11 +276,11 @@ func TestDriverDownWhenSilent(t *testing.T) {
 	dec, h := newTestDecoder(t, &c)
 	port := &fakePort{}
 	drv := NewDriver(Config{Name: "mcu", Path: filepath.Join(t.TempDir(), "none"), UpTimeout: 200 * time.Millisecond,
-		Open: func(string, int) (Port, error) { return port, nil }}, dec, h)
+		Open: func(string, int) (Port, error) { return port, nil }}, dec.Decoder, h)
 	port.push(frameLine("P1,1,10,a0=2525m") + "\n")
 	ctx, cancel := context.WithCancel(context.Background())
 	defer cancel()
-	go drv.Run(ctx)
+	go drv.Run(ctx, &c)
 	waitFor(t, "up", drv.Up)
 	// Garbage keeps bytes flowing but is not a good frame.
 	for i := 0; i < 30 && drv.Up(); i++ {
@@ -322,10 +322,10 @@ func TestPtyDeviceNodeReplaced(t *testing.T) {
 	dec, h := newTestDecoder(t, &c)
 	m1 := plugPty(t, link)
 	defer m1.Close()
-	drv := NewDriver(Config{Name: "mcu", Path: link, Baud: 115200, MinBackoff: 20 * time.Millisecond, MaxBackoff: 100 * time.Millisecond}, dec, h)
+	drv := NewDriver(Config{Name: "mcu", Path: link, Baud: 115200, MinBackoff: 20 * time.Millisecond, MaxBackoff: 100 * time.Millisecond}, dec.Decoder, h)
 	ctx, cancel := context.WithCancel(context.Background())
 	done := make(chan error, 1)
-	go func() { done <- drv.Run(ctx) }()
+	go func() { done <- drv.Run(ctx, &c) }()
 	defer func() { cancel(); <-done }()
 	seq := uint32(0)
 	send := func(m *os.File) {
@@ -343,9 +343,9 @@ func TestPtyDeviceNodeReplaced(t *testing.T) {
 func TestPtySamplesAreCalibrated(t *testing.T) {
 	link := filepath.Join(t.TempDir(), "mcu")
 	var c collect
-	h := pipeline.NewHealthSet().Source("mcu")
+	h := pipeline.NewHealth("source", "mcu")
 	dec, err := NewDecoder(Framed, 0, []Input{{Key: "a0", Channel: 7, Sensor: mapSensor()}, {Key: "a3", Channel: 9,
-		Sensor: calib.Sensor{Curve: calib.Linear{MV0: 0, Out0: 0, MV1: 5000, Out1: 1}, ADCMax: 1023, RefMV: 5000}}}, &c, NewCounters(h))
+		Sensor: calib.Sensor{Curve: calib.Linear{MV0: 0, Out0: 0, MV1: 5000, Out1: 1}, ADCMax: 1023, RefMV: 5000}}}, NewCounters(h))
 	if err != nil {
 		t.Fatal(err)
 	}
@@ -358,7 +358,7 @@ func TestPtySamplesAreCalibrated(t *testing.T) {
 	drv := NewDriver(Config{Name: "mcu", Path: link, Baud: 57600, Now: now}, dec, h)
 	ctx, cancel := context.WithCancel(context.Background())
 	done := make(chan error, 1)
-	go func() { done <- drv.Run(ctx) }()
+	go func() { done <- drv.Run(ctx, &c) }()
 	defer func() { cancel(); <-done }()
 	m.Write(AppendFrame(nil, 1, 100, []Reading{NewReading("a0", 2525, true), NewReading("a3", 1023, false)}))
 	waitFor(t, "two samples", func() bool { return c.len() >= 2 })

@@ -68,7 +68,7 @@ func BenchmarkParseCalibrateDemo(b *testing.B) {
 			rs = append(rs, NewReading(key, 1000+float64(i*13), true))
 		}
 	}
-	d, err := NewDecoder(Framed, 0, inputs, &sink, NewCounters(h))
+	d, err := NewDecoder(Framed, 0, inputs, NewCounters(h))
 	if err != nil {
 		b.Fatal(err)
 	}
@@ -79,7 +79,7 @@ func BenchmarkParseCalibrateDemo(b *testing.B) {
 	b.ReportAllocs()
 	b.ResetTimer()
 	for i := 0; i < b.N; i++ {
-		if err := d.Line(line, now); err != nil {
+		if err := d.Line(line, now, &sink); err != nil {
 			b.Fatal(err)
 		}
 	}

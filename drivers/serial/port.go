@@ -98,7 +98,7 @@ func NewDriver(cfg Config, dec *Decoder, health *pipeline.Health) *Driver {
 		cfg.LogEvery = 10 * time.Second
 	}
 	if health == nil {
-		health = pipeline.NewHealthSet().Source(cfg.Name)
+		health = pipeline.NewHealth("source", cfg.Name)
 	}
 	log := cfg.Logger.With("source", cfg.Name, "device", cfg.Path)
 	return &Driver{cfg: cfg, dec: dec, health: health, log: log, c: dec.c,
@@ -119,10 +119,15 @@ func (d *Driver) Stats() Stats {
 	return s
 }
 
-// Run reads until ctx is done. A missing or vanished device is retried with
-// exponential backoff from MinBackoff to MaxBackoff (reset once a session
-// delivers a frame); Run returns only ctx's error.
-func (d *Driver) Run(ctx context.Context) error {
+// Report gives the source's health: up, and the counters named in
+// PROTOCOL.md.
+func (d *Driver) Report() pipeline.HealthReport { return d.health.Report() }
+
+// Run reads until ctx is done and hands every decoded line to sink as one
+// frame. A missing or vanished device is retried with exponential backoff
+// from MinBackoff to MaxBackoff (reset once a session delivers a frame); Run
+// returns only ctx's error.
+func (d *Driver) Run(ctx context.Context, sink Sink) error {
 	backoff := d.cfg.MinBackoff
 	opened := false
 	for {
@@ -137,7 +142,7 @@ func (d *Driver) Run(ctx context.Context) error {
 			opened = true
 			d.log.Info("device open")
 			d.dec.Reset()
-			delivered, err := d.session(ctx, p)
+			delivered, err := d.session(ctx, p, sink)
 			d.health.SetUp(false)
 			if ctx.Err() != nil {
 				return ctx.Err()
@@ -160,7 +165,7 @@ func (d *Driver) Run(ctx context.Context) error {
 
 // session reads from an open port and closes it. Cancelling ctx closes the
 // port, which ends a blocked Read.
-func (d *Driver) session(ctx context.Context, p Port) (delivered bool, err error) {
+func (d *Driver) session(ctx context.Context, p Port, sink Sink) (delivered bool, err error) {
 	var once sync.Once
 	closePort := func() { once.Do(func() { p.Close() }) }
 	stop := context.AfterFunc(ctx, closePort)
@@ -168,12 +173,12 @@ func (d *Driver) session(ctx context.Context, p Port) (delivered bool, err error
 		stop()
 		closePort()
 	}()
-	return d.read(ctx, p)
+	return d.read(ctx, p, sink)
 }
 
 // read consumes lines until the port fails, the device node disappears, or
 // ctx ends. delivered says whether any good frame arrived.
-func (d *Driver) read(ctx context.Context, p Port) (delivered bool, err error) {
+func (d *Driver) read(ctx context.Context, p Port, sink Sink) (delivered bool, err error) {
 	st0, statErr := os.Stat(d.cfg.Path)
 	buf := make([]byte, 4096)
 	line := make([]byte, 0, MaxLine)
@@ -221,7 +226,7 @@ func (d *Driver) read(ctx context.Context, p Port) (delivered bool, err error) {
 					overlong = false
 					d.c.Overlong.Add(1)
 					d.burst.warn(now, "overlong", "discarded an overlong line", nil)
-				} else if err := d.dec.Line(line, now); err != nil {
+				} else if err := d.dec.Line(line, now, sink); err != nil {
 					d.burst.warn(now, lineKind(err), "bad line", err)
 				}
 				line = line[:0]

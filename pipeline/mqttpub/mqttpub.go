@@ -175,6 +175,16 @@ func (p *Publisher) Stats() *Stats { return &p.stats }
 // Connected reports whether the client is connected to the broker.
 func (p *Publisher) Connected() bool { return p.client.IsConnectionOpen() }
 
+// Report gives the publisher's health: connected, and its counts of
+// messages published, live values coalesced and publishes that failed.
+func (p *Publisher) Report() pipeline.HealthReport {
+	return pipeline.HealthReport{Kind: "mqtt", Name: "publisher", Up: p.Connected(), Counters: []pipeline.NamedCount{
+		{Name: "published_messages", Value: p.stats.Published.Load()},
+		{Name: "coalesced_values", Value: p.stats.Coalesced.Load()},
+		{Name: "failed_publishes", Value: p.stats.Failed.Load()},
+	}}
+}
+
 func (p *Publisher) statusPayload(state string) []byte {
 	b, _ := json.Marshal(map[string]string{"state": state, "vehicle": p.cfg.Vehicle, "version": p.cfg.Version,
 		"notice": "advisory only, not a safety system"})
@@ -207,10 +217,11 @@ func (p *Publisher) Run(ctx context.Context) error {
 		}
 	case <-time.After(100 * time.Millisecond):
 	}
+	drained := make(chan struct{})
 	if p.cfg.Outbox != nil {
-		octx, ocancel := context.WithCancel(ctx)
-		defer ocancel()
-		go p.drainOutbox(octx)
+		go func() { defer close(drained); p.drainOutbox(ctx) }()
+	} else {
+		close(drained)
 	}
 	minGap := time.Duration(float64(time.Second) / p.cfg.MaxRate)
 	tick := time.NewTicker(minGap)
@@ -225,6 +236,12 @@ func (p *Publisher) Run(ctx context.Context) error {
 		select {
 		case <-ctx.Done():
 			p.flushEvents(p.sub, evs)
+			<-drained
+			if p.cfg.Outbox != nil {
+				// What the shutdown itself queued (a run's summary): hand it to a
+				// connected broker now rather than at the next start.
+				p.publishOutbox(time.Now().Add(time.Second))
+			}
 			if p.client.IsConnectionOpen() {
 				t := p.client.Publish(p.Topic("status"), 1, true, p.statusPayload("offline"))
 				t.WaitTimeout(time.Second)
@@ -384,27 +401,39 @@ func (p *Publisher) send(topic string, retain bool, payload []byte) {
 	p.stats.Published.Add(1)
 }
 
-// drainOutbox publishes the outbox in order while connected, one message
-// at a time, acknowledging each once the broker has confirmed it.
+// publishOutbox publishes the outbox in order while connected, one message
+// at a time, acknowledging each once the broker has confirmed it, until it
+// is empty, a publish fails or the deadline (if not zero) has passed.
+func (p *Publisher) publishOutbox(deadline time.Time) {
+	o := p.cfg.Outbox
+	for p.client.IsConnectionOpen() && (deadline.IsZero() || time.Now().Before(deadline)) {
+		m, ok := o.Head()
+		if !ok {
+			return
+		}
+		wait := 5 * time.Second
+		if !deadline.IsZero() {
+			wait = time.Until(deadline)
+		}
+		tok := p.client.Publish(m.Topic, 1, m.Retain, m.Payload)
+		if !tok.WaitTimeout(wait) || tok.Error() != nil {
+			return // retried later
+		}
+		if err := o.Ack(m.Seq); err != nil {
+			p.log.Error("mqtt outbox: ack", "err", err)
+		}
+		p.stats.Published.Add(1)
+	}
+}
+
+// drainOutbox publishes the outbox whenever it grows and every 250 ms, until
+// ctx ends.
 func (p *Publisher) drainOutbox(ctx context.Context) {
 	o := p.cfg.Outbox
 	tick := time.NewTicker(250 * time.Millisecond)
 	defer tick.Stop()
 	for {
-		for p.client.IsConnectionOpen() {
-			m, ok := o.Head()
-			if !ok {
-				break
-			}
-			tok := p.client.Publish(m.Topic, 1, m.Retain, m.Payload)
-			if !tok.WaitTimeout(5*time.Second) || tok.Error() != nil {
-				break // retried on the next tick
-			}
-			if err := o.Ack(m.Seq); err != nil {
-				p.log.Error("mqtt outbox: ack", "err", err)
-			}
-			p.stats.Published.Add(1)
-		}
+		p.publishOutbox(time.Time{})
 		select {
 		case <-ctx.Done():
 			return

@@ -5,8 +5,10 @@
 // labels source and sensor (both bounded: they come from configuration, never
 // from data). A channel whose value is older than its maximum age, or whose
 // quality is not ok, is left out of the scrape instead of showing its last
-// value forever. Alongside: plenum_source_up, plenum_source_<counter>_total
-// per source, the pipeline's sample counters and each consumer's drops.
+// value forever. Alongside: every part's health as it reports it at scrape
+// time (plenum_<kind>_up, plenum_<kind>_<counter>_total and
+// plenum_<kind>_<gauge>, labelled <kind>="<name>": plenum_source_up{source="mcu"}),
+// the pipeline's sample counters and each consumer's drops.
 package promexport
 
 import (
@@ -45,29 +47,36 @@ func SensorLabel(c pipeline.Channel) string {
 
 var metricRE = regexp.MustCompile(`^[a-zA-Z_:][a-zA-Z0-9_:]*$`)
 
-// Collector is a prometheus.Collector over a pipeline.
+// Reporter is a part (a source or a publisher) that reports its health when
+// metrics are scraped.
+type Reporter interface {
+	Report() pipeline.HealthReport
+}
+
+// Collector is a prometheus.Collector over a pipeline and the parts around it.
 type Collector struct {
 	p       *pipeline.Pipeline
 	now     func() time.Time
-	up      *prometheus.Desc
+	parts   []Reporter
 	samples *prometheus.Desc
 	dropped *prometheus.Desc
 	descs   map[string]*prometheus.Desc
-	mu      sync.Mutex // guards counter: scrapes may run concurrently
-	counter map[string]*prometheus.Desc
+	mu      sync.Mutex // guards health: scrapes may run concurrently
+	health  map[string]*prometheus.Desc
 }
 
-// New returns a collector over p; now is the clock used for freshness.
-// It fails when two channels would share a metric name and label set.
-func New(p *pipeline.Pipeline, now func() time.Time) (*Collector, error) {
+// New returns a collector over p and the health of parts; now is the clock
+// used for freshness. It fails when two channels would share a metric name
+// and label set.
+func New(p *pipeline.Pipeline, now func() time.Time, parts ...Reporter) (*Collector, error) {
 	c := &Collector{
 		p:       p,
 		now:     now,
-		up:      prometheus.NewDesc("plenum_source_up", "1 while the source is delivering, 0 otherwise.", []string{"source"}, nil),
+		parts:   parts,
 		samples: prometheus.NewDesc("plenum_pipeline_samples_total", "Samples through the pipeline by stage.", []string{"stage"}, nil),
 		dropped: prometheus.NewDesc("plenum_consumer_dropped_samples_total", "Samples a slow consumer did not take.", []string{"consumer"}, nil),
 		descs:   map[string]*prometheus.Desc{},
-		counter: map[string]*prometheus.Desc{},
+		health:  map[string]*prometheus.Desc{},
 	}
 	seen := map[string]string{}
 	for _, ch := range p.Registry().Channels() {
@@ -115,15 +124,20 @@ func (c *Collector) Collect(out chan<- prometheus.Metric) {
 		}
 		out <- prometheus.MustNewConstMetric(d, prometheus.GaugeValue, v.Value, ch.Source, SensorLabel(ch))
 	}
-	for _, h := range c.p.Health().All() {
+	for _, part := range c.parts {
+		r := part.Report()
 		up := 0.0
-		if h.Up() {
+		if r.Up {
 			up = 1
 		}
-		out <- prometheus.MustNewConstMetric(c.up, prometheus.GaugeValue, up, h.Name())
-		for _, nc := range h.Counters() {
-			d := c.counterDesc(nc.Name)
-			out <- prometheus.MustNewConstMetric(d, prometheus.CounterValue, float64(nc.Value), h.Name())
+		out <- prometheus.MustNewConstMetric(c.healthDesc(r.Kind, "up", "1 while the "+r.Kind+" is up (delivering or connected), 0 otherwise."), prometheus.GaugeValue, up, r.Name)
+		for _, nc := range r.Counters {
+			d := c.healthDesc(r.Kind, nc.Name+"_total", r.Kind+" counter: "+nc.Name+".")
+			out <- prometheus.MustNewConstMetric(d, prometheus.CounterValue, float64(nc.Value), r.Name)
+		}
+		for _, g := range r.Gauges {
+			d := c.healthDesc(r.Kind, g.Name, r.Kind+" level: "+g.Name+".")
+			out <- prometheus.MustNewConstMetric(d, prometheus.GaugeValue, g.Value, r.Name)
 		}
 	}
 	pc := c.p.Counters()
@@ -151,13 +165,15 @@ func Handler(c *Collector, extra ...prometheus.Collector) (http.Handler, error) 
 	return promhttp.HandlerFor(reg, promhttp.HandlerOpts{ErrorHandling: promhttp.ContinueOnError}), nil
 }
 
-func (c *Collector) counterDesc(name string) *prometheus.Desc {
+// healthDesc returns the description of plenum_<kind>_<suffix>{<kind>}.
+func (c *Collector) healthDesc(kind, suffix, help string) *prometheus.Desc {
+	name := "plenum_" + kind + "_" + suffix
 	c.mu.Lock()
 	defer c.mu.Unlock()
-	d, ok := c.counter[name]
+	d, ok := c.health[name]
 	if !ok {
-		d = prometheus.NewDesc("plenum_source_"+name+"_total", "Source counter: "+name+".", []string{"source"}, nil)
-		c.counter[name] = d
+		d = prometheus.NewDesc(name, help, []string{kind}, nil)
+		c.health[name] = d
 	}
 	return d
 }

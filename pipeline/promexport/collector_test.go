@@ -18,13 +18,18 @@ func TestStaleChannelsDisappear(t *testing.T) {
 	mapID, _ := reg.Register(pipeline.Channel{Name: "manifold_pressure", Quantity: "pressure", Unit: pipeline.Pascal, Source: "mcu", Sensor: "manifold", MaxAge: time.Second})
 	iatID, _ := reg.Register(pipeline.Channel{Name: "intake_air_temp", Quantity: "temperature", Unit: pipeline.Celsius, Source: "mcu", Sensor: "intake_air", MaxAge: time.Second, Min: -40, Max: 150})
 	p := pipeline.New(reg, nil, pipeline.Options{})
-	p.Health().Source("mcu").SetUp(true)
-	p.Health().Source("mcu").Counter("frames").Add(7)
+	mcu := pipeline.NewHealth("source", "mcu")
+	mcu.SetUp(true)
+	mcu.Counter("frames").Add(7)
+	push := reportFunc(func() pipeline.HealthReport {
+		return pipeline.HealthReport{Kind: "push", Name: "push", Counters: []pipeline.NamedCount{{Name: "sent_lines", Value: 12}},
+			Gauges: []pipeline.NamedValue{{Name: "backlog_bytes", Value: 4096}}}
+	})
 	now := time.Unix(1000, 0)
 	p.Process(pipeline.Sample{Channel: mapID, Value: 101325, Time: now})
 	p.Process(pipeline.Sample{Channel: iatID, Value: 300, Time: now}) // out of range: flagged
 	clock := now
-	c, err := New(p, func() time.Time { return clock })
+	c, err := New(p, func() time.Time { return clock }, mcu, push)
 	if err != nil {
 		t.Fatal(err)
 	}
@@ -47,6 +52,9 @@ func TestStaleChannelsDisappear(t *testing.T) {
 		`plenum_pressure_pascals{sensor="manifold",source="mcu"} 101325`,
 		`plenum_source_up{source="mcu"} 1`,
 		`plenum_source_frames_total{source="mcu"} 7`,
+		`plenum_push_up{push="push"} 0`,
+		`plenum_push_sent_lines_total{push="push"} 12`,
+		`plenum_push_backlog_bytes{push="push"} 4096`,
 		`plenum_pipeline_samples_total{stage="flagged"} 1`,
 	} {
 		if !strings.Contains(body, want) {
@@ -84,3 +92,8 @@ func TestMetricName(t *testing.T) {
 		}
 	}
 }
+
+// reportFunc is a Reporter from a function.
+type reportFunc func() pipeline.HealthReport
+
+func (f reportFunc) Report() pipeline.HealthReport { return f() }
