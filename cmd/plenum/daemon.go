@@ -22,6 +22,7 @@ import (
 	"github.com/plenum-engine/plenum/pipeline/mqttpub"
 	"github.com/plenum-engine/plenum/pipeline/promexport"
 	"github.com/plenum-engine/plenum/pipeline/record"
+	"github.com/plenum-engine/plenum/pipeline/runs"
 	"github.com/plenum-engine/plenum/pipeline/tsdbpush"
 )
 
@@ -109,7 +110,7 @@ func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *s
 		}
 	}
 	mux := http.NewServeMux()
-	var rr *runs
+	var rr *runs.Controller
 	if cfg.Record.Dir != "" {
 		if fixed, err := record.Recover(cfg.Record.Dir); err != nil {
 			log.Warn("recovering earlier runs", "err", err)
@@ -119,11 +120,12 @@ func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *s
 			}
 		}
 		// The recorder must see every sample: a ring of several seconds.
-		rr = &runs{cfg: cfg, reg: reg, sub: p.Subscribe("recorder", 1<<18), log: log, emit: p.Emit, store: p.Store()}
+		deps := runs.Deps{Registry: reg, Sub: p.Subscribe("recorder", 1<<18), Store: p.Store(), Emit: p.Emit, Log: log}
 		if pusher != nil {
-			rr.forward = pusher
+			deps.Forward = pusher
 		}
-		mux.Handle("/api/runs/", rr.handler())
+		rr = runs.New(runsConfig(cfg), deps)
+		mux.Handle("/api/runs/", rr.Handler())
 	}
 	if cfg.StateDir != "" {
 		ob, err := mqttpub.OpenOutbox(filepath.Join(cfg.StateDir, "outbox-"+cfg.Vehicle), 10000)
@@ -135,7 +137,7 @@ func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *s
 		}
 	}
 	if cfg.MQTT.Commands && rr != nil {
-		mcfg.OnCommand = rr.command
+		mcfg.OnCommand = rr.Command
 	}
 	pub, err := mqttpub.New(mcfg, reg, p.Subscribe("mqtt", 1<<14))
 	if err != nil {
@@ -145,6 +147,9 @@ func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *s
 
 	// Metrics: every source and publisher reports its health at scrape time.
 	parts := []promexport.Reporter{pub}
+	if rr != nil {
+		parts = append(parts, rr)
+	}
 	for _, s := range srcs {
 		if s.health != nil {
 			parts = append(parts, s.health)
@@ -178,13 +183,13 @@ func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *s
 	}
 	srv := &http.Server{Handler: mux, ReadHeaderTimeout: 5 * time.Second}
 	if rr != nil {
-		rr.publish = pub.PublishSummary
-		if !cfg.Record.Manual {
-			id, err := rr.start(startRequest{})
-			if err != nil {
-				ln.Close()
-				return err
-			}
+		rr.SetPublish(pub.PublishSummary)
+		id, err := rr.StartUnlessManual()
+		if err != nil {
+			ln.Close()
+			return err
+		}
+		if id != "" {
 			fmt.Fprintf(stdout, "recording: %s\n", filepath.Join(cfg.Record.Dir, id))
 		}
 	}

@@ -14,6 +14,7 @@ import (
 
 	"github.com/plenum-engine/plenum/cmd/plenum/config"
 	"github.com/plenum-engine/plenum/pipeline/record"
+	"github.com/plenum-engine/plenum/pipeline/runs"
 )
 
 // Runs start and stop on MQTT commands from a user with command rights;
@@ -48,11 +49,11 @@ func TestMQTTRunCommands(t *testing.T) {
 		return c
 	}
 	var mu sync.Mutex
-	var replies []mqttReply
+	var replies []runs.Reply
 	cell := connect("cell", "cell-pass")
 	defer cell.Disconnect(100)
 	if tok := cell.Subscribe("plenum/brackenfell-rs/reply/#", 1, func(_ paho.Client, m paho.Message) {
-		var r mqttReply
+		var r runs.Reply
 		if err := json.Unmarshal(m.Payload(), &r); err != nil {
 			t.Errorf("reply %q: %v", m.Payload(), err)
 		}
@@ -62,7 +63,7 @@ func TestMQTTRunCommands(t *testing.T) {
 	}); !tok.WaitTimeout(5*time.Second) || tok.Error() != nil {
 		t.Fatal(tok.Error())
 	}
-	waitReply := func(request string) mqttReply {
+	waitReply := func(request string) runs.Reply {
 		t.Helper()
 		deadline := time.Now().Add(10 * time.Second)
 		for time.Now().Before(deadline) {
@@ -77,7 +78,7 @@ func TestMQTTRunCommands(t *testing.T) {
 			time.Sleep(20 * time.Millisecond)
 		}
 		t.Fatalf("no reply to %s", request)
-		return mqttReply{}
+		return runs.Reply{}
 	}
 	send := func(c paho.Client, topic string, payload string) {
 		t.Helper()

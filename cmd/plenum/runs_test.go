@@ -4,8 +4,6 @@ import (
 	"bytes"
 	"context"
 	"encoding/json"
-	"io"
-	"log/slog"
 	"net/http"
 	"os"
 	"path/filepath"
@@ -14,7 +12,6 @@ import (
 	"time"
 
 	"github.com/plenum-engine/plenum/cmd/plenum/config"
-	"github.com/plenum-engine/plenum/pipeline"
 	"github.com/plenum-engine/plenum/pipeline/record"
 )
 
@@ -135,44 +132,5 @@ func TestAutoTriggerRecordsThePulls(t *testing.T) {
 	}
 	if d := sum.End.Sub(sum.Start); d > 10*time.Second {
 		t.Fatalf("the triggered run lasted %v: it should hold the pulls, not the whole cycle", d)
-	}
-}
-
-// The recorder that cannot keep up says so: one recorder_behind warning at
-// the first loss (not one per tick), cleared after 5 s without loss.
-func TestRecorderBehindWarning(t *testing.T) {
-	reg := pipeline.NewRegistry()
-	id, _ := reg.Register(pipeline.Channel{Name: "x", Quantity: "x", Source: "s"})
-	g, err := pipeline.BuildGraph(reg, nil)
-	if err != nil {
-		t.Fatal(err)
-	}
-	p := pipeline.New(reg, g, pipeline.Options{})
-	var evs []pipeline.Event
-	r := &runs{reg: reg, sub: p.Subscribe("recorder", 8), log: slog.New(slog.NewTextHandler(io.Discard, nil)),
-		emit: func(e pipeline.Event) { evs = append(evs, e) }}
-	t0 := time.Unix(1000, 0)
-	r.watchLoss(t0)
-	if len(evs) != 0 {
-		t.Fatalf("events without loss: %v", evs)
-	}
-	for i := range 100 {
-		p.Process(pipeline.Sample{Channel: id, Time: t0.Add(time.Duration(i) * time.Millisecond), Value: float64(i)})
-	}
-	if r.sub.Dropped() == 0 {
-		t.Fatal("the 8-sample queue dropped nothing")
-	}
-	r.watchLoss(t0.Add(time.Second))
-	for i := range 100 {
-		p.Process(pipeline.Sample{Channel: id, Time: t0.Add(time.Second + time.Duration(i)*time.Millisecond), Value: float64(i)})
-	}
-	r.watchLoss(t0.Add(2 * time.Second)) // more loss: still one warning
-	r.watchLoss(t0.Add(6 * time.Second)) // 4 s quiet: not yet cleared
-	if len(evs) != 1 || evs[0].Kind != "warning_raised" || evs[0].Name != "recorder_behind" || evs[0].Fields["lost_samples"] < 1 {
-		t.Fatalf("events %+v", evs)
-	}
-	r.watchLoss(t0.Add(7 * time.Second))
-	if len(evs) != 2 || evs[1].Kind != "warning_cleared" {
-		t.Fatalf("events %+v", evs)
 	}
 }
