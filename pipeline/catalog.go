@@ -349,7 +349,7 @@ var catalogue = []Channel{
 // name as sensor label).
 func Catalogued(name string) (Channel, bool) {
 	for _, c := range catalogue {
-		if c.Name == name {
+		if c.Name == name && !strings.HasSuffix(name, "_") {
 			return c, true
 		}
 	}

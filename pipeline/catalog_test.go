@@ -1,0 +1,69 @@
+package pipeline
+
+import (
+	"strings"
+	"testing"
+)
+
+// Every catalogue entry is a valid channel with an origin, a quantity and a
+// sentence for people, and no name is catalogued twice.
+func TestCatalogueEntries(t *testing.T) {
+	seen := map[string]bool{}
+	for _, c := range Catalogue() {
+		name := strings.TrimSuffix(c.Name, "_") // families end in _
+		if err := (Channel{Name: name, Min: c.Min, Max: c.Max}).Validate(); err != nil {
+			t.Error(err)
+		}
+		if seen[c.Name] {
+			t.Errorf("%s catalogued twice", c.Name)
+		}
+		seen[c.Name] = true
+		if c.Origin == 0 || c.Quantity == "" {
+			t.Errorf("%s: origin %v, quantity %q", c.Name, c.Origin, c.Quantity)
+		}
+		if len(c.Description) < 10 || !strings.HasSuffix(c.Description, ".") {
+			t.Errorf("%s: description %q is not a sentence", c.Name, c.Description)
+		}
+	}
+}
+
+func TestCatalogued(t *testing.T) {
+	for _, tc := range []struct {
+		name   string
+		ok     bool
+		unit   Unit
+		sensor string
+		origin Origin
+	}{
+		{"manifold_pressure", true, Pascal, "manifold", FromInput},
+		{"boost_pressure", true, Pascal, "boost", FromDerived},
+		{"ecu_engine_speed", true, RPM, "", FromOBD},
+		{"turbo_thermal_state", true, Celsius, "turbo_thermal_model", FromDerived},
+		{"warning_over_boost", true, None, "over_boost", FromDerived}, // a family member
+		{"warning_", false, None, "", 0},                              // the family itself is no channel
+		{"boost_presure", false, None, "", 0},
+	} {
+		c, ok := Catalogued(tc.name)
+		if ok != tc.ok || ok && (c.Unit != tc.unit || c.Sensor != tc.sensor || c.Origin != tc.origin || c.Name != tc.name) {
+			t.Errorf("Catalogued(%q) = %+v, %v", tc.name, c, ok)
+		}
+	}
+	if _, ok := Standard("boost_pressure"); ok {
+		t.Error("a derived channel passed as a standard input")
+	}
+}
+
+func TestCheckCatalogued(t *testing.T) {
+	reg := NewRegistry()
+	ch, _ := Standard("intake_air_temp")
+	reg.Register(ch)
+	reg.Register(DerivedOutputs("lambda")[0])
+	if bad := CheckCatalogued(reg); len(bad) != 0 {
+		t.Errorf("catalogued channels refused: %v", bad)
+	}
+	reg.Register(Channel{Name: "intake_air_temperature", Quantity: "temperature", Unit: Celsius})
+	reg.Register(Channel{Name: "oil_temp", Quantity: "temperature", Unit: Ratio})
+	if bad := CheckCatalogued(reg); len(bad) != 2 || bad[0] != "intake_air_temperature" || bad[1] != "oil_temp" {
+		t.Errorf("CheckCatalogued = %v, want the unknown and the mis-unit channel", bad)
+	}
+}
