@@ -12,10 +12,13 @@ import (
 	"net/http/httptest"
 	"os"
 	"path/filepath"
+	"reflect"
 	"strings"
 	"sync"
 	"testing"
 	"time"
+
+	"github.com/plenum-engine/plenum/pipeline"
 )
 
 // sink is a write endpoint that records every line it accepts. answer
@@ -721,5 +724,90 @@ func TestParseRetryAfter(t *testing.T) {
 		if got != c.want || ok != c.ok {
 			t.Errorf("%q: %v %v, want %v %v", c.in, got, ok, c.want, c.ok)
 		}
+	}
+}
+
+// TestReport: the health report carries Stats' values under the metric names
+// the collector exports, and Up follows the last request.
+func TestReport(t *testing.T) {
+	failing := func(int, []byte, http.ResponseWriter) int { return 503 }
+	refusing := func(_ int, body []byte, _ http.ResponseWriter) int {
+		if bytes.Contains(body, []byte("malformed")) {
+			return 400
+		}
+		return 204
+	}
+	cases := []struct {
+		name    string
+		answer  func(int, []byte, http.ResponseWriter) int
+		backlog int64 // MaxBacklogBytes, 0 for the default
+		drive   func(t *testing.T, p *Pusher)
+		wantUp  bool
+		nonzero []string // report values that must not be zero
+	}{
+		{"fresh: nothing to send", nil, 0, func(*testing.T, *Pusher) {}, true, nil},
+		{"all sent", nil, 0, func(t *testing.T, p *Pusher) {
+			appendAll(t, p, genLines(100, 1e18), 10)
+			stop := running(t, p)
+			waitFor(t, "sent", func() bool { return p.Stats().SentLines == 100 })
+			stop()
+		}, true, []string{"sent_lines"}},
+		{"server failing", failing, 0, func(t *testing.T, p *Pusher) {
+			appendAll(t, p, genLines(100, 1e18), 10)
+			stop := running(t, p)
+			waitFor(t, "retries", func() bool { return p.Stats().Retries >= 2 })
+			stop()
+		}, false, []string{"retries", "backlog_bytes"}},
+		{"batch refused, rest sent", refusing, 0, func(t *testing.T, p *Pusher) {
+			stop := running(t, p)
+			appendAll(t, p, genLines(10, 1e18), 10)
+			waitFor(t, "sent", func() bool { return p.Stats().SentLines == 10 })
+			appendAll(t, p, []string{"plenum,channel=x value=malformed 1\n"}, 1)
+			waitFor(t, "refused", func() bool { return p.Stats().RejectedLines == 1 })
+			stop()
+		}, true, []string{"sent_lines", "rejected_lines"}},
+		{"staging full", nil, 8 << 10, func(t *testing.T, p *Pusher) {
+			appendAll(t, p, genLines(200, 1e18), 1) // Run not running
+		}, true, []string{"dropped_lines", "backlog_bytes"}},
+	}
+	for _, c := range cases {
+		t.Run(c.name, func(t *testing.T) {
+			s := newSink(t, c.answer)
+			cfg := testConfig(t, s.url())
+			cfg.MaxBacklogBytes = c.backlog
+			p, err := Open(cfg)
+			if err != nil {
+				t.Fatal(err)
+			}
+			defer p.Close()
+			c.drive(t, p)
+			r := p.Report()
+			st := p.Stats()
+			want := pipeline.HealthReport{
+				Kind: "push", Name: "push", Up: c.wantUp,
+				Counters: []pipeline.NamedCount{
+					{Name: "sent_lines", Value: st.SentLines},
+					{Name: "retries", Value: st.Retries},
+					{Name: "rejected_lines", Value: st.RejectedLines},
+					{Name: "dropped_lines", Value: st.DroppedLines},
+				},
+				Gauges: []pipeline.NamedValue{{Name: "backlog_bytes", Value: float64(st.BacklogBytes)}},
+			}
+			if !reflect.DeepEqual(r, want) {
+				t.Errorf("report\n%+v\nwant\n%+v", r, want)
+			}
+			values := map[string]float64{}
+			for _, nc := range r.Counters {
+				values[nc.Name] = float64(nc.Value)
+			}
+			for _, nv := range r.Gauges {
+				values[nv.Name] = nv.Value
+			}
+			for _, name := range c.nonzero {
+				if values[name] == 0 {
+					t.Errorf("%s is 0 after %s", name, c.name)
+				}
+			}
+		})
 	}
 }
