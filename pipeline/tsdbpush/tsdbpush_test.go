@@ -493,7 +493,9 @@ func TestRestartWhileServerDown(t *testing.T) {
 			}
 			stop = running(t, p2)
 			waitFor(t, "all lines", func() bool { return len(s.got()) >= len(want) })
-			time.Sleep(50 * time.Millisecond) // would let a duplicate arrive
+			// Nothing left unacknowledged: the sender has no batch it could
+			// send a second time.
+			waitFor(t, "empty backlog", func() bool { return p2.Stats().BacklogBytes == 0 })
 			stop()
 			if err := p2.Close(); err != nil {
 				t.Fatal(err)
