@@ -96,3 +96,10 @@ func (s *staging) close() bool {
 	s.closed = true
 	return was
 }
+
+// isClosed reports whether close was called.
+func (s *staging) isClosed() bool {
+	s.mu.Lock()
+	defer s.mu.Unlock()
+	return s.closed
+}

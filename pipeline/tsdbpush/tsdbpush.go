@@ -150,7 +150,7 @@ type Stats struct {
 	LastErrorAt                time.Time
 }
 
-// ErrClosed is returned by Append after Close.
+// ErrClosed is returned by Append and Run after Close.
 var ErrClosed = errors.New("tsdbpush: closed")
 
 // Pusher is a backlog and its sender. Append, Stats, Report and Close are
@@ -326,7 +326,10 @@ func (p *Pusher) Report() pipeline.HealthReport {
 // reported in Stats.
 func (p *Pusher) Run(ctx context.Context) error {
 	if !p.running.CompareAndSwap(false, true) {
-		return errors.New("tsdbpush: Run is already running (or Close is)")
+		if p.stage.isClosed() {
+			return ErrClosed
+		}
+		return errors.New("tsdbpush: Run is already running")
 	}
 	defer p.running.Store(false)
 	var wg sync.WaitGroup

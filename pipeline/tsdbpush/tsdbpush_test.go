@@ -683,6 +683,9 @@ func TestAppendContract(t *testing.T) {
 	if err := p.Append([]byte("m v=2 2\n")); err != ErrClosed {
 		t.Errorf("Append after Close: %v", err)
 	}
+	if err := p.Run(context.Background()); err != ErrClosed {
+		t.Errorf("Run after Close: %v", err)
+	}
 	segs, _ := filepath.Glob(filepath.Join(cfg.Dir, "seg-*.lp"))
 	if len(segs) != 1 {
 		t.Fatalf("segments %v", segs)
