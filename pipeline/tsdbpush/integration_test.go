@@ -135,7 +135,7 @@ func push(t *testing.T, writeURL string, lp []byte, gz bool) Stats {
 	// Hand the recording over in pieces of whole lines, as the recorder's
 	// syncs would.
 	for rest := lp; len(rest) > 0; {
-		n := wholeLen(rest[:min(len(rest), 64<<10)])
+		n := bytes.LastIndexByte(rest[:min(len(rest), 64<<10)], '\n') + 1 // whole lines
 		if err := p.Append(rest[:n]); err != nil {
 			t.Fatal(err)
 		}

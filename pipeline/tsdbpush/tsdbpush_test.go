@@ -5,16 +5,20 @@ import (
 	"compress/gzip"
 	"context"
 	"fmt"
+	"hash/crc32"
 	"io"
 	"log/slog"
 	"net/http"
 	"net/http/httptest"
 	"os"
 	"path/filepath"
+	"reflect"
 	"strings"
 	"sync"
 	"testing"
 	"time"
+
+	"github.com/plenum-engine/plenum/pipeline"
 )
 
 // sink is a write endpoint that records every line it accepts. answer
@@ -381,7 +385,7 @@ func TestRetryAfter(t *testing.T) {
 }
 
 func TestBackoffGrowsWithJitter(t *testing.T) {
-	p := &Pusher{cfg: Config{MinBackoff: 100 * time.Millisecond, MaxBackoff: 2 * time.Second}}
+	p := &sender{cfg: Config{MinBackoff: 100 * time.Millisecond, MaxBackoff: 2 * time.Second}}
 	for attempt, full := range []time.Duration{100, 200, 400, 800, 1600, 2000, 2000} {
 		full *= time.Millisecond
 		if attempt == 6 {
@@ -489,7 +493,9 @@ func TestRestartWhileServerDown(t *testing.T) {
 			}
 			stop = running(t, p2)
 			waitFor(t, "all lines", func() bool { return len(s.got()) >= len(want) })
-			time.Sleep(50 * time.Millisecond) // would let a duplicate arrive
+			// Nothing left unacknowledged: the sender has no batch it could
+			// send a second time.
+			waitFor(t, "empty backlog", func() bool { return p2.Stats().BacklogBytes == 0 })
 			stop()
 			if err := p2.Close(); err != nil {
 				t.Fatal(err)
@@ -593,7 +599,9 @@ func TestStagingFullDropsAndCounts(t *testing.T) {
 	}
 }
 
-// TestTornTailCutOnOpen builds backlogs as a crash would leave them.
+// TestTornTailCutOnOpen builds backlogs as a crash would leave them and
+// checks what the Pusher sends from them. The file names and the cursor are
+// written by hand, as an earlier version would have left them on disk.
 func TestTornTailCutOnOpen(t *testing.T) {
 	l := genLines(4, 1e18)
 	cases := []struct {
@@ -604,8 +612,8 @@ func TestTornTailCutOnOpen(t *testing.T) {
 	}{
 		{"torn last line", map[string]string{"0": l[0] + l[1] + l[2][:40]}, "", l[:2]},
 		{"only a torn line", map[string]string{"0": l[0][:20]}, "", nil},
-		{"cursor after first line", map[string]string{"0": l[0] + l[1] + l[2] + "plenum,x"}, string(formatCursor(int64(len(l[0])))), l[1:3]},
-		{"cursor inside a line", map[string]string{"0": l[0] + l[1] + l[2]}, string(formatCursor(int64(len(l[0]) + 5))), l[2:3]},
+		{"cursor after first line", map[string]string{"0": l[0] + l[1] + l[2] + "plenum,x"}, string(cursorFile(int64(len(l[0])))), l[1:3]},
+		{"cursor inside a line", map[string]string{"0": l[0] + l[1] + l[2]}, string(cursorFile(int64(len(l[0]) + 5))), l[2:3]},
 		{"damaged cursor resends all", map[string]string{"0": l[0] + l[1]}, "tsdbpush cursor v1 acked=99 crc=00000000\n", l[:2]},
 		{"two segments, first torn", map[string]string{"0": l[0] + l[1][:10], "1000": l[2] + l[3]}, "", []string{l[0], l[2], l[3]}},
 	}
@@ -616,7 +624,7 @@ func TestTornTailCutOnOpen(t *testing.T) {
 			for start, content := range c.files {
 				var off int64
 				fmt.Sscan(start, &off)
-				if err := os.WriteFile(filepath.Join(cfg.Dir, segmentName(off)), []byte(content), 0o644); err != nil {
+				if err := os.WriteFile(filepath.Join(cfg.Dir, segmentFile(off)), []byte(content), 0o644); err != nil {
 					t.Fatal(err)
 				}
 			}
@@ -630,7 +638,7 @@ func TestTornTailCutOnOpen(t *testing.T) {
 			for start := range c.files {
 				var off int64
 				fmt.Sscan(start, &off)
-				b, err := os.ReadFile(filepath.Join(cfg.Dir, segmentName(off)))
+				b, err := os.ReadFile(filepath.Join(cfg.Dir, segmentFile(off)))
 				if err == nil && len(b) > 0 && b[len(b)-1] != '\n' {
 					t.Errorf("segment %s still ends in a torn line", start)
 				}
@@ -644,6 +652,15 @@ func TestTornTailCutOnOpen(t *testing.T) {
 			exactlyOnceInOrder(t, s.got(), append(append([]string(nil), c.want...), more...))
 		})
 	}
+}
+
+// segmentFile and cursorFile are the on-disk names and cursor format of the
+// backlog, spelt out here so that a change to them shows as a failing test.
+func segmentFile(start int64) string { return fmt.Sprintf("seg-%020d.lp", start) }
+
+func cursorFile(acked int64) []byte {
+	body := fmt.Sprintf("tsdbpush cursor v1 acked=%d", acked)
+	return fmt.Appendf(nil, "%s crc=%08x\n", body, crc32.ChecksumIEEE([]byte(body)))
 }
 
 func TestAppendContract(t *testing.T) {
@@ -665,6 +682,9 @@ func TestAppendContract(t *testing.T) {
 	}
 	if err := p.Append([]byte("m v=2 2\n")); err != ErrClosed {
 		t.Errorf("Append after Close: %v", err)
+	}
+	if err := p.Run(context.Background()); err != ErrClosed {
+		t.Errorf("Run after Close: %v", err)
 	}
 	segs, _ := filepath.Glob(filepath.Join(cfg.Dir, "seg-*.lp"))
 	if len(segs) != 1 {
@@ -691,33 +711,6 @@ func TestOpenConfigErrors(t *testing.T) {
 	}
 }
 
-func TestCursorRoundTrip(t *testing.T) {
-	for _, n := range []int64{0, 1, 123456789, 1<<63 - 1} {
-		got, err := parseCursor(formatCursor(n))
-		if err != nil || got != n {
-			t.Errorf("%d: got %d, %v", n, got, err)
-		}
-	}
-	good := formatCursor(42)
-	for _, c := range []struct {
-		name string
-		in   string
-		want string
-	}{
-		{"empty", "", "byte 0"},
-		{"torn", string(good[:len(good)-3]), "no newline"},
-		{"trailing", string(good) + "x", "after the line"},
-		{"bad crc", strings.Replace(string(good), "acked=42", "acked=43", 1), "crc"},
-		{"negative", "tsdbpush cursor v1 acked=-1 crc=00000000\n", "non-negative"},
-		{"leading zero", "tsdbpush cursor v1 acked=042 crc=00000000\n", "non-negative"},
-		{"short crc", "tsdbpush cursor v1 acked=42 crc=abc\n", "8 hex"},
-	} {
-		if _, err := parseCursor([]byte(c.in)); err == nil || !strings.Contains(err.Error(), c.want) {
-			t.Errorf("%s: error %v, want %q", c.name, err, c.want)
-		}
-	}
-}
-
 func TestParseRetryAfter(t *testing.T) {
 	now := time.Date(2026, 1, 2, 3, 4, 5, 0, time.UTC)
 	for _, c := range []struct {
@@ -739,16 +732,87 @@ func TestParseRetryAfter(t *testing.T) {
 	}
 }
 
-func TestSegmentNames(t *testing.T) {
-	for _, n := range []int64{0, 7, 1 << 40, 1<<63 - 1} {
-		got, ok := parseSegmentName(segmentName(n))
-		if !ok || got != n {
-			t.Errorf("%d: %d %v", n, got, ok)
+// TestReport: the health report carries Stats' values under the metric names
+// the collector exports, and Up follows the last request.
+func TestReport(t *testing.T) {
+	failing := func(int, []byte, http.ResponseWriter) int { return 503 }
+	refusing := func(_ int, body []byte, _ http.ResponseWriter) int {
+		if bytes.Contains(body, []byte("malformed")) {
+			return 400
 		}
+		return 204
 	}
-	for _, bad := range []string{"seg-1.lp", "seg-0000000000000000000a.lp", "seg-99999999999999999999.lp", "cursor", "seg-00000000000000000000.tmp"} {
-		if _, ok := parseSegmentName(bad); ok {
-			t.Errorf("%q parsed", bad)
-		}
+	cases := []struct {
+		name    string
+		answer  func(int, []byte, http.ResponseWriter) int
+		backlog int64 // MaxBacklogBytes, 0 for the default
+		drive   func(t *testing.T, p *Pusher)
+		wantUp  bool
+		nonzero []string // report values that must not be zero
+	}{
+		{"fresh: nothing to send", nil, 0, func(*testing.T, *Pusher) {}, true, nil},
+		{"all sent", nil, 0, func(t *testing.T, p *Pusher) {
+			appendAll(t, p, genLines(100, 1e18), 10)
+			stop := running(t, p)
+			waitFor(t, "sent", func() bool { return p.Stats().SentLines == 100 })
+			stop()
+		}, true, []string{"sent_lines"}},
+		{"server failing", failing, 0, func(t *testing.T, p *Pusher) {
+			appendAll(t, p, genLines(100, 1e18), 10)
+			stop := running(t, p)
+			waitFor(t, "retries", func() bool { return p.Stats().Retries >= 2 })
+			stop()
+		}, false, []string{"retries", "backlog_bytes"}},
+		{"batch refused, rest sent", refusing, 0, func(t *testing.T, p *Pusher) {
+			stop := running(t, p)
+			appendAll(t, p, genLines(10, 1e18), 10)
+			waitFor(t, "sent", func() bool { return p.Stats().SentLines == 10 })
+			appendAll(t, p, []string{"plenum,channel=x value=malformed 1\n"}, 1)
+			waitFor(t, "refused", func() bool { return p.Stats().RejectedLines == 1 })
+			stop()
+		}, true, []string{"sent_lines", "rejected_lines"}},
+		{"staging full", nil, 8 << 10, func(t *testing.T, p *Pusher) {
+			appendAll(t, p, genLines(200, 1e18), 1) // Run not running
+		}, true, []string{"dropped_lines", "backlog_bytes"}},
+	}
+	for _, c := range cases {
+		t.Run(c.name, func(t *testing.T) {
+			s := newSink(t, c.answer)
+			cfg := testConfig(t, s.url())
+			cfg.MaxBacklogBytes = c.backlog
+			p, err := Open(cfg)
+			if err != nil {
+				t.Fatal(err)
+			}
+			defer p.Close()
+			c.drive(t, p)
+			r := p.Report()
+			st := p.Stats()
+			want := pipeline.HealthReport{
+				Kind: "push", Name: "push", Up: c.wantUp,
+				Counters: []pipeline.NamedCount{
+					{Name: "sent_lines", Value: st.SentLines},
+					{Name: "retries", Value: st.Retries},
+					{Name: "rejected_lines", Value: st.RejectedLines},
+					{Name: "dropped_lines", Value: st.DroppedLines},
+				},
+				Gauges: []pipeline.NamedValue{{Name: "backlog_bytes", Value: float64(st.BacklogBytes)}},
+			}
+			if !reflect.DeepEqual(r, want) {
+				t.Errorf("report\n%+v\nwant\n%+v", r, want)
+			}
+			values := map[string]float64{}
+			for _, nc := range r.Counters {
+				values[nc.Name] = float64(nc.Value)
+			}
+			for _, nv := range r.Gauges {
+				values[nv.Name] = nv.Value
+			}
+			for _, name := range c.nonzero {
+				if values[name] == 0 {
+					t.Errorf("%s is 0 after %s", name, c.name)
+				}
+			}
+		})
 	}
 }

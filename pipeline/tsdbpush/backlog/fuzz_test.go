@@ -1,4 +1,4 @@
-package tsdbpush
+package backlog
 
 import (
 	"bytes"
