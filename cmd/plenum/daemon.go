@@ -14,8 +14,6 @@ import (
 	"strings"
 	"time"
 
-	"github.com/prometheus/client_golang/prometheus"
-
 	"github.com/plenum-engine/plenum/cmd/plenum/config"
 	"github.com/plenum-engine/plenum/pipeline"
 	"github.com/plenum-engine/plenum/pipeline/broker"
@@ -68,10 +66,8 @@ func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *s
 	if err != nil {
 		return err
 	}
-	var extra []prometheus.Collector
 	if pusher != nil {
 		defer pusher.Close()
-		extra = pushMetrics(pusher)
 	}
 
 	// MQTT: the embedded broker unless an external one is configured.
@@ -150,6 +146,9 @@ func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *s
 	if rr != nil {
 		parts = append(parts, rr)
 	}
+	if pusher != nil {
+		parts = append(parts, pusher)
+	}
 	for _, s := range srcs {
 		if s.health != nil {
 			parts = append(parts, s.health)
@@ -160,7 +159,7 @@ func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *s
 		return err
 	}
 	evm := promexport.NewEvents(p.SubscribeEvents("event_metrics"))
-	h, err := promexport.Handler(col, append([]prometheus.Collector{evm}, extra...)...)
+	h, err := promexport.Handler(col, evm)
 	if err != nil {
 		return err
 	}
@@ -282,21 +281,6 @@ func openPusher(cfg *config.Config, log *slog.Logger) (*tsdbpush.Pusher, error) 
 		return nil, fmt.Errorf("record.push: %w", err)
 	}
 	return p, nil
-}
-
-// pushMetrics exposes the pusher's counters.
-func pushMetrics(p *tsdbpush.Pusher) []prometheus.Collector {
-	counter := func(name, help string, f func(tsdbpush.Stats) uint64) prometheus.Collector {
-		return prometheus.NewCounterFunc(prometheus.CounterOpts{Name: name, Help: help}, func() float64 { return float64(f(p.Stats())) })
-	}
-	return []prometheus.Collector{
-		counter("plenum_push_sent_lines_total", "Recorded lines the time-series database accepted.", func(s tsdbpush.Stats) uint64 { return s.SentLines }),
-		counter("plenum_push_retries_total", "Write requests retried after a failure.", func(s tsdbpush.Stats) uint64 { return s.Retries }),
-		counter("plenum_push_rejected_lines_total", "Lines the database refused as malformed, kept under rejected/.", func(s tsdbpush.Stats) uint64 { return s.RejectedLines }),
-		counter("plenum_push_dropped_lines_total", "Lines dropped unsent because the backlog was full.", func(s tsdbpush.Stats) uint64 { return s.DroppedLines }),
-		prometheus.NewGaugeFunc(prometheus.GaugeOpts{Name: "plenum_push_backlog_bytes", Help: "Bytes recorded but not yet accepted by the database."},
-			func() float64 { return float64(p.Stats().BacklogBytes) }),
-	}
 }
 
 // quiet turns the broker's info chatter down to warnings.
