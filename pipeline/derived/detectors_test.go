@@ -467,3 +467,36 @@ func BenchmarkDerivations(b *testing.B) {
 		})
 	}
 }
+
+// TestVETableServedWhileDeriving reads the CSV from another goroutine while
+// the estimate accumulates (run with -race), and checks the last read sees
+// every sample's cell.
+func TestVETableServedWhileDeriving(t *testing.T) {
+	s, err := Build(demoConfig(), registry(t, "ecu_mass_air_flow", "manifold_pressure", "intake_air_temp", "engine_speed"))
+	if err != nil {
+		t.Fatal(err)
+	}
+	d := find(t, s, "ve_estimate")
+	h := s.VETableHandler()
+	done := make(chan struct{})
+	go func() {
+		defer close(done)
+		out := make([]float64, 1)
+		for i := 0; i < 1000; i++ {
+			rpm := 1000 + float64(i%13)*500
+			d.Derive(at(float64(i)/100), []float64{derive.SpeedDensity(100000, 30, rpm, 1.998e-3, 0.9) * 1000, 100000, 30, rpm}, out)
+		}
+	}()
+	for reading := true; reading; {
+		select {
+		case <-done:
+			reading = false
+		default:
+		}
+		rec := httptest.NewRecorder()
+		h.ServeHTTP(rec, httptest.NewRequest("GET", "/ve-table.csv", nil))
+		if !reading && strings.Count(rec.Body.String(), "0.9000") != 13 {
+			t.Errorf("after every engine speed: %q", rec.Body.String())
+		}
+	}
+}
