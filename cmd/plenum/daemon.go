@@ -17,6 +17,7 @@ import (
 	"github.com/plenum-engine/plenum/cmd/plenum/config"
 	"github.com/plenum-engine/plenum/pipeline"
 	"github.com/plenum-engine/plenum/pipeline/broker"
+	"github.com/plenum-engine/plenum/pipeline/derived"
 	"github.com/plenum-engine/plenum/pipeline/mqttpub"
 	"github.com/plenum-engine/plenum/pipeline/promexport"
 	"github.com/plenum-engine/plenum/pipeline/record"
@@ -37,23 +38,20 @@ func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *s
 		return err
 	}
 	defer cleanup()
-	ds, guard, err := buildAll(cfg, reg)
+	ds, set, err := buildAll(cfg, reg)
 	if err != nil {
 		return err
 	}
-	if guard != nil && guard.stateFile != "" {
-		if err := os.MkdirAll(filepath.Dir(guard.stateFile), 0o755); err != nil {
-			log.Warn("turbo state directory; the cool-down state will not survive a restart", "err", err)
-			guard.stateFile = ""
-		} else if err := guard.load(time.Now()); err != nil {
-			log.Warn("turbo state not restored", "err", err)
-		}
-		defer func() {
-			if err := guard.save(); err != nil {
-				log.Warn("turbo state not saved", "err", err)
-			}
-		}()
+	if err := set.LoadTurboState(time.Now()); errors.Is(err, derived.ErrStateDir) {
+		log.Warn("turbo state directory; the cool-down state will not survive a restart", "err", err)
+	} else if err != nil {
+		log.Warn("turbo state not restored", "err", err)
 	}
+	defer func() {
+		if err := set.SaveTurboState(); err != nil {
+			log.Warn("turbo state not saved", "err", err)
+		}
+	}()
 	g, err := pipeline.BuildGraph(reg, ds)
 	if err != nil {
 		return fmt.Errorf("derivations: %w", err)
@@ -164,10 +162,8 @@ func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *s
 		return err
 	}
 	mux.Handle("/metrics", h)
-	for _, d := range ds {
-		if ve, ok := d.(*veEstimate); ok {
-			mux.Handle("/ve-table.csv", ve)
-		}
+	if ve := set.VETableHandler(); ve != nil {
+		mux.Handle("/ve-table.csv", ve)
 	}
 	mux.HandleFunc("/", func(w http.ResponseWriter, r *http.Request) {
 		if r.URL.Path != "/" {

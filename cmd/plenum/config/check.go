@@ -20,9 +20,6 @@ import (
 
 var nameRE = regexp.MustCompile(`^[a-z][a-z0-9_]*$`)
 
-// fuelNames are the fuel names the config accepts.
-var fuelNames = []string{"gasoline", "diesel", "e85", "e100", "methanol", "lpg", "cng"}
-
 // lineOf finds the line of the node at path (map keys and sequence indexes)
 // below root, or of the deepest node found on the way.
 func lineOf(root *yaml.Node, path ...any) int {
@@ -97,8 +94,8 @@ func (cfg *Config) check(file string, root *yaml.Node) Errors {
 	if e.DisplacementL <= 0 || e.DisplacementL > 20 {
 		c.fail("must be between 0 and 20 litres", "engine", "displacement_l")
 	}
-	if !contains(fuelNames, e.Fuel) {
-		c.fail(fmt.Sprintf("unknown fuel %q (one of %s)", e.Fuel, strings.Join(fuelNames, ", ")), "engine", "fuel")
+	if fuels := derive.FuelNames(); !contains(fuels, e.Fuel) {
+		c.fail(fmt.Sprintf("unknown fuel %q (one of %s)", e.Fuel, strings.Join(fuels, ", ")), "engine", "fuel")
 	}
 	if e.VETable == nil && (e.VE <= 0 || e.VE > 1.6) {
 		c.fail("needs a volumetric_efficiency in (0, 1.6] or a ve_table", "engine", "volumetric_efficiency")

@@ -99,3 +99,20 @@ func FuzzParse(f *testing.F) {
 		}
 	})
 }
+
+// TestEveryKnownFuelAccepted checks that the config accepts each fuel derive
+// knows (propane among them), in the fuel named by the config.
+func TestEveryKnownFuelAccepted(t *testing.T) {
+	cases := []string{"gasoline", "diesel", "e85", "e100", "methanol", "propane", "lpg", "cng"}
+	for _, fuel := range cases {
+		t.Run(fuel, func(t *testing.T) {
+			cfg, err := Parse("fuel.yaml", []byte("vehicle: x\nengine:\n  displacement_l: 2\n  volumetric_efficiency: 0.9\n  fuel: "+fuel+"\n"))
+			if err != nil {
+				t.Fatalf("fuel %s refused: %v", fuel, err)
+			}
+			if cfg.Engine.Fuel != fuel {
+				t.Errorf("engine.fuel = %q, want %q", cfg.Engine.Fuel, fuel)
+			}
+		})
+	}
+}

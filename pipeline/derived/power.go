@@ -1,0 +1,64 @@
+package derived
+
+import (
+	"math"
+	"time"
+
+	"github.com/plenum-engine/plenum/derive"
+	"github.com/plenum-engine/plenum/pipeline"
+)
+
+// power computes observed and corrected power from a dyno torque channel.
+type power struct {
+	std derive.Standard
+	amb derive.Ambient // used where ambient channels are missing
+}
+
+// Name names the derivation.
+func (d *power) Name() string { return "power" }
+
+// Inputs are dyno torque, engine speed and, optionally, the ambient
+// conditions and fuel mass flow.
+func (d *power) Inputs() []pipeline.Input {
+	return []pipeline.Input{{Name: "dyno_torque"}, {Name: "engine_speed"}, {Name: "baro_pressure", Optional: true},
+		{Name: "ambient_temp", Optional: true}, {Name: "ambient_humidity", Optional: true}, {Name: "fuel_mass_flow", Optional: true}}
+}
+
+// Outputs are observed and corrected power, the correction factor and BSFC.
+func (d *power) Outputs() []pipeline.Channel {
+	return []pipeline.Channel{
+		{Name: "brake_power", Quantity: "power", Unit: pipeline.Watts, Sensor: "observed"},
+		{Name: "corrected_power", Quantity: "power", Unit: pipeline.Watts, Sensor: "corrected_" + d.std.String()},
+		{Name: "correction_factor", Quantity: "power_correction_factor", Unit: pipeline.Ratio, Sensor: d.std.String()},
+		{Name: "bsfc", Quantity: "brake_specific_fuel_consumption", Unit: pipeline.GramsPerJoule, Sensor: "dyno"},
+	}
+}
+
+// Derive computes power, corrects it for the ambient conditions (measured
+// where there are channels) and computes BSFC above 1 kW.
+func (d *power) Derive(_ time.Time, in, out []float64) uint64 {
+	a := d.amb
+	if !math.IsNaN(in[2]) {
+		a.Pressure = in[2]
+	}
+	if !math.IsNaN(in[3]) {
+		a.Temperature = in[3]
+	}
+	if !math.IsNaN(in[4]) {
+		a.Humidity = in[4]
+	}
+	p := derive.PowerFromTorque(in[0], in[1])
+	out[0] = p
+	cf, err := d.std.Factor(a)
+	if err != nil {
+		return 1
+	}
+	out[1] = p * cf
+	out[2] = cf
+	mask := uint64(0b111)
+	if !math.IsNaN(in[5]) && p > 1000 {
+		out[3] = derive.BSFC(in[5]/1000, p) * 1000 // g/J, the Prometheus base units
+		mask |= 0b1000
+	}
+	return mask
+}
