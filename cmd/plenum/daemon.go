@@ -57,6 +57,9 @@ func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *s
 	if err != nil {
 		return fmt.Errorf("derivations: %w", err)
 	}
+	if bad := pipeline.CheckCatalogued(reg); len(bad) > 0 {
+		return fmt.Errorf("channels without an entry in the channel catalogue, or with another unit: %s", strings.Join(bad, ", "))
+	}
 	p := pipeline.New(reg, g, pipeline.Options{})
 	p.BindEmitters()
 

@@ -32,10 +32,7 @@ func (d *airflow) Inputs() []pipeline.Input {
 
 // Outputs are air mass flow and the VE used.
 func (d *airflow) Outputs() []pipeline.Channel {
-	return []pipeline.Channel{
-		{Name: "air_mass_flow", Quantity: "mass_flow", Unit: pipeline.GramsPerSec, Sensor: "speed_density", Min: 0, Max: 5000},
-		{Name: "volumetric_efficiency", Quantity: "volumetric_efficiency", Unit: pipeline.Ratio, Sensor: "model"},
-	}
+	return pipeline.DerivedOutputs("air_mass_flow", "volumetric_efficiency")
 }
 
 // Derive computes air mass flow in g/s, the Prometheus base unit.
@@ -82,7 +79,7 @@ func (d *veEstimate) Inputs() []pipeline.Input {
 
 // Outputs is the measured VE.
 func (d *veEstimate) Outputs() []pipeline.Channel {
-	return []pipeline.Channel{{Name: "volumetric_efficiency_measured", Quantity: "volumetric_efficiency", Unit: pipeline.Ratio, Sensor: "measured_maf"}}
+	return pipeline.DerivedOutputs("volumetric_efficiency_measured")
 }
 
 // Derive computes the measured VE above 500 rpm and adds it to its cell.

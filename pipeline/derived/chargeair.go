@@ -31,11 +31,7 @@ func (d *chargeAir) Inputs() []pipeline.Input {
 // Outputs are compressor efficiency, corrected compressor flow and
 // intercooler effectiveness.
 func (d *chargeAir) Outputs() []pipeline.Channel {
-	return []pipeline.Channel{
-		{Name: "compressor_efficiency", Quantity: "compressor_efficiency", Unit: pipeline.Ratio, Sensor: "isentropic"},
-		{Name: "corrected_compressor_flow", Quantity: "corrected_mass_flow", Unit: pipeline.GramsPerSec, Sensor: "compressor"},
-		{Name: "intercooler_effectiveness", Quantity: "intercooler_effectiveness", Unit: pipeline.Ratio, Sensor: "intercooler"},
-	}
+	return pipeline.DerivedOutputs("compressor_efficiency", "corrected_compressor_flow", "intercooler_effectiveness")
 }
 
 // Derive computes each output its inputs allow.

@@ -26,10 +26,7 @@ func (d *mixture) Inputs() []pipeline.Input {
 
 // Outputs are λ and AFR.
 func (d *mixture) Outputs() []pipeline.Channel {
-	return []pipeline.Channel{
-		{Name: "lambda", Quantity: "lambda", Unit: pipeline.Ratio, Sensor: "wideband", Min: 0.5, Max: 2},
-		{Name: "air_fuel_ratio", Quantity: "air_fuel_ratio", Unit: pipeline.Ratio, Sensor: "wideband"},
-	}
+	return pipeline.DerivedOutputs("lambda", "air_fuel_ratio")
 }
 
 // Derive computes λ, then AFR for the fuel.
@@ -53,10 +50,7 @@ func (d *fuelFlow) Inputs() []pipeline.Input {
 
 // Outputs are fuel mass and volume flow.
 func (d *fuelFlow) Outputs() []pipeline.Channel {
-	return []pipeline.Channel{
-		{Name: "fuel_mass_flow", Quantity: "mass_flow", Unit: pipeline.GramsPerSec, Sensor: "fuel"},
-		{Name: "fuel_volume_flow", Quantity: "volume_flow", Unit: pipeline.CubicMetresPerS, Sensor: "fuel"},
-	}
+	return pipeline.DerivedOutputs("fuel_mass_flow", "fuel_volume_flow")
 }
 
 // Derive computes fuel mass flow (g/s) and volume flow (m³/s).
@@ -80,7 +74,7 @@ func (lambdaError) Inputs() []pipeline.Input {
 
 // Outputs is the λ error.
 func (lambdaError) Outputs() []pipeline.Channel {
-	return []pipeline.Channel{{Name: "lambda_error", Quantity: "lambda_error", Unit: pipeline.Ratio, Sensor: "measured_minus_commanded"}}
+	return pipeline.DerivedOutputs("lambda_error")
 }
 
 // Derive computes measured less commanded λ.

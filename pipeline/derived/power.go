@@ -26,12 +26,12 @@ func (d *power) Inputs() []pipeline.Input {
 
 // Outputs are observed and corrected power, the correction factor and BSFC.
 func (d *power) Outputs() []pipeline.Channel {
-	return []pipeline.Channel{
-		{Name: "brake_power", Quantity: "power", Unit: pipeline.Watts, Sensor: "observed"},
-		{Name: "corrected_power", Quantity: "power", Unit: pipeline.Watts, Sensor: "corrected_" + d.std.String()},
-		{Name: "correction_factor", Quantity: "power_correction_factor", Unit: pipeline.Ratio, Sensor: d.std.String()},
-		{Name: "bsfc", Quantity: "brake_specific_fuel_consumption", Unit: pipeline.GramsPerJoule, Sensor: "dyno"},
-	}
+	out := pipeline.DerivedOutputs("brake_power", "corrected_power", "correction_factor", "bsfc")
+	// The sensor labels name the standard in use, so that series corrected
+	// to different standards never mix.
+	out[1].Sensor = "corrected_" + d.std.String()
+	out[2].Sensor = d.std.String()
+	return out
 }
 
 // Derive computes power, corrects it for the ambient conditions (measured

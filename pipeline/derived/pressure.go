@@ -24,10 +24,7 @@ func (d *boost) Inputs() []pipeline.Input {
 
 // Outputs are boost and the manifold pressure ratio.
 func (d *boost) Outputs() []pipeline.Channel {
-	return []pipeline.Channel{
-		{Name: "boost_pressure", Quantity: "relative_pressure", Unit: pipeline.Pascal, Sensor: "boost", Min: -110000, Max: 500000},
-		{Name: "manifold_pressure_ratio", Quantity: "pressure_ratio", Unit: pipeline.Ratio, Sensor: "manifold_to_ambient"},
-	}
+	return pipeline.DerivedOutputs("boost_pressure", "manifold_pressure_ratio")
 }
 
 // Derive computes boost and the ratio against the barometric channel or the
@@ -56,7 +53,7 @@ func (d *compressorRatio) Inputs() []pipeline.Input {
 
 // Outputs is the compressor pressure ratio.
 func (d *compressorRatio) Outputs() []pipeline.Channel {
-	return []pipeline.Channel{{Name: "compressor_pressure_ratio", Quantity: "pressure_ratio", Unit: pipeline.Ratio, Sensor: "compressor"}}
+	return pipeline.DerivedOutputs("compressor_pressure_ratio")
 }
 
 // Derive computes the ratio against the first inlet pressure there is.

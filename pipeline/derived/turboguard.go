@@ -33,13 +33,7 @@ func (d *turboGuard) Inputs() []pipeline.Input {
 // Outputs are the warm-up warning, the thermal model's state and the
 // cool-down advice.
 func (d *turboGuard) Outputs() []pipeline.Channel {
-	return []pipeline.Channel{
-		{Name: "turbo_warmup_warning", Quantity: "warmup_warning", Unit: pipeline.None, Sensor: "turbo_guard"},
-		{Name: "turbo_thermal_state", Quantity: "temperature", Unit: pipeline.Celsius, Sensor: "turbo_thermal_model"},
-		{Name: "cooldown_idle_remaining", Quantity: "cooldown_idle_remaining", Unit: pipeline.Seconds, Sensor: "turbo_guard"},
-		{Name: "safe_to_switch_off", Quantity: "switch_off_safe", Unit: pipeline.None, Sensor: "turbo_guard"},
-		{Name: "turbo_shutdown_hot", Quantity: "shutdown_hot", Unit: pipeline.None, Sensor: "turbo_guard", MaxAge: time.Hour},
-	}
+	return pipeline.DerivedOutputs("turbo_warmup_warning", "turbo_thermal_state", "cooldown_idle_remaining", "safe_to_switch_off", "turbo_shutdown_hot")
 }
 
 // Derive updates the warm-up guard and the cool-down timer; switching off

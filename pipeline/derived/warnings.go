@@ -81,7 +81,7 @@ func (w *warnings) Outputs() []pipeline.Channel {
 	out := make([]pipeline.Channel, w.eng.Rules())
 	for i := range out {
 		name := w.ruleName(i)
-		out[i] = pipeline.Channel{Name: "warning_" + name, Quantity: "warning_active", Unit: pipeline.None, Sensor: name, MaxAge: time.Hour}
+		out[i] = pipeline.DerivedOutputs("warning_" + name)[0]
 	}
 	return out
 }
