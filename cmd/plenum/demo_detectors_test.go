@@ -1,66 +1,39 @@
 package main
 
 import (
-	"context"
-	"encoding/json"
-	"sync"
 	"testing"
 	"time"
 
-	paho "github.com/eclipse/paho.mqtt.golang"
-
-	"github.com/plenum-engine/plenum/cmd/plenum/config"
 	"github.com/plenum-engine/plenum/drivers/sim"
-	"github.com/plenum-engine/plenum/pipeline/mqttpub"
+	"github.com/plenum-engine/plenum/pipeline"
 )
 
-// TestDemoDetectors runs one whole drive cycle in real time and checks what the
-// detectors make of it: lag events with plausible figures, the lean moment
-// raising and clearing one warning without flicker, the cold rev tripping the
-// warm-up guard, and the cool-down timer counting down at hot idle.
+// TestDemoDetectors runs one whole drive cycle in simulated time and checks
+// what the detectors make of it: lag events with plausible figures, the lean
+// moment raising and clearing one warning without flicker, the cold rev
+// tripping the warm-up guard, and the cool-down timer counting down at hot
+// idle.
 func TestDemoDetectors(t *testing.T) {
-	if testing.Short() {
-		t.Skip("runs a whole 60 s drive cycle")
+	_, s := demoSimulated(t, 100)
+	remID, ok := s.reg.Lookup("cooldown_idle_remaining")
+	if !ok {
+		t.Fatal("no cooldown_idle_remaining channel")
 	}
-	ctx, cancel := context.WithCancel(context.Background())
-	defer cancel()
-	httpAddr, mqttAddr, done := startDemo(t, ctx, 1, func(c *config.Config) { c.StateDir = t.TempDir() })
-
-	var mu sync.Mutex
-	var events []mqttpub.EventPayload
-	c := paho.NewClient(paho.NewClientOptions().AddBroker("tcp://" + mqttAddr).SetClientID("detectors"))
-	if tok := c.Connect(); !tok.WaitTimeout(5*time.Second) || tok.Error() != nil {
-		t.Fatal(tok.Error())
-	}
-	defer c.Disconnect(100)
-	c.Subscribe("plenum/brackenfell-rs/events", 1, func(_ paho.Client, m paho.Message) {
-		var e mqttpub.EventPayload
-		if err := json.Unmarshal(m.Payload(), &e); err == nil {
-			mu.Lock()
-			events = append(events, e)
-			mu.Unlock()
-		}
-	}).WaitTimeout(5 * time.Second)
-
+	var events []pipeline.Event
 	var remaining []float64
-	end := time.Now().Add(sim.CycleLength() + time.Second)
-	for time.Now().Before(end) {
-		fams, _ := scrape(t, httpAddr)
-		if testing.Verbose() {
-			th, _ := gauge(fams, "plenum_temperature_celsius", "turbo_thermal_model")
-			egt, _ := gauge(fams, "plenum_temperature_celsius", "exhaust")
-			t.Logf("thermal %.0f egt %.0f", th, egt)
+	var buf []pipeline.Sample
+	t0 := time.Unix(1_800_000_000, 0)
+	nextLook := t0
+	s.run(t0, sim.CycleLength()+time.Second, 10*time.Millisecond, func(now time.Time) {
+		buf, events = s.sub.Drain(buf[:0], events)
+		if now.Before(nextLook) {
+			return
 		}
-		if v, ok := gauge(fams, "plenum_cooldown_idle_remaining_seconds", "turbo_guard"); ok {
-			remaining = append(remaining, v)
+		nextLook = now.Add(200 * time.Millisecond) // as a scraper every 200 ms would
+		if v := s.p.Store().Get(remID); v.Set && v.Fresh(now, 2*time.Second) {
+			remaining = append(remaining, v.Value)
 		}
-		time.Sleep(200 * time.Millisecond)
-	}
-	cancel()
-	<-done
-
-	mu.Lock()
-	defer mu.Unlock()
+	})
 	var lags, leanRaised, leanCleared, coldRaised int
 	for _, e := range events {
 		switch {
@@ -80,6 +53,7 @@ func TestDemoDetectors(t *testing.T) {
 			coldRaised++
 		}
 	}
+	t.Logf("%d lag events, lean raised %d cleared %d, cold raised %d, %d cool-down readings", lags, leanRaised, leanCleared, coldRaised, len(remaining))
 	if lags < 2 {
 		t.Errorf("%d lag events, want one per pull (2)", lags)
 	}

@@ -47,39 +47,9 @@ func buildSources(cfg *config.Config, reg *pipeline.Registry, log *slog.Logger) 
 		eng = sim.NewShared(sim.NewEngine(p))
 	}
 	for i, sc := range cfg.Serial {
-		inputs := make([]serial.Input, 0, len(sc.Inputs))
-		for j, in := range sc.Inputs {
-			ch, _ := pipeline.Standard(in.Channel)
-			ch.Source = sc.Name
-			if in.MaxAge > 0 {
-				ch.MaxAge = time.Duration(in.MaxAge)
-			}
-			id, err := reg.Register(ch)
-			if err != nil {
-				return nil, nil, fmt.Errorf("serial[%d].inputs[%d]: %w", i, j, err)
-			}
-			sensor, err := sensorFor(sc, in, ch)
-			if err != nil {
-				return nil, nil, fmt.Errorf("serial[%d].inputs[%d].calibration: %w", i, j, err)
-			}
-			inputs = append(inputs, serial.Input{Key: in.Field, Column: in.Column, Channel: id, Sensor: sensor})
-		}
-		h := pipeline.NewHealth("source", sc.Name)
-		format, sep := serial.Framed, byte(',')
-		if sc.Format == "delimited" {
-			format = serial.Delimited
-			switch sc.Delimiter {
-			case "tab":
-				sep = '\t'
-			case "space":
-				sep = ' '
-			case ";":
-				sep = ';'
-			}
-		}
-		dec, err := serial.NewDecoder(format, sep, inputs, serial.NewCounters(h))
+		dec, h, err := serialDecoder(i, sc, reg)
 		if err != nil {
-			return nil, nil, fmt.Errorf("serial[%d]: %w", i, err)
+			return nil, nil, err
 		}
 		path := sc.Device
 		if cfg.Sim != nil && i == 0 {
@@ -106,6 +76,46 @@ func buildSources(cfg *config.Config, reg *pipeline.Registry, log *slog.Logger) 
 		return nil, nil, err
 	}
 	return append(srcs, obds...), cleanup, nil
+}
+
+// serialDecoder registers the inputs of cfg.Serial[i] and builds its
+// decoder, counting into the health it returns.
+func serialDecoder(i int, sc config.Serial, reg *pipeline.Registry) (*serial.Decoder, *pipeline.Health, error) {
+	inputs := make([]serial.Input, 0, len(sc.Inputs))
+	for j, in := range sc.Inputs {
+		ch, _ := pipeline.Standard(in.Channel)
+		ch.Source = sc.Name
+		if in.MaxAge > 0 {
+			ch.MaxAge = time.Duration(in.MaxAge)
+		}
+		id, err := reg.Register(ch)
+		if err != nil {
+			return nil, nil, fmt.Errorf("serial[%d].inputs[%d]: %w", i, j, err)
+		}
+		sensor, err := sensorFor(sc, in, ch)
+		if err != nil {
+			return nil, nil, fmt.Errorf("serial[%d].inputs[%d].calibration: %w", i, j, err)
+		}
+		inputs = append(inputs, serial.Input{Key: in.Field, Column: in.Column, Channel: id, Sensor: sensor})
+	}
+	h := pipeline.NewHealth("source", sc.Name)
+	format, sep := serial.Framed, byte(',')
+	if sc.Format == "delimited" {
+		format = serial.Delimited
+		switch sc.Delimiter {
+		case "tab":
+			sep = '\t'
+		case "space":
+			sep = ' '
+		case ";":
+			sep = ';'
+		}
+	}
+	dec, err := serial.NewDecoder(format, sep, inputs, serial.NewCounters(h))
+	if err != nil {
+		return nil, nil, fmt.Errorf("serial[%d]: %w", i, err)
+	}
+	return dec, h, nil
 }
 
 func sensorFor(sc config.Serial, in config.SerialInput, ch pipeline.Channel) (calib.Sensor, error) {
