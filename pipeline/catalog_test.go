@@ -67,3 +67,21 @@ func TestCheckCatalogued(t *testing.T) {
 		t.Errorf("CheckCatalogued = %v, want the unknown and the mis-unit channel", bad)
 	}
 }
+
+// The zero Registry and the zero Health are ready to use.
+func TestZeroValuesUsable(t *testing.T) {
+	var reg Registry
+	if _, ok := reg.Lookup("x"); ok || reg.Len() != 0 {
+		t.Fatal("an empty registry knows a channel")
+	}
+	id, err := reg.Register(Channel{Name: "x"})
+	if err != nil || id != 0 || reg.Channel(id).Name != "x" {
+		t.Fatalf("Register on the zero Registry: %v, %v", id, err)
+	}
+	var h Health
+	h.Counter("frames").Add(2)
+	h.SetUp(true)
+	if r := h.Report(); !r.Up || len(r.Counters) != 1 || r.Counters[0].Value != 2 {
+		t.Fatalf("zero Health report %+v", r)
+	}
+}

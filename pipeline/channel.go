@@ -69,8 +69,9 @@ func (c Channel) Age() time.Duration {
 	return c.MaxAge
 }
 
-// Registry assigns dense IDs to channels. It is safe for concurrent use;
-// lookups after start-up take a read lock only.
+// Registry assigns dense IDs to channels. The zero value is an empty
+// registry ready to use. It is safe for concurrent use; lookups after
+// start-up take a read lock only.
 type Registry struct {
 	mu     sync.RWMutex
 	byName map[string]ChannelID
@@ -88,6 +89,9 @@ func (r *Registry) Register(c Channel) (ChannelID, error) {
 	}
 	r.mu.Lock()
 	defer r.mu.Unlock()
+	if r.byName == nil {
+		r.byName = map[string]ChannelID{}
+	}
 	if id, ok := r.byName[c.Name]; ok {
 		if r.chans[id].Unit != c.Unit {
 			return 0, fmt.Errorf("channel %q: registered as %q, now %q", c.Name, r.chans[id].Unit, c.Unit)
