@@ -9,6 +9,7 @@ import (
 	"sync/atomic"
 	"time"
 
+	"github.com/plenum-engine/plenum/drivers/clock"
 	"github.com/plenum-engine/plenum/pipeline"
 )
 
@@ -41,9 +42,9 @@ const MaxPriority = 9
 // Config configures a Poller. Zero durations take the defaults shown.
 type Config struct {
 	Transport Transport
-	Clock     Clock  // default SystemClock
-	Format    Format // identifier format of the bus
-	ECUs      []Addr // physical ECUs to poll; empty: discover them
+	Clock     clock.Clock // default clock.System
+	Format    Format      // identifier format of the bus
+	ECUs      []Addr      // physical ECUs to poll; empty: discover them
 	Channels  []PollChannel
 	Signals   []PollSignal
 	Emit      EmitFunc // required
@@ -89,7 +90,7 @@ func NewPoller(cfg Config) (*Poller, error) {
 		return nil, errors.New("obd: Config.Emit is nil")
 	}
 	if cfg.Clock == nil {
-		cfg.Clock = SystemClock{}
+		cfg.Clock = clock.System{}
 	}
 	if cfg.Format != ID11 && cfg.Format != ID29 {
 		return nil, fmt.Errorf("obd: Config.Format %d unknown", uint8(cfg.Format))

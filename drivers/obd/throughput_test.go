@@ -7,6 +7,7 @@ import (
 	"time"
 
 	"github.com/plenum-engine/plenum/drivers/can"
+	"github.com/plenum-engine/plenum/drivers/clock"
 	"github.com/plenum-engine/plenum/drivers/obd"
 	"github.com/plenum-engine/plenum/drivers/obdcan"
 	"github.com/plenum-engine/plenum/drivers/sim"
@@ -31,13 +32,9 @@ var tpChannels = []struct {
 	{"ecu_timing_advance", 0x0E},
 }
 
-func tpRig(b *testing.B, clk sim.Clock) (*can.VirtualBus, *obdcan.Transport, sim.State) {
+func tpRig(b *testing.B, clk clock.Clock) (*can.VirtualBus, *obdcan.Transport, sim.State) {
 	b.Helper()
-	var busClk can.Clock // nil: the bus's SystemClock
-	if clk != nil {
-		busClk = clk
-	}
-	bus, err := can.NewVirtualBus(can.VirtualConfig{BitRate: tpBitRate, Clock: busClk})
+	bus, err := can.NewVirtualBus(can.VirtualConfig{BitRate: tpBitRate, Clock: clk})
 	if err != nil {
 		b.Fatal(err)
 	}
@@ -103,15 +100,15 @@ func exchangeWireTime(b *testing.B, st sim.State) (time.Duration, int) {
 // the theoretical limit of our exchange pattern.
 //
 // clock=precise times the virtual bus's frames and the ECU's response time
-// with sim.PreciseClock, so the rig runs at the modelled speed; clock=system
+// with clock.Precise, so the rig runs at the modelled speed; clock=system
 // uses Go's timers, which here wake up to ~1 ms late and so stretch every
 // 0.25 ms frame: it measures the rig's timer overhead as much as the Poller.
 func BenchmarkPollerThroughput(b *testing.B) {
-	b.Run("clock=precise", func(b *testing.B) { throughput(b, sim.PreciseClock{}) })
+	b.Run("clock=precise", func(b *testing.B) { throughput(b, clock.Precise{}) })
 	b.Run("clock=system", func(b *testing.B) { throughput(b, nil) })
 }
 
-func throughput(b *testing.B, clk sim.Clock) {
+func throughput(b *testing.B, clk clock.Clock) {
 	_, tr, st := tpRig(b, clk)
 	wire, frames := exchangeWireTime(b, st)
 	limit := float64(len(tpChannels)) / (wire + tpResponseTime).Seconds()

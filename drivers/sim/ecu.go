@@ -5,67 +5,15 @@ import (
 	"errors"
 	"fmt"
 	"math"
-	"runtime"
 	"sync"
 	"sync/atomic"
 	"time"
 
 	"github.com/plenum-engine/plenum/drivers/can"
+	"github.com/plenum-engine/plenum/drivers/clock"
 	"github.com/plenum-engine/plenum/drivers/isotp"
 	"github.com/plenum-engine/plenum/drivers/obd"
 )
-
-// Clock supplies time to a simulated ECU, so tests can inject their own.
-type Clock interface {
-	Now() time.Time
-	After(d time.Duration) <-chan time.Time
-}
-
-type wallClock struct{}
-
-func (wallClock) Now() time.Time                         { return time.Now() }
-func (wallClock) After(d time.Duration) <-chan time.Time { return time.After(d) }
-
-// PreciseClock is a wall clock whose After fires within microseconds of the
-// deadline. Go's timers can wake up to about a millisecond late when the
-// process is idle (measured on the development machine: time.After(250 µs)
-// returned after 1.1 ms on average), which swamps the 0.25 ms wire time of a
-// CAN frame at 500 kbit/s. PreciseClock sleeps with a timer until Spin before
-// the deadline and then yields in a loop until it passes, so it costs CPU:
-// use it for benchmarks and timing tests of the virtual bus and the
-// simulated ECU (can.VirtualConfig.Clock, ECUConfig.Clock), not in production.
-type PreciseClock struct {
-	// Spin is how long before the deadline the clock stops sleeping and
-	// starts polling (default 1.5 ms).
-	Spin time.Duration
-}
-
-// Now returns time.Now().
-func (PreciseClock) Now() time.Time { return time.Now() }
-
-// After returns a channel that receives the time once d has passed.
-func (c PreciseClock) After(d time.Duration) <-chan time.Time {
-	ch := make(chan time.Time, 1)
-	deadline := time.Now().Add(d)
-	spin := c.Spin
-	if spin <= 0 {
-		spin = 1500 * time.Microsecond
-	}
-	go func() {
-		if coarse := time.Until(deadline) - spin; coarse > 0 {
-			time.Sleep(coarse)
-		}
-		for {
-			now := time.Now()
-			if !now.Before(deadline) {
-				ch <- now
-				return
-			}
-			runtime.Gosched()
-		}
-	}()
-	return ch
-}
 
 // ECUConfig configures a simulated ECU. Only Source is required.
 type ECUConfig struct {
@@ -105,7 +53,7 @@ type ECUConfig struct {
 	// 0x01 reports their count and the MIL.
 	DTCs []obd.DTC
 	// Clock times ResponseTime (default the wall clock).
-	Clock Clock
+	Clock clock.Clock
 	// NBs and NCr are the ISO-TP timeouts (default isotp.OBDNBs, OBDNCr).
 	NBs, NCr time.Duration
 }
@@ -199,7 +147,7 @@ func NewECU(bus can.Bus, cfg ECUConfig) (*ECU, error) {
 		return nil, fmt.Errorf("sim: ECUConfig.DTCs: %d codes, at most 127 fit PID 0x01", len(cfg.DTCs))
 	}
 	if cfg.Clock == nil {
-		cfg.Clock = wallClock{}
+		cfg.Clock = clock.System{}
 	}
 	if cfg.NBs == 0 {
 		cfg.NBs = isotp.OBDNBs

@@ -209,17 +209,6 @@ func TestNewECURejects(t *testing.T) {
 	}
 }
 
-func TestPreciseClock(t *testing.T) {
-	var c PreciseClock
-	for _, d := range []time.Duration{0, 200 * time.Microsecond, 3 * time.Millisecond} {
-		start := time.Now()
-		at := <-c.After(d)
-		if at.Sub(start) < d {
-			t.Errorf("After(%v) fired after %v", d, at.Sub(start))
-		}
-	}
-}
-
 func TestShared(t *testing.T) {
 	s := NewShared(NewEngine(DefaultParams()))
 	done := make(chan struct{})
