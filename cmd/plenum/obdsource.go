@@ -5,7 +5,6 @@ import (
 	"errors"
 	"fmt"
 	"log/slog"
-	"sync/atomic"
 	"time"
 
 	"github.com/plenum-engine/plenum/cmd/plenum/config"
@@ -17,69 +16,64 @@ import (
 	"github.com/plenum-engine/plenum/pipeline"
 )
 
-// obdSource polls an ECU over CAN and feeds the pipeline.
+// obdSource runs an obdcan.Source on the bus it owns.
 type obdSource struct {
-	name    string
-	bus     can.Bus
-	tr      *obdcan.Transport
-	poller  *obd.Poller
-	ids     []pipeline.ChannelID // by obd.ChannelIndex; noID where not polled
+	*obdcan.Source
 	sink    serial.Sink
 	health  *pipeline.Health
-	reads   *atomic.Uint64
-	lastAny atomic.Int64
-	log     *slog.Logger
 	closers []func()
 }
 
-const noID = pipeline.ChannelID(1<<16 - 1)
-
-func (s *obdSource) Name() string { return s.name }
-
-// Run polls until ctx is done. A failing bus is retried by the poller; Run
-// also marks the source down after a second without readings.
+// Run polls until ctx is done, then closes the bus.
 func (s *obdSource) Run(ctx context.Context) error {
 	defer func() {
 		for _, c := range s.closers {
 			c()
 		}
 	}()
+	// TODO(lead): once promexport.New takes Reporters, hand it s.Source and
+	// delete this copy into the HealthSet.
+	stop := make(chan struct{})
+	defer close(stop)
 	go func() {
 		t := time.NewTicker(250 * time.Millisecond)
 		defer t.Stop()
 		for {
 			select {
-			case <-ctx.Done():
+			case <-stop:
 				return
 			case <-t.C:
-				s.health.SetUp(time.Since(time.Unix(0, s.lastAny.Load())) < time.Second)
-				st := s.poller.Stats()
-				s.health.Counter("requests").Store(st.Requests)
-				s.health.Counter("responses").Store(st.Responses)
-				s.health.Counter("timeouts").Store(st.Timeouts)
-				s.health.Counter("negative_responses").Store(st.NRCs)
-				s.health.Counter("receive_errors").Store(st.ReceiveErrors)
+				copyReport(s.health, s.Report())
 			}
 		}
 	}()
-	err := s.poller.Run(ctx)
-	s.health.SetUp(false)
-	if ctx.Err() != nil {
-		return ctx.Err()
-	}
+	err := s.Source.Run(ctx, putEach{s.sink})
+	copyReport(s.health, s.Report())
 	return err
 }
 
-func (s *obdSource) emit(_ obd.Addr, ch obd.ChannelIndex, v float64, t time.Time) {
-	if int(ch) >= len(s.ids) || s.ids[ch] == noID {
-		return
+// copyReport mirrors r into h.
+func copyReport(h *pipeline.Health, r pipeline.HealthReport) {
+	h.SetUp(r.Up)
+	for _, c := range r.Counters {
+		h.Counter(c.Name).Store(c.Value)
 	}
-	s.reads.Add(1)
-	s.lastAny.Store(time.Now().UnixNano())
-	s.sink.Put(pipeline.Sample{Channel: s.ids[ch], Value: v, Time: t})
 }
 
-// buildOBDSources registers the polled OBD channels and builds the pollers.
+// putEach adapts a per-sample sink to obdcan.Sink.
+// TODO(lead): pass the *pipeline.Pipeline (PutFrame) directly and delete this.
+type putEach struct{ serial.Sink }
+
+// PutFrame puts each sample; it reports whether all were accepted.
+func (p putEach) PutFrame(ss []pipeline.Sample) bool {
+	ok := true
+	for _, s := range ss {
+		ok = p.Put(s) && ok
+	}
+	return ok
+}
+
+// buildOBDSources registers the polled OBD channels and builds the sources.
 // A "sim" bus gets a virtual bus at the configured bit rate with a simulated
 // ECU answering from eng.
 func buildOBDSources(cfg *config.Config, reg *pipeline.Registry, sink serial.Sink, health *pipeline.HealthSet, eng *sim.Shared, log *slog.Logger) ([]source, error) {
@@ -89,44 +83,23 @@ func buildOBDSources(cfg *config.Config, reg *pipeline.Registry, sink serial.Sin
 		if cc.Format == "29bit" {
 			format = obd.ID29
 		}
-		s := &obdSource{name: cc.Name, sink: sink, health: health.Source(cc.Name), log: log}
-		s.reads = s.health.Counter("readings")
-		var pcs []obd.PollChannel
-		s.ids = make([]pipeline.ChannelID, obd.NumStandardChannels())
-		for k := range s.ids {
-			s.ids[k] = noID
+		sc := obdcan.Config{Name: cc.Name, Format: format, SinglePID: cc.SinglePID}
+		for _, ch := range cc.Channels {
+			sc.Channels = append(sc.Channels, obdcan.Channel{Name: ch.Name, RateHz: ch.RateHz, Priority: ch.Priority})
 		}
-		for j, ch := range cc.Channels {
-			idx, _, ok := obd.LookupChannel(ch.Name)
-			if !ok {
-				return nil, fmt.Errorf("can[%d].channels[%d]: unknown OBD channel %q", i, j, ch.Name)
-			}
-			def, _, _ := obd.StandardChannel(idx)
-			def.Source = cc.Name
-			def.Sensor = ch.Name
-			def.MaxAge = max(time.Second, time.Duration(3*float64(time.Second)/ch.RateHz))
-			id, err := reg.Register(def)
-			if err != nil {
-				return nil, fmt.Errorf("can[%d].channels[%d]: %w", i, j, err)
-			}
-			s.ids[idx] = id
-			pcs = append(pcs, obd.PollChannel{Name: ch.Name, Interval: time.Duration(float64(time.Second) / ch.RateHz), Priority: ch.Priority})
-		}
+		var bus can.Bus
+		var closers []func()
 		if cc.Bus == "sim" {
 			if eng == nil {
 				return nil, fmt.Errorf("can[%d]: bus sim needs the simulator section", i)
 			}
-			vb, err := can.NewVirtualBus(can.VirtualConfig{BitRate: cc.BitRate})
+			rig, err := sim.NewRig(context.Background(), sim.RigConfig{Bus: can.VirtualConfig{BitRate: cc.BitRate},
+				ECU: sim.ECUConfig{Format: format, Source: eng.State, ResponseTime: 5 * time.Millisecond}})
 			if err != nil {
-				return nil, fmt.Errorf("can[%d]: %w", i, err)
-			}
-			ecu, err := sim.NewECU(vb.NewNode(), sim.ECUConfig{Format: format, Source: eng.State, ResponseTime: 5 * time.Millisecond})
-			if err != nil {
-				vb.Close()
 				return nil, fmt.Errorf("can[%d]: simulated ECU: %w", i, err)
 			}
-			s.bus = vb.NewNode()
-			s.closers = append(s.closers, func() { ecu.Close() }, func() { vb.Close() })
+			bus = rig.Node()
+			closers = append(closers, func() { rig.Close() })
 		} else {
 			b, err := can.DialSocketCAN(cc.Bus)
 			if err != nil {
@@ -135,21 +108,19 @@ func buildOBDSources(cfg *config.Config, reg *pipeline.Registry, sink serial.Sin
 				}
 				return nil, fmt.Errorf("can[%d]: %w", i, err)
 			}
-			s.bus = b
-			s.closers = append(s.closers, func() { b.Close() })
+			bus = b
+			closers = append(closers, func() { b.Close() })
 		}
-		tr, err := obdcan.New(s.bus, format)
+		src, err := obdcan.NewSource(bus, reg, sc)
 		if err != nil {
+			for _, c := range closers {
+				c()
+			}
 			return nil, fmt.Errorf("can[%d]: %w", i, err)
 		}
-		s.tr = tr
-		s.closers = append([]func(){func() { tr.Close() }}, s.closers...)
-		p, err := obd.NewPoller(obd.Config{Transport: tr, Format: format, Channels: pcs, Emit: s.emit, SinglePID: cc.SinglePID})
-		if err != nil {
-			return nil, fmt.Errorf("can[%d]: %w", i, err)
-		}
-		s.poller = p
-		out = append(out, s)
+		h := health.Source(cc.Name)
+		copyReport(h, src.Report()) // down, counters at zero
+		out = append(out, &obdSource{Source: src, sink: sink, health: h, closers: closers})
 	}
 	return out, nil
 }

@@ -122,12 +122,14 @@ func throughput(b *testing.B, clk clock.Clock) {
 	for i, c := range tpChannels {
 		cs[i] = obd.PollChannel{Name: c.name, Interval: time.Millisecond}
 	}
-	p, err := obd.NewPoller(obd.Config{Transport: tr, Channels: cs, Emit: func(obd.Addr, obd.ChannelIndex, float64, time.Time) {
-		switch k := n.Add(1); k {
-		case 60:
-			start.Store(time.Now().UnixNano())
-		case target:
-			done <- time.Now()
+	p, err := obd.NewPoller(obd.Config{Transport: tr, Channels: cs, Emit: func(_ obd.Addr, _ time.Time, rs []obd.Reading) {
+		for range rs {
+			switch k := n.Add(1); k {
+			case 60:
+				start.Store(time.Now().UnixNano())
+			case target:
+				done <- time.Now()
+			}
 		}
 	}})
 	if err != nil {

@@ -60,7 +60,7 @@ type readings struct {
 	n  map[obd.Addr]map[obd.ChannelIndex]int
 }
 
-func (r *readings) emit(a obd.Addr, ch obd.ChannelIndex, v float64, _ time.Time) {
+func (r *readings) emit(a obd.Addr, _ time.Time, rs []obd.Reading) {
 	r.mu.Lock()
 	defer r.mu.Unlock()
 	if r.v == nil {
@@ -69,8 +69,10 @@ func (r *readings) emit(a obd.Addr, ch obd.ChannelIndex, v float64, _ time.Time)
 	if r.v[a] == nil {
 		r.v[a], r.n[a] = map[obd.ChannelIndex]float64{}, map[obd.ChannelIndex]int{}
 	}
-	r.v[a][ch] = v
-	r.n[a][ch]++
+	for _, x := range rs {
+		r.v[a][x.Channel] = x.Value
+		r.n[a][x.Channel]++
+	}
 }
 
 func (r *readings) get(a obd.Addr, ch obd.ChannelIndex) (float64, int) {
