@@ -9,8 +9,8 @@ import (
 type recorder struct {
 	frames int // EmitFunc calls
 	n      map[string]int
-	last  map[string]float64
-	times map[string][]time.Time
+	last   map[string]float64
+	times  map[string][]time.Time
 }
 
 func newRecorder() *recorder {
