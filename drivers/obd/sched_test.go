@@ -7,10 +7,9 @@ import (
 )
 
 type recorder struct {
-	frames int // EmitFunc calls
-	n      map[string]int
-	last   map[string]float64
-	times  map[string][]time.Time
+	n     map[string]int
+	last  map[string]float64
+	times map[string][]time.Time
 }
 
 func newRecorder() *recorder {
@@ -26,7 +25,6 @@ func (r *recorder) name(ch ChannelIndex) string {
 }
 
 func (r *recorder) emit(_ Addr, t time.Time, rs []Reading) {
-	r.frames++
 	for _, x := range rs {
 		n := r.name(x.Channel)
 		r.n[n]++

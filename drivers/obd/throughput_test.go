@@ -34,24 +34,20 @@ var tpChannels = []struct {
 
 func tpRig(b *testing.B, clk clock.Clock) (*can.VirtualBus, *obdcan.Transport, sim.State) {
 	b.Helper()
-	bus, err := can.NewVirtualBus(can.VirtualConfig{BitRate: tpBitRate, Clock: clk})
-	if err != nil {
-		b.Fatal(err)
-	}
-	b.Cleanup(func() { _ = bus.Close() })
 	eng := sim.NewShared(sim.NewEngine(sim.DefaultParams()))
 	st := eng.Step(20 * time.Second)
-	ecu, err := sim.NewECU(bus.NewNode(), sim.ECUConfig{Source: eng.State, ResponseTime: tpResponseTime, Clock: clk})
+	rig, err := sim.NewRig(context.Background(), sim.RigConfig{Bus: can.VirtualConfig{BitRate: tpBitRate, Clock: clk},
+		ECU: sim.ECUConfig{Source: eng.State, ResponseTime: tpResponseTime}})
 	if err != nil {
 		b.Fatal(err)
 	}
-	b.Cleanup(func() { _ = ecu.Close() })
-	tr, err := obdcan.New(bus.NewNode(), obd.ID11)
+	b.Cleanup(func() { _ = rig.Close() })
+	tr, err := obdcan.New(rig.Node(), obd.ID11)
 	if err != nil {
 		b.Fatal(err)
 	}
 	b.Cleanup(func() { _ = tr.Close() })
-	return bus, tr, st
+	return rig.Bus, tr, st
 }
 
 // exchangeWireTime is the wire time of one exchange of our pattern: the

@@ -28,29 +28,25 @@ func pullState(t *testing.T) sim.State {
 }
 
 type rig struct {
-	bus *can.VirtualBus
+	*sim.Rig
 	ecu *sim.ECU
 	tr  *obdcan.Transport
 }
 
+// newRig is a 500 kbit/s sim.Rig with a Transport on its own node.
 func newRig(t testing.TB, cfg sim.ECUConfig) *rig {
 	t.Helper()
-	b, err := can.NewVirtualBus(can.VirtualConfig{BitRate: 500_000})
+	r, err := sim.NewRig(context.Background(), sim.RigConfig{Bus: can.VirtualConfig{BitRate: 500_000}, ECU: cfg})
 	if err != nil {
 		t.Fatal(err)
 	}
-	t.Cleanup(func() { _ = b.Close() })
-	ecu, err := sim.NewECU(b.NewNode(), cfg)
-	if err != nil {
-		t.Fatal(err)
-	}
-	t.Cleanup(func() { _ = ecu.Close() })
-	tr, err := obdcan.New(b.NewNode(), cfg.Format)
+	t.Cleanup(func() { _ = r.Close() })
+	tr, err := obdcan.New(r.Node(), cfg.Format)
 	if err != nil {
 		t.Fatal(err)
 	}
 	t.Cleanup(func() { _ = tr.Close() })
-	return &rig{bus: b, ecu: ecu, tr: tr}
+	return &rig{Rig: r, ecu: r.ECU, tr: tr}
 }
 
 // readings collects the Poller's values by ECU and channel.

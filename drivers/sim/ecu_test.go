@@ -2,6 +2,7 @@ package sim
 
 import (
 	"bytes"
+	"context"
 	"math"
 	"testing"
 	"time"
@@ -12,20 +13,15 @@ import (
 
 func testECU(t *testing.T, cfg ECUConfig) *ECU {
 	t.Helper()
-	b, err := can.NewVirtualBus(can.VirtualConfig{})
-	if err != nil {
-		t.Fatal(err)
-	}
-	t.Cleanup(func() { _ = b.Close() })
 	if cfg.Source == nil {
 		cfg.Source = func() State { return State{} }
 	}
-	e, err := NewECU(b.NewNode(), cfg)
+	r, err := NewRig(context.Background(), RigConfig{ECU: cfg})
 	if err != nil {
 		t.Fatal(err)
 	}
-	t.Cleanup(func() { _ = e.Close() })
-	return e
+	t.Cleanup(func() { _ = r.Close() })
+	return r.ECU
 }
 
 // TestEncodersRoundTrip encodes states across the drive cycle and decodes
