@@ -12,7 +12,11 @@ import (
 
 type countSink struct{ frames, samples int }
 
-func (c *countSink) PutFrame(ss []pipeline.Sample) bool { c.frames++; c.samples += len(ss); return true }
+func (c *countSink) PutFrame(ss []pipeline.Sample) bool {
+	c.frames++
+	c.samples += len(ss)
+	return true
+}
 
 // TestReportUpWindow drives the injected clock: the source is up while the
 // last reading is less than UpWindow old, and only while it runs.
