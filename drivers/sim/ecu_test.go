@@ -55,7 +55,7 @@ func TestEncodersRoundTrip(t *testing.T) {
 	for step := 0; step < 600; step++ {
 		s := eng.Step(100 * time.Millisecond)
 		for _, pid := range EncodablePIDs() {
-			data := encoders[pid](nil, &s, e)
+			data := e.encode(nil, pid, &s)
 			if n, _ := obd.PIDLength(pid); n != len(data) {
 				t.Fatalf("PID 0x%02X: %d bytes, table says %d", uint8(pid), len(data), n)
 			}
@@ -175,7 +175,7 @@ func TestFullBitmaps(t *testing.T) {
 		if obd.IsBitmapPID(obd.PID(p)) {
 			continue
 		}
-		if set.Has(obd.PID(p)) != (encoders[p] != nil) {
+		if set.Has(obd.PID(p)) != encoding.encodable.Has(obd.PID(p)) {
 			t.Errorf("PID 0x%02X: bitmap says %v", p, set.Has(obd.PID(p)))
 		}
 	}
