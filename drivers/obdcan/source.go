@@ -58,15 +58,15 @@ const noID = pipeline.ChannelID(1<<16 - 1)
 // Source polls the ECUs on one CAN bus and hands each answer's readings to a
 // Sink. Build it with NewSource; Run it once.
 type Source struct {
-	name     string
-	clk      clock.Clock
-	tr       *Transport
-	poller   *obd.Poller
-	ids      []pipeline.ChannelID // by obd.ChannelIndex; noID where not polled
-	readings atomic.Uint64
-	last     atomic.Int64 // UnixNano of the last reading; 0: none yet
-	running  atomic.Bool
-	closeMu  sync.Once
+	name      string
+	clk       clock.Clock
+	tr        *Transport
+	poller    *obd.Poller
+	ids       []pipeline.ChannelID // by obd.ChannelIndex; noID where not polled
+	readings  atomic.Uint64
+	last      atomic.Int64 // UnixNano of the last reading; 0: none yet
+	running   atomic.Bool
+	closeOnce sync.Once
 
 	mu    sync.Mutex // serialises emit: ECUs answer concurrently
 	sink  Sink
@@ -144,7 +144,7 @@ func (s *Source) Run(ctx context.Context, sink Sink) error {
 // Source that is never run. It does not close the bus.
 func (s *Source) Close() error {
 	var err error
-	s.closeMu.Do(func() { err = s.tr.Close() })
+	s.closeOnce.Do(func() { err = s.tr.Close() })
 	return err
 }
 
