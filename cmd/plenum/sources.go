@@ -71,7 +71,8 @@ func buildSources(cfg *config.Config, reg *pipeline.Registry, log *slog.Logger) 
 	if eng != nil && len(cfg.Serial) == 0 {
 		return nil, nil, fmt.Errorf("simulator: needs a serial source to drive (the simulated microcontroller steps the engine)")
 	}
-	obds, err := buildOBDSources(cfg, reg, eng, log)
+	obds, closers, err := buildOBDSources(cfg, reg, eng)
+	cleanups = append(cleanups, closers...)
 	if err != nil {
 		return nil, nil, err
 	}

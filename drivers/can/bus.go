@@ -3,7 +3,6 @@ package can
 import (
 	"context"
 	"errors"
-	"time"
 )
 
 // ErrClosed is returned by a Bus (or node) that has been closed.
@@ -24,18 +23,3 @@ type Bus interface {
 	// Close releases the bus; it is safe to call more than once.
 	Close() error
 }
-
-// Clock supplies time to the virtual bus so tests and replays can inject their own.
-type Clock interface {
-	Now() time.Time
-	After(d time.Duration) <-chan time.Time
-}
-
-// SystemClock is the wall clock.
-type SystemClock struct{}
-
-// Now returns time.Now().
-func (SystemClock) Now() time.Time { return time.Now() }
-
-// After returns time.After(d).
-func (SystemClock) After(d time.Duration) <-chan time.Time { return time.After(d) }

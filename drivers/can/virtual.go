@@ -8,6 +8,8 @@ import (
 	"slices"
 	"sync"
 	"time"
+
+	"github.com/plenum-engine/plenum/drivers/clock"
 )
 
 // VirtualConfig configures a VirtualBus. The zero value is a bus without
@@ -18,8 +20,8 @@ type VirtualConfig struct {
 	BitRate int
 	// Stuffing selects how stuff bits are counted (default StuffActual).
 	Stuffing Stuffing
-	// Clock supplies time (default SystemClock).
-	Clock Clock
+	// Clock supplies time (default clock.System).
+	Clock clock.Clock
 	// RxQueue is each node's receive queue length in frames (default 1024).
 	// A frame arriving at a full queue is dropped for that node and counted
 	// in VirtualStats.Overruns, as a CAN controller's overrun would be.
@@ -107,7 +109,7 @@ type VirtualStats struct {
 // Create it with NewVirtualBus, add nodes with NewNode, and Close it when done.
 type VirtualBus struct {
 	cfg   VirtualConfig
-	clock Clock
+	clock clock.Clock
 
 	mu      sync.Mutex
 	nodes   []*VirtualNode
@@ -141,7 +143,7 @@ func NewVirtualBus(cfg VirtualConfig) (*VirtualBus, error) {
 		cfg.ReorderHold = 5 * time.Millisecond
 	}
 	if cfg.Clock == nil {
-		cfg.Clock = SystemClock{}
+		cfg.Clock = clock.System{}
 	}
 	b := &VirtualBus{
 		cfg:       cfg,

@@ -6,46 +6,9 @@ import (
 	"sync"
 	"testing"
 	"time"
+
+	"github.com/plenum-engine/plenum/drivers/clock"
 )
-
-// manualClock fires After channels only when the test advances it.
-type manualClock struct {
-	mu      sync.Mutex
-	now     time.Time
-	waiters []manualWaiter
-}
-
-type manualWaiter struct {
-	at time.Time
-	ch chan time.Time
-}
-
-func (c *manualClock) Now() time.Time { c.mu.Lock(); defer c.mu.Unlock(); return c.now }
-
-func (c *manualClock) After(d time.Duration) <-chan time.Time {
-	c.mu.Lock()
-	defer c.mu.Unlock()
-	ch := make(chan time.Time, 1)
-	c.waiters = append(c.waiters, manualWaiter{c.now.Add(d), ch})
-	return ch
-}
-
-func (c *manualClock) pending() int { c.mu.Lock(); defer c.mu.Unlock(); return len(c.waiters) }
-
-func (c *manualClock) Advance(d time.Duration) {
-	c.mu.Lock()
-	defer c.mu.Unlock()
-	c.now = c.now.Add(d)
-	kept := c.waiters[:0]
-	for _, w := range c.waiters {
-		if !w.at.After(c.now) {
-			w.ch <- c.now
-		} else {
-			kept = append(kept, w)
-		}
-	}
-	c.waiters = kept
-}
 
 func waitFor(t *testing.T, what string, cond func() bool) {
 	t.Helper()
@@ -105,7 +68,7 @@ func TestVirtualBusBroadcastToAllOtherNodes(t *testing.T) {
 }
 
 func TestVirtualBusArbitrationLowestIDWins(t *testing.T) {
-	clk := &manualClock{now: time.Unix(1000, 0)}
+	clk := clock.NewManual(time.Unix(1000, 0))
 	b := newBus(t, VirtualConfig{BitRate: 500_000, Clock: clk})
 	first, rx := b.NewNode(), b.NewNode()
 	senders := []*VirtualNode{b.NewNode(), b.NewNode(), b.NewNode(), b.NewNode()}
@@ -113,7 +76,7 @@ func TestVirtualBusArbitrationLowestIDWins(t *testing.T) {
 	var wg sync.WaitGroup
 	wg.Add(1)
 	go func() { defer wg.Done(); _ = first.Send(context.Background(), Frame{ID: 0x7FF, DLC: 8}) }()
-	waitFor(t, "first frame on the wire", func() bool { return clk.pending() == 1 })
+	waitFor(t, "first frame on the wire", func() bool { return clk.Pending() == 1 })
 	for i, n := range senders {
 		f := Frame{ID: ids[i], DLC: 1, Data: [8]byte{byte(i)}}
 		if f.ID > MaxStandardID {

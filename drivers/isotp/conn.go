@@ -9,18 +9,8 @@ import (
 	"time"
 
 	"github.com/plenum-engine/plenum/drivers/can"
+	"github.com/plenum-engine/plenum/drivers/clock"
 )
-
-// Clock supplies time to a Conn, so tests can inject their own.
-type Clock interface {
-	Now() time.Time
-	After(d time.Duration) <-chan time.Time
-}
-
-type systemClock struct{}
-
-func (systemClock) Now() time.Time                         { return time.Now() }
-func (systemClock) After(d time.Duration) <-chan time.Time { return time.After(d) }
 
 // PadMode selects how frames shorter than 8 bytes are sent.
 type PadMode uint8
@@ -78,7 +68,7 @@ type Config struct {
 	StrictDLC bool
 
 	// Clock supplies time for STmin and timeouts (default the wall clock).
-	Clock Clock
+	Clock clock.Clock
 	// Queue is the number of completed messages buffered for Receive
 	// (default 64); when full, the oldest is dropped and counted.
 	Queue int
@@ -108,7 +98,7 @@ type Stats struct {
 type Conn struct {
 	bus   can.Bus
 	cfg   Config
-	clock Clock
+	clock clock.Clock
 	stmin byte
 
 	ctx    context.Context
@@ -174,7 +164,7 @@ func NewConn(bus can.Bus, cfg Config) (*Conn, error) {
 		cfg.Queue = 64
 	}
 	if cfg.Clock == nil {
-		cfg.Clock = systemClock{}
+		cfg.Clock = clock.System{}
 	}
 	c := &Conn{
 		bus: bus, cfg: cfg, clock: cfg.Clock, stmin: stmin,

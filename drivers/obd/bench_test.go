@@ -37,7 +37,7 @@ func TestSchedulerResponseZeroAlloc(t *testing.T) {
 	f := newFakeECU(Addr{}, time.Millisecond)
 	fill(f, 0x0C, 0x0D, 0x05, 0x0B, 0x0F, 0x11)
 	e, _ := newTestSched(t, f, Config{Channels: sixChannels})
-	e.cfg.emit = func(Addr, ChannelIndex, float64, time.Time) {}
+	e.cfg.emit = func(Addr, time.Time, []Reading) {}
 	e.bitmapBase = -1
 	now := t0
 	payload := []byte{0x41, 0x0C, 0x1A, 0xF8, 0x0D, 0x32, 0x05, 0x5A, 0x0B, 0x65, 0x0F, 0x40, 0x11, 0x80}
@@ -80,7 +80,7 @@ func BenchmarkSchedulerExchange(b *testing.B) {
 		b.Fatal(err)
 	}
 	e := newECUSched(Addr{}, &p.sc, p.items, t0)
-	e.cfg.emit = func(Addr, ChannelIndex, float64, time.Time) {}
+	e.cfg.emit = func(Addr, time.Time, []Reading) {}
 	e.bitmapBase = -1
 	payload := []byte{0x41, 0x0C, 0x1A, 0xF8, 0x0D, 0x32, 0x05, 0x5A, 0x0B, 0x65, 0x0F, 0x40, 0x11, 0x80}
 	now := t0

@@ -83,18 +83,13 @@ func (t *table) add(pid PID, length uint8, fs ...fld) {
 	s := &t.pids[pid]
 	s.known, s.length = true, length
 	for _, f := range fs {
-		lo, hi := 0.0, float64(uint64(1)<<(8*f.size)-1)
-		if f.mask != 0 {
-			hi = float64(f.mask)
-		}
-		if f.signed {
-			lo, hi = -float64(uint64(1)<<(8*f.size-1)), float64(uint64(1)<<(8*f.size-1)-1)
-		}
 		ch := ChannelIndex(len(t.chans))
+		spec := fieldSpec{ch: ch, off: f.off, size: f.size, shift: f.shift, mask: f.mask,
+			signed: f.signed, support: f.support, mul: f.mul, add: f.add}
+		lo, hi := spec.rawRange()
 		t.chans = append(t.chans, chanSpec{name: f.name, quantity: f.quantity, unit: f.unit, pid: pid,
 			min: lo*f.mul + f.add, max: hi*f.mul + f.add})
-		s.fields[s.nf] = fieldSpec{ch: ch, off: f.off, size: f.size, shift: f.shift, mask: f.mask,
-			signed: f.signed, support: f.support, mul: f.mul, add: f.add}
+		s.fields[s.nf] = spec
 		s.nf++
 	}
 }
@@ -306,4 +301,86 @@ func DecodePID(pid PID, data []byte, fn FieldFunc) error {
 		fn(pid, f.ch, v)
 	}
 	return nil
+}
+
+// ValueFunc gives the value of one channel, in its canonical unit, for
+// EncodePID; ok false leaves the field out.
+type ValueFunc func(ch ChannelIndex) (value float64, ok bool)
+
+// EncodePID appends the data bytes of service 01 PID pid (without the PID
+// echo) to dst, from the same table DecodePID reads: each field present is
+// converted to counts by the field's scale and offset, rounded to the nearest
+// count and clamped to the field's range; a field with a support bit sets it
+// when present and is left zero when not. Bytes no field covers are zero. A
+// field without a support bit must be present. Bitmap PIDs are not encoded
+// here (see PIDSet).
+func EncodePID(dst []byte, pid PID, value ValueFunc) ([]byte, error) {
+	s := &std.pids[pid]
+	if !s.known || s.bitmap {
+		return dst, fmt.Errorf("obd: PID 0x%02X: not an encodable PID of the table", uint8(pid))
+	}
+	base := len(dst)
+	dst = append(dst, make([]byte, s.length)...)
+	data := dst[base:]
+	for i := 0; i < int(s.nf); i++ {
+		f := &s.fields[i]
+		v, ok := value(f.ch)
+		if !ok {
+			if f.support < 0 {
+				return dst[:base], fmt.Errorf("obd: PID 0x%02X: no value for %s", uint8(pid), std.chans[f.ch].name)
+			}
+			continue
+		}
+		if math.IsNaN(v) {
+			return dst[:base], fmt.Errorf("obd: PID 0x%02X: %s is NaN", uint8(pid), std.chans[f.ch].name)
+		}
+		lo, hi := f.rawRange()
+		raw := math.Round((v - f.add) / f.mul)
+		raw = math.Max(lo, math.Min(hi, raw))
+		var bits uint32
+		if f.signed {
+			bits = uint32(int32(raw)) & (1<<(8*uint(f.size)) - 1)
+		} else {
+			bits = uint32(raw)
+		}
+		if f.mask != 0 {
+			bits = (bits & uint32(f.mask)) << f.shift
+		}
+		for j := int(f.size) - 1; j >= 0; j-- {
+			data[int(f.off)+j] |= byte(bits)
+			bits >>= 8
+		}
+		if f.support >= 0 {
+			data[0] |= 1 << uint(f.support)
+		}
+	}
+	return dst, nil
+}
+
+// rawRange is the range of the field's integer count.
+func (f *fieldSpec) rawRange() (lo, hi float64) {
+	switch {
+	case f.signed:
+		return -float64(uint64(1) << (8*f.size - 1)), float64(uint64(1)<<(8*f.size-1) - 1)
+	case f.mask != 0:
+		return 0, float64(f.mask)
+	default:
+		return 0, float64(uint64(1)<<(8*f.size) - 1)
+	}
+}
+
+// Resolution returns the value of one count of standard channel ch (its
+// least significant bit, in the canonical unit); false when ch is not a
+// standard channel.
+func Resolution(ch ChannelIndex) (float64, bool) {
+	if int(ch) >= len(std.chans) {
+		return 0, false
+	}
+	s := &std.pids[std.chans[ch].pid]
+	for i := 0; i < int(s.nf); i++ {
+		if s.fields[i].ch == ch {
+			return math.Abs(s.fields[i].mul), true
+		}
+	}
+	return 0, false
 }

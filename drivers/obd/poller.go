@@ -9,17 +9,27 @@ import (
 	"sync/atomic"
 	"time"
 
+	"github.com/plenum-engine/plenum/drivers/clock"
 	"github.com/plenum-engine/plenum/pipeline"
 )
 
 var errShortOrWrong = errors.New("obd: signal response does not echo the requested PID")
 
-// EmitFunc receives each decoded value: the ECU, the channel (a standard
-// ChannelIndex, or NumStandardChannels()+i for Config.Signals[i]), the value
-// in canonical units and the receive time from the Poller's Clock. It is
-// called from the ECU's worker goroutine; different ECUs call it concurrently.
-// It must not block for long: it delays that ECU's polling.
-type EmitFunc func(ecu Addr, ch ChannelIndex, value float64, t time.Time)
+// Reading is one decoded value: the channel (a standard ChannelIndex, or
+// NumStandardChannels()+i for Config.Signals[i]) and the value in canonical
+// units.
+type Reading struct {
+	Channel ChannelIndex
+	Value   float64
+}
+
+// EmitFunc receives the values decoded from one response message, as one
+// frame: the ECU, the receive time from the Poller's Clock and the readings
+// (at least one) in the order the message carried them. The Poller reuses
+// the readings slice once EmitFunc returns. It is called from the ECU's
+// worker goroutine; different ECUs call it concurrently. It must not block
+// for long: it delays that ECU's polling.
+type EmitFunc func(ecu Addr, t time.Time, readings []Reading)
 
 // PollChannel asks for one standard channel at a target interval.
 type PollChannel struct {
@@ -41,9 +51,9 @@ const MaxPriority = 9
 // Config configures a Poller. Zero durations take the defaults shown.
 type Config struct {
 	Transport Transport
-	Clock     Clock  // default SystemClock
-	Format    Format // identifier format of the bus
-	ECUs      []Addr // physical ECUs to poll; empty: discover them
+	Clock     clock.Clock // default clock.System
+	Format    Format      // identifier format of the bus
+	ECUs      []Addr      // physical ECUs to poll; empty: discover them
 	Channels  []PollChannel
 	Signals   []PollSignal
 	Emit      EmitFunc // required
@@ -89,7 +99,7 @@ func NewPoller(cfg Config) (*Poller, error) {
 		return nil, errors.New("obd: Config.Emit is nil")
 	}
 	if cfg.Clock == nil {
-		cfg.Clock = SystemClock{}
+		cfg.Clock = clock.System{}
 	}
 	if cfg.Format != ID11 && cfg.Format != ID29 {
 		return nil, fmt.Errorf("obd: Config.Format %d unknown", uint8(cfg.Format))

@@ -13,14 +13,16 @@ type syncRecorder struct {
 	n  map[Addr]map[string]int
 }
 
-func (r *syncRecorder) emit(ecu Addr, ch ChannelIndex, _ float64, _ time.Time) {
+func (r *syncRecorder) emit(ecu Addr, _ time.Time, rs []Reading) {
 	r.mu.Lock()
 	defer r.mu.Unlock()
 	if r.n[ecu] == nil {
 		r.n[ecu] = map[string]int{}
 	}
-	c, _, _ := StandardChannel(ch)
-	r.n[ecu][c.Name]++
+	for _, x := range rs {
+		c, _, _ := StandardChannel(x.Channel)
+		r.n[ecu][c.Name]++
+	}
 }
 
 func (r *syncRecorder) count(ecu Addr, name string) int {
@@ -102,7 +104,7 @@ func TestPollerRun(t *testing.T) {
 func TestPollerStaticECUAndRediscovery(t *testing.T) {
 	// Nobody answers discovery: Run keeps retrying until cancelled.
 	bus := newFakeBus()
-	p, err := NewPoller(Config{Transport: bus, Emit: func(Addr, ChannelIndex, float64, time.Time) {},
+	p, err := NewPoller(Config{Transport: bus, Emit: func(Addr, time.Time, []Reading) {},
 		Channels: sixChannels[:1], DiscoveryWindow: 5 * time.Millisecond, MaxBackoff: 10 * time.Millisecond})
 	if err != nil {
 		t.Fatal(err)
@@ -137,7 +139,7 @@ func TestPollerStaticECUAndRediscovery(t *testing.T) {
 }
 
 func TestNewPollerErrors(t *testing.T) {
-	emit := func(Addr, ChannelIndex, float64, time.Time) {}
+	emit := func(Addr, time.Time, []Reading) {}
 	bus := newFakeBus()
 	bad := map[string]Config{
 		"Transport":     {Emit: emit, Channels: sixChannels},

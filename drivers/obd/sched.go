@@ -94,11 +94,13 @@ type ecuSched struct {
 	haveRTT     bool
 	busy        bool
 	out         pending
+	frame       []Reading // the readings of the answer being decoded
 	c           ecuCounters
 }
 
 func newECUSched(addr Addr, cfg *schedConfig, items []item, now time.Time) *ecuSched {
-	e := &ecuSched{addr: addr, cfg: cfg, items: append([]item(nil), items...), bitmapBase: 0x00, rto: cfg.initialTimeout}
+	e := &ecuSched{addr: addr, cfg: cfg, items: append([]item(nil), items...), bitmapBase: 0x00, rto: cfg.initialTimeout,
+		frame: make([]Reading, 0, 16)}
 	if cfg.noMulti {
 		e.multi = MultiNo
 	}
@@ -426,6 +428,7 @@ func (e *ecuSched) currentAnswer(now time.Time, data []byte) {
 		return
 	}
 	t := now
+	e.frame = e.frame[:0]
 	var done [MaxPIDsPerRequest]bool
 	_ = WalkCurrentData(data, func(pid PID, b []byte) {
 		for k := 0; k < e.out.n; k++ {
@@ -433,13 +436,16 @@ func (e *ecuSched) currentAnswer(now time.Time, data []byte) {
 				done[k] = true // first occurrence only
 				_ = DecodePID(pid, b, func(p PID, ch ChannelIndex, v float64) {
 					if int(ch) < len(e.cfg.wanted) && e.cfg.wanted[ch] {
-						e.cfg.emit(e.addr, ch, v, t)
+						e.frame = append(e.frame, Reading{Channel: ch, Value: v})
 					}
 				})
 				e.reschedule(now, e.out.items[k])
 			}
 		}
 	})
+	if len(e.frame) > 0 {
+		e.cfg.emit(e.addr, t, e.frame)
+	}
 	missing := false
 	for k := 0; k < e.out.n; k++ {
 		if !done[k] {
@@ -481,7 +487,8 @@ func (e *ecuSched) signalAnswer(now time.Time, it *item, resp Response) {
 	if err == nil {
 		var v float64
 		if v, err = s.Decode(rec); err == nil {
-			e.cfg.emit(e.addr, NumStandardChannels()+ChannelIndex(it.sig), v, now)
+			e.frame = append(e.frame[:0], Reading{Channel: NumStandardChannels() + ChannelIndex(it.sig), Value: v})
+			e.cfg.emit(e.addr, now, e.frame)
 		}
 	}
 	if err != nil {

@@ -1,6 +1,7 @@
 package obd
 
 import (
+	"strings"
 	"testing"
 	"time"
 )
@@ -23,11 +24,13 @@ func (r *recorder) name(ch ChannelIndex) string {
 	return c.Name
 }
 
-func (r *recorder) emit(_ Addr, ch ChannelIndex, v float64, t time.Time) {
-	n := r.name(ch)
-	r.n[n]++
-	r.last[n] = v
-	r.times[n] = append(r.times[n], t)
+func (r *recorder) emit(_ Addr, t time.Time, rs []Reading) {
+	for _, x := range rs {
+		n := r.name(x.Channel)
+		r.n[n]++
+		r.last[n] = x.Value
+		r.times[n] = append(r.times[n], t)
+	}
 }
 
 var t0 = time.Date(2026, 1, 2, 3, 4, 5, 0, time.UTC)
@@ -120,6 +123,46 @@ func TestSchedMultiPIDAccepted(t *testing.T) {
 	}
 	if got := rec.last["ecu_engine_speed"]; got != float64(0x0C*256+0x0D)/4 {
 		t.Errorf("engine speed %v", got)
+	}
+}
+
+// TestSchedOneFramePerAnswer: the values of one response message reach
+// EmitFunc in one call, with one time, in the message's order.
+func TestSchedOneFramePerAnswer(t *testing.T) {
+	f := newFakeECU(Addr{}, time.Millisecond)
+	var got [][]Reading
+	var times []time.Time
+	e, _ := newTestSched(t, f, Config{Channels: sixChannels})
+	e.cfg.emit = func(_ Addr, t time.Time, rs []Reading) {
+		got = append(got, append([]Reading(nil), rs...))
+		times = append(times, t)
+	}
+	e.bitmapBase = -1
+	now := t0.Add(time.Second)
+	if _, _, ok := e.next(now); !ok {
+		t.Fatal("nothing due")
+	}
+	e.sent(now)
+	at := now.Add(3 * time.Millisecond)
+	e.handle(at, []byte{0x41, 0x0C, 0x1A, 0xF8, 0x0D, 0x32, 0x05, 0x5A, 0x0B, 0x65, 0x0F, 0x40, 0x11, 0x80})
+	if len(got) != 1 {
+		t.Fatalf("%d EmitFunc calls for one answer, want 1", len(got))
+	}
+	if !times[0].Equal(at) {
+		t.Errorf("frame time %v, want %v", times[0], at)
+	}
+	var names []string
+	for _, r := range got[0] {
+		c, _, _ := StandardChannel(r.Channel)
+		names = append(names, c.Name)
+	}
+	want := []string{"ecu_engine_speed", "ecu_vehicle_speed", "ecu_coolant_temperature", "ecu_manifold_pressure",
+		"ecu_intake_air_temperature", "ecu_throttle_position"}
+	if strings.Join(names, ",") != strings.Join(want, ",") {
+		t.Errorf("frame channels %v, want %v", names, want)
+	}
+	if v := got[0][0].Value; v != float64(0x1A*256+0xF8)/4 { // (256A+B)/4 rpm
+		t.Errorf("engine speed %v", v)
 	}
 }
 

@@ -7,6 +7,7 @@ import (
 	"time"
 
 	"github.com/plenum-engine/plenum/drivers/can"
+	"github.com/plenum-engine/plenum/drivers/clock"
 	"github.com/plenum-engine/plenum/drivers/obd"
 	"github.com/plenum-engine/plenum/drivers/obdcan"
 	"github.com/plenum-engine/plenum/drivers/sim"
@@ -31,30 +32,22 @@ var tpChannels = []struct {
 	{"ecu_timing_advance", 0x0E},
 }
 
-func tpRig(b *testing.B, clk sim.Clock) (*can.VirtualBus, *obdcan.Transport, sim.State) {
+func tpRig(b *testing.B, clk clock.Clock) (*can.VirtualBus, *obdcan.Transport, sim.State) {
 	b.Helper()
-	var busClk can.Clock // nil: the bus's SystemClock
-	if clk != nil {
-		busClk = clk
-	}
-	bus, err := can.NewVirtualBus(can.VirtualConfig{BitRate: tpBitRate, Clock: busClk})
-	if err != nil {
-		b.Fatal(err)
-	}
-	b.Cleanup(func() { _ = bus.Close() })
 	eng := sim.NewShared(sim.NewEngine(sim.DefaultParams()))
 	st := eng.Step(20 * time.Second)
-	ecu, err := sim.NewECU(bus.NewNode(), sim.ECUConfig{Source: eng.State, ResponseTime: tpResponseTime, Clock: clk})
+	rig, err := sim.NewRig(context.Background(), sim.RigConfig{Bus: can.VirtualConfig{BitRate: tpBitRate, Clock: clk},
+		ECU: sim.ECUConfig{Source: eng.State, ResponseTime: tpResponseTime}})
 	if err != nil {
 		b.Fatal(err)
 	}
-	b.Cleanup(func() { _ = ecu.Close() })
-	tr, err := obdcan.New(bus.NewNode(), obd.ID11)
+	b.Cleanup(func() { _ = rig.Close() })
+	tr, err := obdcan.New(rig.Node(), obd.ID11)
 	if err != nil {
 		b.Fatal(err)
 	}
 	b.Cleanup(func() { _ = tr.Close() })
-	return bus, tr, st
+	return rig.Bus, tr, st
 }
 
 // exchangeWireTime is the wire time of one exchange of our pattern: the
@@ -103,15 +96,15 @@ func exchangeWireTime(b *testing.B, st sim.State) (time.Duration, int) {
 // the theoretical limit of our exchange pattern.
 //
 // clock=precise times the virtual bus's frames and the ECU's response time
-// with sim.PreciseClock, so the rig runs at the modelled speed; clock=system
+// with clock.Precise, so the rig runs at the modelled speed; clock=system
 // uses Go's timers, which here wake up to ~1 ms late and so stretch every
 // 0.25 ms frame: it measures the rig's timer overhead as much as the Poller.
 func BenchmarkPollerThroughput(b *testing.B) {
-	b.Run("clock=precise", func(b *testing.B) { throughput(b, sim.PreciseClock{}) })
+	b.Run("clock=precise", func(b *testing.B) { throughput(b, clock.Precise{}) })
 	b.Run("clock=system", func(b *testing.B) { throughput(b, nil) })
 }
 
-func throughput(b *testing.B, clk sim.Clock) {
+func throughput(b *testing.B, clk clock.Clock) {
 	_, tr, st := tpRig(b, clk)
 	wire, frames := exchangeWireTime(b, st)
 	limit := float64(len(tpChannels)) / (wire + tpResponseTime).Seconds()
@@ -125,12 +118,14 @@ func throughput(b *testing.B, clk sim.Clock) {
 	for i, c := range tpChannels {
 		cs[i] = obd.PollChannel{Name: c.name, Interval: time.Millisecond}
 	}
-	p, err := obd.NewPoller(obd.Config{Transport: tr, Channels: cs, Emit: func(obd.Addr, obd.ChannelIndex, float64, time.Time) {
-		switch k := n.Add(1); k {
-		case 60:
-			start.Store(time.Now().UnixNano())
-		case target:
-			done <- time.Now()
+	p, err := obd.NewPoller(obd.Config{Transport: tr, Channels: cs, Emit: func(_ obd.Addr, _ time.Time, rs []obd.Reading) {
+		for range rs {
+			switch k := n.Add(1); k {
+			case 60:
+				start.Store(time.Now().UnixNano())
+			case target:
+				done <- time.Now()
+			}
 		}
 	}})
 	if err != nil {

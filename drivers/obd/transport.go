@@ -2,7 +2,6 @@ package obd
 
 import (
 	"context"
-	"time"
 )
 
 // Transport is one ISO-TP message path to an ISO 15765-4 bus, as the Poller
@@ -36,18 +35,3 @@ type Message struct {
 	From    Addr
 	Payload []byte
 }
-
-// Clock supplies time to the Poller, so tests and replays can inject their own.
-type Clock interface {
-	Now() time.Time
-	After(d time.Duration) <-chan time.Time
-}
-
-// SystemClock is the wall clock.
-type SystemClock struct{}
-
-// Now returns time.Now().
-func (SystemClock) Now() time.Time { return time.Now() }
-
-// After returns time.After(d).
-func (SystemClock) After(d time.Duration) <-chan time.Time { return time.After(d) }

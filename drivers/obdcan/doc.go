@@ -7,4 +7,11 @@
 //
 //	tr, err := obdcan.New(bus, obd.ID11)
 //	p, err := obd.NewPoller(obd.Config{Transport: tr, Format: obd.ID11, …})
+//
+// A Source is the pipeline's OBD input: it registers the polled channels,
+// runs a Poller over a Transport and hands each answer's readings to a Sink
+// as one frame; Report gives its health at scrape time.
+//
+//	src, err := obdcan.NewSource(bus, reg, obdcan.Config{Name: "ecu", Format: obd.ID11, Channels: …})
+//	err = src.Run(ctx, sink)
 package obdcan

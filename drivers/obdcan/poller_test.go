@@ -28,29 +28,25 @@ func pullState(t *testing.T) sim.State {
 }
 
 type rig struct {
-	bus *can.VirtualBus
+	*sim.Rig
 	ecu *sim.ECU
 	tr  *obdcan.Transport
 }
 
+// newRig is a 500 kbit/s sim.Rig with a Transport on its own node.
 func newRig(t testing.TB, cfg sim.ECUConfig) *rig {
 	t.Helper()
-	b, err := can.NewVirtualBus(can.VirtualConfig{BitRate: 500_000})
+	r, err := sim.NewRig(context.Background(), sim.RigConfig{Bus: can.VirtualConfig{BitRate: 500_000}, ECU: cfg})
 	if err != nil {
 		t.Fatal(err)
 	}
-	t.Cleanup(func() { _ = b.Close() })
-	ecu, err := sim.NewECU(b.NewNode(), cfg)
-	if err != nil {
-		t.Fatal(err)
-	}
-	t.Cleanup(func() { _ = ecu.Close() })
-	tr, err := obdcan.New(b.NewNode(), cfg.Format)
+	t.Cleanup(func() { _ = r.Close() })
+	tr, err := obdcan.New(r.Node(), cfg.Format)
 	if err != nil {
 		t.Fatal(err)
 	}
 	t.Cleanup(func() { _ = tr.Close() })
-	return &rig{bus: b, ecu: ecu, tr: tr}
+	return &rig{Rig: r, ecu: r.ECU, tr: tr}
 }
 
 // readings collects the Poller's values by ECU and channel.
@@ -60,7 +56,7 @@ type readings struct {
 	n  map[obd.Addr]map[obd.ChannelIndex]int
 }
 
-func (r *readings) emit(a obd.Addr, ch obd.ChannelIndex, v float64, _ time.Time) {
+func (r *readings) emit(a obd.Addr, _ time.Time, rs []obd.Reading) {
 	r.mu.Lock()
 	defer r.mu.Unlock()
 	if r.v == nil {
@@ -69,8 +65,10 @@ func (r *readings) emit(a obd.Addr, ch obd.ChannelIndex, v float64, _ time.Time)
 	if r.v[a] == nil {
 		r.v[a], r.n[a] = map[obd.ChannelIndex]float64{}, map[obd.ChannelIndex]int{}
 	}
-	r.v[a][ch] = v
-	r.n[a][ch]++
+	for _, x := range rs {
+		r.v[a][x.Channel] = x.Value
+		r.n[a][x.Channel]++
+	}
 }
 
 func (r *readings) get(a obd.Addr, ch obd.ChannelIndex) (float64, int) {

@@ -4,68 +4,15 @@ import (
 	"context"
 	"errors"
 	"fmt"
-	"math"
-	"runtime"
 	"sync"
 	"sync/atomic"
 	"time"
 
 	"github.com/plenum-engine/plenum/drivers/can"
+	"github.com/plenum-engine/plenum/drivers/clock"
 	"github.com/plenum-engine/plenum/drivers/isotp"
 	"github.com/plenum-engine/plenum/drivers/obd"
 )
-
-// Clock supplies time to a simulated ECU, so tests can inject their own.
-type Clock interface {
-	Now() time.Time
-	After(d time.Duration) <-chan time.Time
-}
-
-type wallClock struct{}
-
-func (wallClock) Now() time.Time                         { return time.Now() }
-func (wallClock) After(d time.Duration) <-chan time.Time { return time.After(d) }
-
-// PreciseClock is a wall clock whose After fires within microseconds of the
-// deadline. Go's timers can wake up to about a millisecond late when the
-// process is idle (measured on the development machine: time.After(250 µs)
-// returned after 1.1 ms on average), which swamps the 0.25 ms wire time of a
-// CAN frame at 500 kbit/s. PreciseClock sleeps with a timer until Spin before
-// the deadline and then yields in a loop until it passes, so it costs CPU:
-// use it for benchmarks and timing tests of the virtual bus and the
-// simulated ECU (can.VirtualConfig.Clock, ECUConfig.Clock), not in production.
-type PreciseClock struct {
-	// Spin is how long before the deadline the clock stops sleeping and
-	// starts polling (default 1.5 ms).
-	Spin time.Duration
-}
-
-// Now returns time.Now().
-func (PreciseClock) Now() time.Time { return time.Now() }
-
-// After returns a channel that receives the time once d has passed.
-func (c PreciseClock) After(d time.Duration) <-chan time.Time {
-	ch := make(chan time.Time, 1)
-	deadline := time.Now().Add(d)
-	spin := c.Spin
-	if spin <= 0 {
-		spin = 1500 * time.Microsecond
-	}
-	go func() {
-		if coarse := time.Until(deadline) - spin; coarse > 0 {
-			time.Sleep(coarse)
-		}
-		for {
-			now := time.Now()
-			if !now.Before(deadline) {
-				ch <- now
-				return
-			}
-			runtime.Gosched()
-		}
-	}()
-	return ch
-}
 
 // ECUConfig configures a simulated ECU. Only Source is required.
 type ECUConfig struct {
@@ -105,7 +52,7 @@ type ECUConfig struct {
 	// 0x01 reports their count and the MIL.
 	DTCs []obd.DTC
 	// Clock times ResponseTime (default the wall clock).
-	Clock Clock
+	Clock clock.Clock
 	// NBs and NCr are the ISO-TP timeouts (default isotp.OBDNBs, OBDNCr).
 	NBs, NCr time.Duration
 }
@@ -151,9 +98,9 @@ type request struct {
 // EncodablePIDs returns the service 01 PIDs the simulator can encode from a
 // State, in ascending order.
 func EncodablePIDs() []obd.PID {
-	out := make([]obd.PID, 0, len(encoders))
+	var out []obd.PID
 	for p := 0; p < 256; p++ {
-		if encoders[p] != nil {
+		if encoding.encodable.Has(obd.PID(p)) {
 			out = append(out, obd.PID(p))
 		}
 	}
@@ -199,7 +146,7 @@ func NewECU(bus can.Bus, cfg ECUConfig) (*ECU, error) {
 		return nil, fmt.Errorf("sim: ECUConfig.DTCs: %d codes, at most 127 fit PID 0x01", len(cfg.DTCs))
 	}
 	if cfg.Clock == nil {
-		cfg.Clock = wallClock{}
+		cfg.Clock = clock.System{}
 	}
 	if cfg.NBs == 0 {
 		cfg.NBs = isotp.OBDNBs
@@ -209,7 +156,7 @@ func NewECU(bus can.Bus, cfg ECUConfig) (*ECU, error) {
 	}
 	e := &ECU{cfg: cfg, workers: map[uint32]*ecuWorker{}}
 	for i, p := range cfg.PIDs {
-		if obd.IsBitmapPID(p) || encoders[p] == nil {
+		if obd.IsBitmapPID(p) || !encoding.encodable.Has(p) {
 			return nil, fmt.Errorf("sim: ECUConfig.PIDs[%d]: PID 0x%02X cannot be simulated", i, uint8(p))
 		}
 		e.supported.Add(p)
@@ -412,7 +359,7 @@ func (e *ECU) answer(dst []byte, w *ecuWorker, r request) (out []byte, pendingFi
 					continue
 				}
 				dst = append(dst, b)
-				dst = encoders[pid](dst, &st, e)
+				dst = e.encode(dst, pid, &st)
 				data = true
 			}
 		}
@@ -474,9 +421,6 @@ func (e *ECU) appendBitmap(dst []byte, base obd.PID) []byte {
 	return append(dst, b[:]...)
 }
 
-// encoder appends one PID's data bytes (without the echo) for state s.
-type encoder func(dst []byte, s *State, e *ECU) []byte
-
 // Timing advance and vehicle speed are not in the engine model; these
 // invented constants make them plausible for the demo car in 4th gear.
 const (
@@ -484,53 +428,85 @@ const (
 	stdAirDensity = 1.184 // kg/m³ at 25 °C and 101.325 kPa, from memory
 )
 
-// encoders holds the inverse of the J1979 scalings (SAE J1979 / ISO 15031-5,
-// the same rows drivers/obd decodes), rounding to the nearest count and
-// clamping to the field's range.
-var encoders = [256]encoder{
-	0x01: func(d []byte, _ *State, e *ECU) []byte { // A7 MIL, A6–A0 DTC count
-		a := byte(len(e.cfg.DTCs))
-		if a > 0 {
-			a |= 0x80
+// stateValue gives one standard OBD channel's value, in its canonical unit,
+// for engine state s.
+type stateValue func(s *State, e *ECU) float64
+
+// stateChannels are the standard OBD channels the simulator reports, by
+// name. Their bytes come from obd.EncodePID, which reads the same table the
+// Poller decodes with, so encoder and decoder cannot disagree.
+var stateChannels = map[string]stateValue{
+	"ecu_mil_on": func(_ *State, e *ECU) float64 { // A7
+		if len(e.cfg.DTCs) > 0 {
+			return 1
 		}
-		return append(d, a, 0, 0, 0)
+		return 0
 	},
-	0x04: func(d []byte, s *State, e *ECU) []byte { return u8(d, engineLoad(s)*255) },        // 100·A/255 %
-	0x05: func(d []byte, s *State, _ *ECU) []byte { return u8(d, s.CoolantTemp+40) },         // A − 40 °C
-	0x0B: func(d []byte, s *State, _ *ECU) []byte { return u8(d, s.ManifoldPressure/1000) },  // A kPa
-	0x0C: func(d []byte, s *State, _ *ECU) []byte { return u16(d, s.EngineSpeed*4) },         // (256A+B)/4 rpm
-	0x0D: func(d []byte, s *State, _ *ECU) []byte { return u8(d, vehicleSpeedKMH(s)) },       // A km/h
-	0x0E: func(d []byte, s *State, _ *ECU) []byte { return u8(d, (timingAdvance(s)+64)*2) },  // A/2 − 64 °
-	0x0F: func(d []byte, s *State, _ *ECU) []byte { return u8(d, s.IntakeAirTemp+40) },       // A − 40 °C
-	0x10: func(d []byte, s *State, _ *ECU) []byte { return u16(d, s.AirMassFlow*1000*100) },  // (256A+B)/100 g/s
-	0x11: func(d []byte, s *State, _ *ECU) []byte { return u8(d, s.Throttle*255) },           // 100·A/255 %
-	0x1F: func(d []byte, s *State, _ *ECU) []byte { return u16(d, s.Elapsed.Seconds()) },     // 256A+B s
-	0x33: func(d []byte, s *State, _ *ECU) []byte { return u8(d, s.BaroPressure/1000) },      // A kPa
-	0x44: func(d []byte, s *State, _ *ECU) []byte { return u16(d, s.CommandedLambda*32768) }, // (256A+B)·2/65536
-	0x46: func(d []byte, s *State, _ *ECU) []byte { return u8(d, s.AmbientTemp+40) },         // A − 40 °C
-	0x5C: func(d []byte, s *State, _ *ECU) []byte { return u8(d, s.OilTemp+40) },             // A − 40 °C
-	0x24: func(d []byte, s *State, _ *ECU) []byte { // λ = (256A+B)·2/65536, V = (256C+D)·8/65536
-		d = u16(d, s.Lambda*32768)
-		return u16(d, lambdaVolts(s.Lambda)*8192)
-	},
-	0x70: func(d []byte, s *State, _ *ECU) []byte { // A: support bits; bit 1 = boost sensor A, (256D+E)/32 kPa
-		d = append(d, 0x02, 0, 0)
-		d = u16(d, s.CompressorOut/1000*32)
-		return append(d, 0, 0, 0, 0, 0)
-	},
-	0x78: func(d []byte, s *State, _ *ECU) []byte { // A: support bits; bit 0 = bank 1 sensor 1, (256B+C)/10 − 40 °C
-		d = append(d, 0x01)
-		d = u16(d, (s.ExhaustTemp+40)*10)
-		return append(d, 0, 0, 0, 0, 0, 0)
-	},
+	"ecu_dtc_count":                    func(_ *State, e *ECU) float64 { return float64(len(e.cfg.DTCs)) },
+	"ecu_engine_load":                  func(s *State, _ *ECU) float64 { return engineLoad(s) },
+	"ecu_coolant_temperature":          func(s *State, _ *ECU) float64 { return s.CoolantTemp },
+	"ecu_manifold_pressure":            func(s *State, _ *ECU) float64 { return s.ManifoldPressure },
+	"ecu_engine_speed":                 func(s *State, _ *ECU) float64 { return s.EngineSpeed },
+	"ecu_vehicle_speed":                func(s *State, _ *ECU) float64 { return vehicleSpeedKMH(s) / 3.6 },
+	"ecu_timing_advance":               func(s *State, _ *ECU) float64 { return timingAdvance(s) },
+	"ecu_intake_air_temperature":       func(s *State, _ *ECU) float64 { return s.IntakeAirTemp },
+	"ecu_mass_air_flow":                func(s *State, _ *ECU) float64 { return s.AirMassFlow * 1000 },
+	"ecu_throttle_position":            func(s *State, _ *ECU) float64 { return s.Throttle },
+	"ecu_run_time":                     func(s *State, _ *ECU) float64 { return s.Elapsed.Seconds() },
+	"ecu_o2_s1_lambda_v":               func(s *State, _ *ECU) float64 { return s.Lambda },
+	"ecu_o2_s1_voltage":                func(s *State, _ *ECU) float64 { return lambdaVolts(s.Lambda) },
+	"ecu_barometric_pressure":          func(s *State, _ *ECU) float64 { return s.BaroPressure },
+	"ecu_commanded_lambda":             func(s *State, _ *ECU) float64 { return s.CommandedLambda },
+	"ecu_ambient_air_temperature":      func(s *State, _ *ECU) float64 { return s.AmbientTemp },
+	"ecu_oil_temperature":              func(s *State, _ *ECU) float64 { return s.OilTemp },
+	"ecu_boost_pressure_a":             func(s *State, _ *ECU) float64 { return s.CompressorOut },
+	"ecu_exhaust_gas_temperature_b1s1": func(s *State, _ *ECU) float64 { return s.ExhaustTemp },
 }
 
-func u8(d []byte, v float64) []byte { return append(d, byte(clamp(math.Round(v), 0, 0xFF))) }
+// encoding is stateChannels resolved against the obd table once: the value
+// function per ChannelIndex and the PIDs whose every field the simulator can
+// fill (a multi-sensor PID needs one).
+var encoding = func() (enc struct {
+	values    []stateValue
+	encodable obd.PIDSet
+}) {
+	enc.values = make([]stateValue, obd.NumStandardChannels())
+	for name, f := range stateChannels {
+		ch, _, ok := obd.LookupChannel(name)
+		if !ok {
+			panic("sim: " + name + " is not a standard OBD channel")
+		}
+		enc.values[ch] = f
+	}
+	for p := 1; p < 256; p++ {
+		pid := obd.PID(p)
+		if !obd.KnownPID(pid) || obd.IsBitmapPID(pid) {
+			continue
+		}
+		some := false
+		obd.PIDChannels(pid, func(ch obd.ChannelIndex) { some = some || enc.values[ch] != nil })
+		if _, err := obd.EncodePID(nil, pid, func(ch obd.ChannelIndex) (float64, bool) { return 0, enc.values[ch] != nil }); some && err == nil {
+			enc.encodable.Add(pid)
+		}
+	}
+	return enc
+}()
 
-func u16(d []byte, v float64) []byte {
-	x := uint16(clamp(math.Round(v), 0, 0xFFFF))
-	return append(d, byte(x>>8), byte(x))
+// encode appends the data bytes of PID pid (without the echo) for state s.
+func (e *ECU) encode(dst []byte, pid obd.PID, s *State) []byte {
+	out, err := obd.EncodePID(dst, pid, func(ch obd.ChannelIndex) (float64, bool) {
+		if f := encoding.values[ch]; f != nil {
+			return f(s, e), true
+		}
+		return 0, false
+	})
+	if err != nil { // only a NaN in the state fails an encodable PID: send zero counts
+		return append(dst, make([]byte, pidLength(pid))...)
+	}
+	return out
 }
+
+func pidLength(pid obd.PID) int { n, _ := obd.PIDLength(pid); return n }
 
 // engineLoad is the model's calculated load: air mass flow over the flow of
 // an ideal fill at standard density (the J1979 definition uses the peak

@@ -2,6 +2,7 @@ package sim
 
 import (
 	"bytes"
+	"context"
 	"math"
 	"testing"
 	"time"
@@ -12,20 +13,15 @@ import (
 
 func testECU(t *testing.T, cfg ECUConfig) *ECU {
 	t.Helper()
-	b, err := can.NewVirtualBus(can.VirtualConfig{})
-	if err != nil {
-		t.Fatal(err)
-	}
-	t.Cleanup(func() { _ = b.Close() })
 	if cfg.Source == nil {
 		cfg.Source = func() State { return State{} }
 	}
-	e, err := NewECU(b.NewNode(), cfg)
+	r, err := NewRig(context.Background(), RigConfig{ECU: cfg})
 	if err != nil {
 		t.Fatal(err)
 	}
-	t.Cleanup(func() { _ = e.Close() })
-	return e
+	t.Cleanup(func() { _ = r.Close() })
+	return r.ECU
 }
 
 // TestEncodersRoundTrip encodes states across the drive cycle and decodes
@@ -59,7 +55,7 @@ func TestEncodersRoundTrip(t *testing.T) {
 	for step := 0; step < 600; step++ {
 		s := eng.Step(100 * time.Millisecond)
 		for _, pid := range EncodablePIDs() {
-			data := encoders[pid](nil, &s, e)
+			data := e.encode(nil, pid, &s)
 			if n, _ := obd.PIDLength(pid); n != len(data) {
 				t.Fatalf("PID 0x%02X: %d bytes, table says %d", uint8(pid), len(data), n)
 			}
@@ -179,7 +175,7 @@ func TestFullBitmaps(t *testing.T) {
 		if obd.IsBitmapPID(obd.PID(p)) {
 			continue
 		}
-		if set.Has(obd.PID(p)) != (encoders[p] != nil) {
+		if set.Has(obd.PID(p)) != encoding.encodable.Has(obd.PID(p)) {
 			t.Errorf("PID 0x%02X: bitmap says %v", p, set.Has(obd.PID(p)))
 		}
 	}
@@ -206,17 +202,6 @@ func TestNewECURejects(t *testing.T) {
 	}
 	if _, err := NewECU(nil, ECUConfig{Source: src}); err == nil {
 		t.Error("nil bus accepted")
-	}
-}
-
-func TestPreciseClock(t *testing.T) {
-	var c PreciseClock
-	for _, d := range []time.Duration{0, 200 * time.Microsecond, 3 * time.Millisecond} {
-		start := time.Now()
-		at := <-c.After(d)
-		if at.Sub(start) < d {
-			t.Errorf("After(%v) fired after %v", d, at.Sub(start))
-		}
 	}
 }
 
