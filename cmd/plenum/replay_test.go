@@ -105,26 +105,3 @@ func TestPlotWritesPNGAndSVG(t *testing.T) {
 		t.Fatalf("plot to .gif exited %d, want 2", code)
 	}
 }
-
-// A malformed line in a recording is named by file and line, also when it
-// lies in the second of the parts decoded in parallel.
-func TestReplayNamesBadLine(t *testing.T) {
-	good, err := os.ReadFile("testdata/short-run.lp")
-	if err != nil {
-		t.Fatal(err)
-	}
-	var b bytes.Buffer
-	lines := 0
-	for b.Len() < 3<<20 {
-		b.Write(good)
-		lines += bytes.Count(good, []byte{'\n'})
-	}
-	b.WriteString("plenum,channel=engine_speed value=oops 12\n")
-	path := filepath.Join(t.TempDir(), "bad.lp")
-	os.WriteFile(path, b.Bytes(), 0o644)
-	_, err = readRecorded([]string{path})
-	want := path + ":" + strconv.Itoa(lines+1) + ":"
-	if err == nil || !strings.Contains(err.Error(), want) {
-		t.Fatalf("err = %v, want it to name %s", err, want)
-	}
-}
