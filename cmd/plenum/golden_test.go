@@ -90,34 +90,3 @@ func deref(p *float64) any {
 	}
 	return *p
 }
-
-// The golden run's two pulls become two lines per engine-speed panel, each
-// sorted by engine speed and spanning the sweep.
-func TestPlotSeparatesPulls(t *testing.T) {
-	files, _, err := resolveRun(goldenRun, "")
-	if err != nil {
-		t.Fatal(err)
-	}
-	rec, err := readAll(files)
-	if err != nil {
-		t.Fatal(err)
-	}
-	s := align("golden", rec, nil)
-	for _, ch := range []string{"corrected_power", "dyno_torque", "boost_pressure", "lambda"} {
-		ps := s.pulls[ch]
-		if len(ps) != 2 {
-			t.Fatalf("%s: %d pulls, want 2", ch, len(ps))
-		}
-		for k, v := range ps {
-			lo, hi := v[0][0], v[len(v)-1][0]
-			if lo > 2500 || hi < 6000 {
-				t.Errorf("%s pull %d spans %g–%g rpm", ch, k+1, lo, hi)
-			}
-			for i := 1; i < len(v); i++ {
-				if v[i][0] < v[i-1][0] {
-					t.Fatalf("%s pull %d not sorted by engine speed", ch, k+1)
-				}
-			}
-		}
-	}
-}

@@ -106,25 +106,23 @@ func TestPlotWritesPNGAndSVG(t *testing.T) {
 	}
 }
 
-// A malformed line in a recording is named by file and line, also when it
-// lies in the second of the parts decoded in parallel.
-func TestReplayNamesBadLine(t *testing.T) {
-	good, err := os.ReadFile("testdata/short-run.lp")
-	if err != nil {
-		t.Fatal(err)
+// Plot axes name each channel's canonical unit: standard channels from
+// their definition, derived ones from the table.
+func TestUnitLabel(t *testing.T) {
+	cases := []struct{ channel, want string }{
+		{"engine_speed", "rpm"},
+		{"manifold_pressure", "pascals"},
+		{"dyno_torque", "newton meters"},
+		{"gear", ""},
+		{"corrected_power", "watts"},
+		{"air_mass_flow", "grams per second"},
+		{"turbo_thermal_state", "celsius"},
+		{"lambda", "ratio"},
+		{"no_such_channel", ""},
 	}
-	var b bytes.Buffer
-	lines := 0
-	for b.Len() < 3<<20 {
-		b.Write(good)
-		lines += bytes.Count(good, []byte{'\n'})
-	}
-	b.WriteString("plenum,channel=engine_speed value=oops 12\n")
-	path := filepath.Join(t.TempDir(), "bad.lp")
-	os.WriteFile(path, b.Bytes(), 0o644)
-	_, err = readRecorded([]string{path})
-	want := path + ":" + strconv.Itoa(lines+1) + ":"
-	if err == nil || !strings.Contains(err.Error(), want) {
-		t.Fatalf("err = %v, want it to name %s", err, want)
+	for _, c := range cases {
+		if got := unitLabel(c.channel); got != c.want {
+			t.Errorf("unitLabel(%q) = %q, want %q", c.channel, got, c.want)
+		}
 	}
 }

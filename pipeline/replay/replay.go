@@ -1,0 +1,226 @@
+// Package replay feeds a recorded run through an offline pipeline (the
+// derivations and detectors of a configuration, built by the caller) and
+// writes what the pipeline fans out: every sample and event as line
+// protocol, or a CSV table, and the replayed run's summary.
+//
+// The pipeline is the same code the daemon runs; replay only stands in for
+// the ingest loop, feeding the samples of one recorded time as one frame.
+package replay
+
+import (
+	"encoding/csv"
+	"errors"
+	"fmt"
+	"io"
+	"os"
+	"path/filepath"
+	"sort"
+	"strconv"
+	"time"
+
+	"github.com/plenum-engine/plenum/pipeline"
+	"github.com/plenum-engine/plenum/pipeline/record"
+)
+
+// Config configures a replay.
+type Config struct {
+	// Pipeline builds the derivations and detectors to replay through, over
+	// reg, which already holds the recorded channels. It is called once per
+	// replay. The pipeline is fed with ProcessFrame, never run; it must not
+	// read or write live state. Required.
+	Pipeline func(reg *pipeline.Registry) (*pipeline.Pipeline, error)
+	// Channel describes a recorded channel by name (quantity, unit, range,
+	// sensor); the recorded source is set on it. A name it does not know
+	// (false) is registered bare, its name as its quantity. Nil:
+	// pipeline.Standard.
+	Channel func(name string) (pipeline.Channel, bool)
+	// Vehicle is the vehicle tag of the output lines and of the summary.
+	Vehicle string
+	// CSV writes a table (time, channel, source, value, quality) instead of
+	// line protocol.
+	CSV bool
+	// Out is the output file. Empty: the writer given to Run.
+	Out string
+	// Summary, when set, is a file the replayed run's summary (JSON) is
+	// written to.
+	Summary string
+}
+
+// Input is a recorded run to replay or plot: its data files in recorded
+// order, and its directory.
+type Input struct {
+	Files  []string
+	RunDir string // the run's directory; empty for a bare line-protocol file
+}
+
+// Resolve finds the input named in: a run directory, a run id under dir, or
+// a line-protocol file. A run directory yields its .lp and .lp.gz files in
+// recorded order. Errors name in as the command line's -in.
+func Resolve(in, dir string) (Input, error) {
+	st, err := os.Stat(in)
+	if err != nil && dir != "" {
+		in = filepath.Join(dir, in)
+		st, err = os.Stat(in)
+	}
+	if err != nil {
+		return Input{}, fmt.Errorf("replay: -in %s: %w", in, err)
+	}
+	if !st.IsDir() {
+		return Input{Files: []string{in}}, nil
+	}
+	files, _ := filepath.Glob(filepath.Join(in, "*.lp"))
+	gz, _ := filepath.Glob(filepath.Join(in, "*.lp.gz"))
+	files = append(files, gz...)
+	sort.Strings(files) // 0001.lp, 0001.lp.gz, 0002.lp: in recorded order either way
+	if len(files) == 0 {
+		return Input{}, fmt.Errorf("replay: %s holds no .lp or .lp.gz files", in)
+	}
+	return Input{Files: files, RunDir: in}, nil
+}
+
+// ReadInputs reads the input's recorded input samples (not the derived ones,
+// which a replay recomputes, nor events), in time order.
+func (in Input) ReadInputs() (record.Recording, error) {
+	rec, err := record.ReadInputs(in.Files)
+	if err != nil {
+		return record.Recording{}, fmt.Errorf("replay: %w", err)
+	}
+	return rec, nil
+}
+
+// ReadAll reads every recorded sample of the input, derived ones included,
+// in time order.
+func (in Input) ReadAll() (record.Recording, error) {
+	rec, err := record.ReadAll(in.Files)
+	if err != nil {
+		return record.Recording{}, fmt.Errorf("replay: %w", err)
+	}
+	return rec, nil
+}
+
+// Run replays rec: it writes every sample and event the pipeline fans out
+// to cfg.Out (or to w when Out is empty), writes the summary file when
+// cfg.Summary is set, and returns the replayed run's summary. The output is
+// written from a goroutine of its own while the next block is computed.
+func Run(cfg Config, rec record.Recording, w io.Writer) (record.Summary, error) {
+	var f *os.File
+	if cfg.Out != "" {
+		var err error
+		if f, err = os.Create(cfg.Out); err != nil {
+			return record.Summary{}, fmt.Errorf("replay: %w", err)
+		}
+		defer f.Close() // a second Close after the checked one below is harmless
+		w = f
+	}
+	bw := newAsyncWriter(w, 1<<20)
+	sum, err := replay(cfg, rec, bw)
+	if cerr := bw.Close(); err == nil && cerr != nil {
+		err = fmt.Errorf("replay: write: %w", cerr)
+	}
+	if err != nil {
+		return record.Summary{}, err
+	}
+	if f != nil {
+		if err := f.Close(); err != nil {
+			return record.Summary{}, fmt.Errorf("replay: %w", err)
+		}
+	}
+	if cfg.Summary != "" {
+		if err := os.WriteFile(cfg.Summary, sum.JSON(), 0o644); err != nil {
+			return record.Summary{}, fmt.Errorf("replay: summary: %w", err)
+		}
+	}
+	return sum, nil
+}
+
+// register registers the recorded series in a new registry and returns it
+// with the channel ID of each recording key.
+func register(cfg Config, rec record.Recording) (*pipeline.Registry, []pipeline.ChannelID, error) {
+	lookup := cfg.Channel
+	if lookup == nil {
+		lookup = pipeline.Standard
+	}
+	reg := pipeline.NewRegistry()
+	ids := make([]pipeline.ChannelID, len(rec.Keys))
+	for i, k := range rec.Keys {
+		ch, ok := lookup(k.Channel)
+		if !ok {
+			ch = pipeline.Channel{Name: k.Channel, Quantity: k.Channel}
+		}
+		ch.Source = k.Source
+		id, err := reg.Register(ch)
+		if err != nil {
+			return nil, nil, fmt.Errorf("replay: %w", err)
+		}
+		ids[i] = id
+	}
+	return reg, ids, nil
+}
+
+// replay runs the samples through the pipeline synchronously, writes every
+// sample and event the pipeline fans out, and returns the summary of the
+// replayed run.
+func replay(cfg Config, rec record.Recording, w io.Writer) (record.Summary, error) {
+	if cfg.Pipeline == nil {
+		return record.Summary{}, errors.New("replay: no pipeline to replay through")
+	}
+	reg, ids, err := register(cfg, rec)
+	if err != nil {
+		return record.Summary{}, err
+	}
+	in := rec.Points
+	p, err := cfg.Pipeline(reg)
+	if err != nil {
+		return record.Summary{}, err
+	}
+	sub := p.Subscribe("replay", 1<<12)
+	enc := record.NewEncoder("replay", cfg.Vehicle, reg)
+	var cw *csv.Writer
+	if cfg.CSV {
+		cw = csv.NewWriter(w)
+		cw.Write([]string{"time", "channel", "source", "value", "quality"})
+	}
+	chans := reg.Channels()
+	var buf []pipeline.Sample
+	var evs []pipeline.Event
+	// Samples of one time (one serial line, one OBD answer) are one frame,
+	// as the live ingest loop takes them.
+	var frame []pipeline.Sample
+	for i := 0; i < len(in); {
+		frame = frame[:0]
+		t := time.Unix(0, in[i].NS)
+		for j := i; j < len(in) && in[j].NS == in[i].NS; j++ {
+			r := in[j]
+			frame = append(frame, pipeline.Sample{Channel: ids[r.Key], Value: r.Value, Quality: r.Quality, Time: t})
+		}
+		i += len(frame)
+		p.ProcessFrame(frame)
+		buf, evs = sub.Drain(buf[:0], evs[:0])
+		for _, s := range buf {
+			enc.Write(s) // the summary sees every sample, in CSV mode too
+			if cw != nil {
+				c := chans[s.Channel]
+				cw.Write([]string{s.Time.UTC().Format(time.RFC3339Nano), c.Name, c.Source, strconv.FormatFloat(s.Value, 'g', -1, 64), s.Quality.String()})
+			}
+		}
+		for _, e := range evs {
+			enc.WriteEvent(e)
+		}
+		b := enc.TakeBytes()
+		if cw == nil {
+			if _, err := w.Write(b); err != nil {
+				return record.Summary{}, fmt.Errorf("replay: write: %w", err)
+			}
+		}
+	}
+	if sub.Dropped() > 0 {
+		return record.Summary{}, errors.New("replay: samples were dropped; this is a bug")
+	}
+	if cw != nil {
+		cw.Flush()
+		if err := cw.Error(); err != nil {
+			return record.Summary{}, fmt.Errorf("replay: write: %w", err)
+		}
+	}
+	return enc.Summary(), nil
+}
