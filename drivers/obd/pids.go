@@ -46,11 +46,11 @@ type pidSpec struct {
 	fields [4]fieldSpec
 }
 
-// chanSpec is the static description of a standard channel.
+// chanSpec is the static description of a standard channel: its name in
+// the channel catalogue (which holds its quantity, canonical unit and
+// description), its PID and the range its encoding can carry.
 type chanSpec struct {
 	name     string
-	quantity string
-	unit     pipeline.Unit
 	pid      PID
 	min, max float64
 }
@@ -69,14 +69,13 @@ func NumStandardChannels() ChannelIndex { return ChannelIndex(len(std.chans)) }
 
 // fld is the builder's description of one field and its channel.
 type fld struct {
-	name, quantity string
-	unit           pipeline.Unit
-	off, size      uint8
-	shift          uint8
-	mask           uint16
-	signed         bool
-	support        int8
-	mul, add       float64
+	name      string
+	off, size uint8
+	shift     uint8
+	mask      uint16
+	signed    bool
+	support   int8
+	mul, add  float64
 }
 
 func (t *table) add(pid PID, length uint8, fs ...fld) {
@@ -87,7 +86,7 @@ func (t *table) add(pid PID, length uint8, fs ...fld) {
 		spec := fieldSpec{ch: ch, off: f.off, size: f.size, shift: f.shift, mask: f.mask,
 			signed: f.signed, support: f.support, mul: f.mul, add: f.add}
 		lo, hi := spec.rawRange()
-		t.chans = append(t.chans, chanSpec{name: f.name, quantity: f.quantity, unit: f.unit, pid: pid,
+		t.chans = append(t.chans, chanSpec{name: f.name, pid: pid,
 			min: lo*f.mul + f.add, max: hi*f.mul + f.add})
 		s.fields[s.nf] = spec
 		s.nf++
@@ -95,123 +94,119 @@ func (t *table) add(pid PID, length uint8, fs ...fld) {
 }
 
 // Helpers for the common shapes. A is data[0], B data[1] and so on.
-func u8(name, q string, u pipeline.Unit, off uint8, mul, add float64) fld {
-	return fld{name: name, quantity: q, unit: u, off: off, size: 1, support: -1, mul: mul, add: add}
+func u8(name string, off uint8, mul, add float64) fld {
+	return fld{name: name, off: off, size: 1, support: -1, mul: mul, add: add}
 }
 
-func u16(name, q string, u pipeline.Unit, off uint8, mul, add float64) fld {
-	return fld{name: name, quantity: q, unit: u, off: off, size: 2, support: -1, mul: mul, add: add}
+func u16(name string, off uint8, mul, add float64) fld {
+	return fld{name: name, off: off, size: 2, support: -1, mul: mul, add: add}
 }
 
 func sup(f fld, bit int8) fld { f.support = bit; return f }
 
 func buildTable() *table {
 	t := &table{}
-	const (
-		pa    = pipeline.Pascal
-		degC  = pipeline.Celsius
-		ratio = pipeline.Ratio
-	)
 	// All formulas: SAE J1979 / ISO 15031-5 Service $01 scalings as listed in
 	// reference-facts §1.1 (cross-checked against [WP-PIDs] and, for C*
-	// rows, the Scapy OBD PID definitions), converted to canonical units.
+	// rows, the Scapy OBD PID definitions), converted to the canonical unit
+	// the channel catalogue (pipeline/catalog.go) gives each name.
 	for p := 0x00; p <= 0xE0; p += 0x20 { // supported-PID bitmaps
 		t.pids[p] = pidSpec{known: true, bitmap: true, length: 4}
 	}
 	// 01: monitor status: A7 = MIL, A6..A0 = confirmed DTC count (C* Scapy).
 	t.add(0x01, 4,
-		fld{name: "ecu_mil_on", quantity: "status", unit: pipeline.None, off: 0, size: 1, shift: 7, mask: 1, support: -1, mul: 1},
-		fld{name: "ecu_dtc_count", quantity: "count", unit: pipeline.Count, off: 0, size: 1, mask: 0x7F, support: -1, mul: 1})
-	t.add(0x04, 1, u8("ecu_engine_load", "load", ratio, 0, 1.0/255, 0))           // 100·A/255 %
-	t.add(0x05, 1, u8("ecu_coolant_temperature", "temperature", degC, 0, 1, -40)) // A−40 °C
+		fld{name: "ecu_mil_on", off: 0, size: 1, shift: 7, mask: 1, support: -1, mul: 1},
+		fld{name: "ecu_dtc_count", off: 0, size: 1, mask: 0x7F, support: -1, mul: 1})
+	t.add(0x04, 1, u8("ecu_engine_load", 0, 1.0/255, 0))     // 100·A/255 %
+	t.add(0x05, 1, u8("ecu_coolant_temperature", 0, 1, -40)) // A−40 °C
 	for i, n := range []string{"ecu_short_fuel_trim_bank1", "ecu_long_fuel_trim_bank1", "ecu_short_fuel_trim_bank2", "ecu_long_fuel_trim_bank2"} {
-		t.add(PID(0x06+i), 1, u8(n, "fuel_trim", ratio, 0, 1.0/128, -1)) // 100·A/128 − 100 %
+		t.add(PID(0x06+i), 1, u8(n, 0, 1.0/128, -1)) // 100·A/128 − 100 %
 	}
-	t.add(0x0A, 1, u8("ecu_fuel_pressure", "pressure", pa, 0, 3000, 0))               // 3·A kPa gauge
-	t.add(0x0B, 1, u8("ecu_manifold_pressure", "pressure", pa, 0, 1000, 0))           // A kPa abs
-	t.add(0x0C, 2, u16("ecu_engine_speed", "engine_speed", pipeline.RPM, 0, 0.25, 0)) // (256A+B)/4 rpm
-	t.add(0x0D, 1, u8("ecu_vehicle_speed", "vehicle_speed", pipeline.MetresPerSecond, 0, 1/3.6, 0))
-	t.add(0x0E, 1, u8("ecu_timing_advance", "angle", pipeline.Degrees, 0, 0.5, -64)) // A/2 − 64 ° BTDC
-	t.add(0x0F, 1, u8("ecu_intake_air_temperature", "temperature", degC, 0, 1, -40))
-	t.add(0x10, 2, u16("ecu_mass_air_flow", "mass_flow", pipeline.GramsPerSec, 0, 0.01, 0)) // (256A+B)/100 g/s
-	t.add(0x11, 1, u8("ecu_throttle_position", "throttle_position", ratio, 0, 1.0/255, 0))
-	t.add(0x1F, 2, u16("ecu_run_time", "time", pipeline.Seconds, 0, 1, 0))
-	t.add(0x22, 2, u16("ecu_fuel_rail_pressure_relative", "pressure", pa, 0, 79, 0)) // 0.079 kPa/bit
-	t.add(0x23, 2, u16("ecu_fuel_rail_gauge_pressure", "pressure", pa, 0, 10000, 0)) // 10 kPa/bit
-	for i := 0; i < 8; i++ {                                                         // 24–2B: λ = (256A+B)·2/65536, V = (256C+D)·8/65536
+	t.add(0x0A, 1, u8("ecu_fuel_pressure", 0, 3000, 0))     // 3·A kPa gauge
+	t.add(0x0B, 1, u8("ecu_manifold_pressure", 0, 1000, 0)) // A kPa abs
+	t.add(0x0C, 2, u16("ecu_engine_speed", 0, 0.25, 0))     // (256A+B)/4 rpm
+	t.add(0x0D, 1, u8("ecu_vehicle_speed", 0, 1/3.6, 0))
+	t.add(0x0E, 1, u8("ecu_timing_advance", 0, 0.5, -64)) // A/2 − 64 ° BTDC
+	t.add(0x0F, 1, u8("ecu_intake_air_temperature", 0, 1, -40))
+	t.add(0x10, 2, u16("ecu_mass_air_flow", 0, 0.01, 0)) // (256A+B)/100 g/s
+	t.add(0x11, 1, u8("ecu_throttle_position", 0, 1.0/255, 0))
+	t.add(0x1F, 2, u16("ecu_run_time", 0, 1, 0))
+	t.add(0x22, 2, u16("ecu_fuel_rail_pressure_relative", 0, 79, 0)) // 0.079 kPa/bit
+	t.add(0x23, 2, u16("ecu_fuel_rail_gauge_pressure", 0, 10000, 0)) // 10 kPa/bit
+	for i := 0; i < 8; i++ {                                         // 24–2B: λ = (256A+B)·2/65536, V = (256C+D)·8/65536
 		s := fmt.Sprintf("ecu_o2_s%d", i+1)
 		t.add(PID(0x24+i), 4,
-			u16(s+"_lambda_v", "lambda", ratio, 0, 2.0/65536, 0),
-			u16(s+"_voltage", "voltage", pipeline.Volts, 2, 8.0/65536, 0))
+			u16(s+"_lambda_v", 0, 2.0/65536, 0),
+			u16(s+"_voltage", 2, 8.0/65536, 0))
 	}
-	t.add(0x2C, 1, u8("ecu_commanded_egr", "position", ratio, 0, 1.0/255, 0))
-	t.add(0x2D, 1, u8("ecu_egr_error", "error", ratio, 0, 1.0/128, -1))
-	t.add(0x2E, 1, u8("ecu_commanded_evap_purge", "position", ratio, 0, 1.0/255, 0))
-	t.add(0x2F, 1, u8("ecu_fuel_level", "level", ratio, 0, 1.0/255, 0))
-	t.add(0x32, 2, fld{name: "ecu_evap_vapour_pressure", quantity: "pressure", unit: pa, size: 2, signed: true, support: -1, mul: 0.25}) // signed /4 Pa
-	t.add(0x33, 1, u8("ecu_barometric_pressure", "pressure", pa, 0, 1000, 0))
+	t.add(0x2C, 1, u8("ecu_commanded_egr", 0, 1.0/255, 0))
+	t.add(0x2D, 1, u8("ecu_egr_error", 0, 1.0/128, -1))
+	t.add(0x2E, 1, u8("ecu_commanded_evap_purge", 0, 1.0/255, 0))
+	t.add(0x2F, 1, u8("ecu_fuel_level", 0, 1.0/255, 0))
+	t.add(0x32, 2, fld{name: "ecu_evap_vapour_pressure", size: 2, signed: true, support: -1, mul: 0.25}) // signed /4 Pa
+	t.add(0x33, 1, u8("ecu_barometric_pressure", 0, 1000, 0))
 	for i := 0; i < 8; i++ { // 34–3B: λ as above; I = (256C+D)/256 − 128 mA (reference-facts §10 item 1: J1979/Wikipedia)
 		s := fmt.Sprintf("ecu_o2_s%d", i+1)
 		t.add(PID(0x34+i), 4,
-			u16(s+"_lambda_i", "lambda", ratio, 0, 2.0/65536, 0),
-			u16(s+"_current", "current", pipeline.Amperes, 2, 1.0/256e3, -0.128))
+			u16(s+"_lambda_i", 0, 2.0/65536, 0),
+			u16(s+"_current", 2, 1.0/256e3, -0.128))
 	}
 	for i, n := range []string{"ecu_catalyst_temperature_b1s1", "ecu_catalyst_temperature_b2s1", "ecu_catalyst_temperature_b1s2", "ecu_catalyst_temperature_b2s2"} {
-		t.add(PID(0x3C+i), 2, u16(n, "temperature", degC, 0, 0.1, -40)) // (256A+B)/10 − 40
+		t.add(PID(0x3C+i), 2, u16(n, 0, 0.1, -40)) // (256A+B)/10 − 40
 	}
-	t.add(0x42, 2, u16("ecu_module_voltage", "voltage", pipeline.Volts, 0, 0.001, 0))
-	t.add(0x43, 2, u16("ecu_absolute_load", "load", ratio, 0, 1.0/255, 0)) // 100·(256A+B)/255 %
-	t.add(0x44, 2, u16("ecu_commanded_lambda", "lambda", ratio, 0, 2.0/65536, 0))
-	t.add(0x45, 1, u8("ecu_relative_throttle_position", "throttle_position", ratio, 0, 1.0/255, 0))
-	t.add(0x46, 1, u8("ecu_ambient_air_temperature", "temperature", degC, 0, 1, -40))
+	t.add(0x42, 2, u16("ecu_module_voltage", 0, 0.001, 0))
+	t.add(0x43, 2, u16("ecu_absolute_load", 0, 1.0/255, 0)) // 100·(256A+B)/255 %
+	t.add(0x44, 2, u16("ecu_commanded_lambda", 0, 2.0/65536, 0))
+	t.add(0x45, 1, u8("ecu_relative_throttle_position", 0, 1.0/255, 0))
+	t.add(0x46, 1, u8("ecu_ambient_air_temperature", 0, 1, -40))
 	for i, n := range []string{"ecu_accelerator_pedal_d", "ecu_accelerator_pedal_e", "ecu_accelerator_pedal_f", "ecu_commanded_throttle"} {
-		t.add(PID(0x49+i), 1, u8(n, "position", ratio, 0, 1.0/255, 0))
+		t.add(PID(0x49+i), 1, u8(n, 0, 1.0/255, 0))
 	}
-	t.add(0x51, 1, u8("ecu_fuel_type", "enum", pipeline.None, 0, 1, 0))
-	t.add(0x52, 1, u8("ecu_ethanol_fraction", "fraction", ratio, 0, 1.0/255, 0))
-	t.add(0x5C, 1, u8("ecu_oil_temperature", "temperature", degC, 0, 1, -40))
-	t.add(0x5E, 2, u16("ecu_fuel_rate", "volume_flow", pipeline.CubicMetresPerS, 0, 0.05e-3/3600, 0)) // (256A+B)/20 L/h
-	t.add(0x61, 1, u8("ecu_demand_torque_fraction", "torque_fraction", ratio, 0, 0.01, -1.25))        // A − 125 %
-	t.add(0x62, 1, u8("ecu_actual_torque_fraction", "torque_fraction", ratio, 0, 0.01, -1.25))
-	t.add(0x63, 2, u16("ecu_reference_torque", "torque", pipeline.NewtonMetres, 0, 1, 0))
+	t.add(0x51, 1, u8("ecu_fuel_type", 0, 1, 0))
+	t.add(0x52, 1, u8("ecu_ethanol_fraction", 0, 1.0/255, 0))
+	t.add(0x5C, 1, u8("ecu_oil_temperature", 0, 1, -40))
+	t.add(0x5E, 2, u16("ecu_fuel_rate", 0, 0.05e-3/3600, 0))         // (256A+B)/20 L/h
+	t.add(0x61, 1, u8("ecu_demand_torque_fraction", 0, 0.01, -1.25)) // A − 125 %
+	t.add(0x62, 1, u8("ecu_actual_torque_fraction", 0, 0.01, -1.25))
+	t.add(0x63, 2, u16("ecu_reference_torque", 0, 1, 0))
 	// Multi-sensor PIDs: A = support bits (bit n = field n present).
 	t.add(0x6F, 3,
-		sup(u8("ecu_compressor_inlet_pressure_a", "pressure", pa, 1, 1000, 0), 0),
-		sup(u8("ecu_compressor_inlet_pressure_b", "pressure", pa, 2, 1000, 0), 1))
+		sup(u8("ecu_compressor_inlet_pressure_a", 1, 1000, 0), 0),
+		sup(u8("ecu_compressor_inlet_pressure_b", 2, 1000, 0), 1))
 	t.add(0x70, 10, // each (256x+y)/32 kPa; J (status bits) not decoded
-		sup(u16("ecu_boost_commanded_a", "pressure", pa, 1, 1000.0/32, 0), 0),
-		sup(u16("ecu_boost_pressure_a", "pressure", pa, 3, 1000.0/32, 0), 1),
-		sup(u16("ecu_boost_commanded_b", "pressure", pa, 5, 1000.0/32, 0), 2),
-		sup(u16("ecu_boost_pressure_b", "pressure", pa, 7, 1000.0/32, 0), 3))
+		sup(u16("ecu_boost_commanded_a", 1, 1000.0/32, 0), 0),
+		sup(u16("ecu_boost_pressure_a", 3, 1000.0/32, 0), 1),
+		sup(u16("ecu_boost_commanded_b", 5, 1000.0/32, 0), 2),
+		sup(u16("ecu_boost_pressure_b", 7, 1000.0/32, 0), 3))
 	t.add(0x73, 5,
-		sup(u16("ecu_exhaust_pressure_b1", "pressure", pa, 1, 10, 0), 0), // /100 kPa
-		sup(u16("ecu_exhaust_pressure_b2", "pressure", pa, 3, 10, 0), 1))
+		sup(u16("ecu_exhaust_pressure_b1", 1, 10, 0), 0), // /100 kPa
+		sup(u16("ecu_exhaust_pressure_b2", 3, 10, 0), 1))
 	t.add(0x74, 5,
-		sup(u16("ecu_turbo_speed_a", "turbo_speed", pipeline.RPM, 1, TurboSpeedRPMPerBit, 0), 0),
-		sup(u16("ecu_turbo_speed_b", "turbo_speed", pipeline.RPM, 3, TurboSpeedRPMPerBit, 0), 1))
+		sup(u16("ecu_turbo_speed_a", 1, TurboSpeedRPMPerBit, 0), 0),
+		sup(u16("ecu_turbo_speed_b", 3, TurboSpeedRPMPerBit, 0), 1))
 	for i, x := range []string{"a", "b"} {
 		s := "ecu_turbo_" + x
 		t.add(PID(0x75+i), 7,
-			sup(u8(s+"_compressor_inlet_temperature", "temperature", degC, 1, 1, -40), 0),
-			sup(u8(s+"_compressor_outlet_temperature", "temperature", degC, 2, 1, -40), 1),
-			sup(u16(s+"_turbine_inlet_temperature", "temperature", degC, 3, 0.1, -40), 2),
-			sup(u16(s+"_turbine_outlet_temperature", "temperature", degC, 5, 0.1, -40), 3))
+			sup(u8(s+"_compressor_inlet_temperature", 1, 1, -40), 0),
+			sup(u8(s+"_compressor_outlet_temperature", 2, 1, -40), 1),
+			sup(u16(s+"_turbine_inlet_temperature", 3, 0.1, -40), 2),
+			sup(u16(s+"_turbine_outlet_temperature", 5, 0.1, -40), 3))
 	}
 	t.add(0x77, 5,
-		sup(u8("ecu_charge_cooler_temperature_b1s1", "temperature", degC, 1, 1, -40), 0),
-		sup(u8("ecu_charge_cooler_temperature_b1s2", "temperature", degC, 2, 1, -40), 1),
-		sup(u8("ecu_charge_cooler_temperature_b2s1", "temperature", degC, 3, 1, -40), 2),
-		sup(u8("ecu_charge_cooler_temperature_b2s2", "temperature", degC, 4, 1, -40), 3))
+		sup(u8("ecu_charge_cooler_temperature_b1s1", 1, 1, -40), 0),
+		sup(u8("ecu_charge_cooler_temperature_b1s2", 2, 1, -40), 1),
+		sup(u8("ecu_charge_cooler_temperature_b2s1", 3, 1, -40), 2),
+		sup(u8("ecu_charge_cooler_temperature_b2s2", 4, 1, -40), 3))
 	for b := 0; b < 2; b++ {
 		var fs []fld
 		for s := 0; s < 4; s++ {
-			fs = append(fs, sup(u16(fmt.Sprintf("ecu_exhaust_gas_temperature_b%ds%d", b+1, s+1), "temperature", degC, uint8(1+2*s), 0.1, -40), int8(s)))
+			fs = append(fs, sup(u16(fmt.Sprintf("ecu_exhaust_gas_temperature_b%ds%d", b+1, s+1), uint8(1+2*s), 0.1, -40), int8(s)))
 		}
 		t.add(PID(0x78+b), 9, fs...)
 	}
 	t.add(0x87, 5,
-		sup(u16("ecu_manifold_pressure_wide_a", "pressure", pa, 1, 1000.0/32, 0), 0),
-		sup(u16("ecu_manifold_pressure_wide_b", "pressure", pa, 3, 1000.0/32, 0), 1))
+		sup(u16("ecu_manifold_pressure_wide_a", 1, 1000.0/32, 0), 0),
+		sup(u16("ecu_manifold_pressure_wide_b", 3, 1000.0/32, 0), 1))
 	return t
 }
 
@@ -236,7 +231,9 @@ func StandardChannel(ch ChannelIndex) (c pipeline.Channel, pid PID, ok bool) {
 		return pipeline.Channel{}, 0, false
 	}
 	s := std.chans[ch]
-	return pipeline.Channel{Name: s.name, Quantity: s.quantity, Unit: s.unit, Source: "obd", Min: s.min, Max: s.max}, s.pid, true
+	c, _ = pipeline.Catalogued(s.name) // every name is catalogued (TestChannelsCatalogued)
+	c.Source = "obd"
+	return c, s.pid, true
 }
 
 // LookupChannel finds a standard channel by name.

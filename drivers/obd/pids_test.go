@@ -301,3 +301,23 @@ func TestChannelsGolden(t *testing.T) {
 		t.Errorf("channel table differs from %s (run go test -run ChannelsGolden -update):\n%s", path, b.String())
 	}
 }
+
+// Every channel of the decode table has its entry in the channel catalogue
+// (which gives its quantity, unit and description), as an OBD channel whose
+// range is what the encoding can carry.
+func TestChannelsCatalogued(t *testing.T) {
+	for i := ChannelIndex(0); i < NumStandardChannels(); i++ {
+		s := std.chans[i]
+		c, ok := pipeline.Catalogued(s.name)
+		if !ok || c.Origin != pipeline.FromOBD {
+			t.Errorf("%s: not catalogued as an OBD channel (%+v)", s.name, c)
+			continue
+		}
+		if c.Min != s.min || c.Max != s.max {
+			t.Errorf("%s: catalogue range %g…%g, the encoding carries %g…%g", s.name, c.Min, c.Max, s.min, s.max)
+		}
+		if got, _, _ := StandardChannel(i); got.Unit != c.Unit || got.Source != "obd" {
+			t.Errorf("%s: StandardChannel %+v", s.name, got)
+		}
+	}
+}
