@@ -82,7 +82,9 @@ func TestGoldenRun(t *testing.T) {
 	if rep.LagEvents != 2 || rep.WarningsRaised < 3 || *rep.PeakBoostPa < 100000 || *rep.PeakBoostPa > 120000 {
 		t.Errorf("golden run content: %s", got)
 	}
-	// The replayed run holds one value per channel, source and instant.
+	// The live recording and the replayed one hold one value per channel,
+	// source and instant.
+	assertNoDuplicateKeys(t, filepath.Join(goldenRun, "0001.lp.gz"))
 	assertNoDuplicateKeys(t, filepath.Join(dir, "out.lp"))
 }
 
