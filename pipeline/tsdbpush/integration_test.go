@@ -3,6 +3,7 @@ package tsdbpush
 import (
 	"bufio"
 	"bytes"
+	"compress/gzip"
 	"context"
 	"encoding/json"
 	"errors"
@@ -120,7 +121,8 @@ func recordRun(t *testing.T) ([]byte, []point) {
 	return lp, want
 }
 
-// push sends lp through a Pusher to writeURL and waits until all is sent.
+// push sends lp through a Pusher to writeURL and waits until all its lines
+// are sent.
 func push(t *testing.T, writeURL string, lp []byte, gz bool) Stats {
 	t.Helper()
 	p, err := Open(Config{
@@ -144,8 +146,9 @@ func push(t *testing.T, writeURL string, lp []byte, gz bool) Stats {
 	ctx, cancel := context.WithCancel(context.Background())
 	done := make(chan error, 1)
 	go func() { done <- p.Run(ctx) }()
+	want := uint64(bytes.Count(lp, []byte{'\n'}))
 	deadline := time.Now().Add(60 * time.Second)
-	for p.Stats().SentLines < itSamples && time.Now().Before(deadline) {
+	for p.Stats().SentLines < want && time.Now().Before(deadline) {
 		time.Sleep(10 * time.Millisecond)
 	}
 	cancel()
@@ -156,7 +159,7 @@ func push(t *testing.T, writeURL string, lp []byte, gz bool) Stats {
 		t.Fatal(err)
 	}
 	st := p.Stats()
-	if st.SentLines != itSamples || st.BacklogBytes != 0 || st.RejectedBatches != 0 || st.DroppedLines != 0 {
+	if st.SentLines != want || st.BacklogBytes != 0 || st.RejectedBatches != 0 || st.DroppedLines != 0 {
 		t.Fatalf("push incomplete: %+v", st)
 	}
 	return st
@@ -471,6 +474,63 @@ func TestIntegrationVictoriaMetrics(t *testing.T) {
 		t.Logf("largest relative value difference %.3g (tolerance %g)", worst, vmRelTol)
 	})
 
+	t.Run("a demo recording, channel by channel", func(t *testing.T) {
+		// The golden run: a whole demo cycle recorded by the daemon, with
+		// derived channels computed from serial frames and ECU answers.
+		const golden = "../../testdata/golden-run/0001.lp.gz"
+		rec, err := record.ReadAll([]string{golden})
+		if err != nil {
+			t.Fatal(err)
+		}
+		type msKey struct {
+			k  uint32
+			ms int64
+		}
+		lines := map[record.SeriesKey]int{}
+		distinct := map[record.SeriesKey]int{}
+		seen := map[msKey]bool{}
+		for _, p := range rec.Points {
+			k := rec.Keys[p.Key]
+			lines[k]++
+			if mk := (msKey{p.Key, p.NS / 1e6}); !seen[mk] {
+				seen[mk] = true
+				distinct[k]++
+			}
+		}
+		raw, err := readGzip(golden)
+		if err != nil {
+			t.Fatal(err)
+		}
+		push(t, base+"/write?db=plenum_golden&precision=ns", raw, true)
+		var ss []vmSeries
+		for deadline := time.Now().Add(20 * time.Second); time.Now().Before(deadline); time.Sleep(100 * time.Millisecond) {
+			if ss = vmExport(t, base, `plenum_value{db="plenum_golden"}`); vmCount(ss) >= len(seen) {
+				break
+			}
+		}
+		got := map[record.SeriesKey]int{}
+		for _, s := range ss {
+			got[record.SeriesKey{Channel: s.Metric["channel"], Source: s.Metric["source"]}] += len(s.Values)
+		}
+		merged := 0
+		for k, n := range lines {
+			// Every recorded line is one stored point. VictoriaMetrics keeps
+			// milliseconds: two values of one series less than 1 ms apart (a
+			// derived channel computed from a serial line and, a fraction of
+			// a millisecond later, an ECU answer) would become one there,
+			// while the recording and InfluxDB keep both; the log line says
+			// how many this recording has.
+			if got[k] != n {
+				t.Errorf("%s from %s: %d points stored, %d recorded lines (%d distinct milliseconds)", k.Channel, k.Source, got[k], n, distinct[k])
+			}
+			merged += n - distinct[k]
+		}
+		if len(got) != len(lines) {
+			t.Errorf("%d series stored, %d recorded", len(got), len(lines))
+		}
+		t.Logf("%d series, %d points; %d recorded values share a millisecond with another of their series", len(lines), len(rec.Points), merged)
+	})
+
 	t.Run("retry does not duplicate", func(t *testing.T) {
 		proxy, lied := flakyAck(t, base)
 		st := push(t, proxy.URL+"/write?db=plenum_retry&precision=ns", lp, false)
@@ -485,4 +545,18 @@ func TestIntegrationVictoriaMetrics(t *testing.T) {
 		t.Logf("%d batches stored twice by the server, %d samples after dedup", lied.Load(), itSamples)
 	})
 	t.Logf("VictoriaMetrics integration took %v", time.Since(start).Round(time.Millisecond))
+}
+
+// readGzip returns the decompressed content of a gzipped file.
+func readGzip(path string) ([]byte, error) {
+	f, err := os.Open(path)
+	if err != nil {
+		return nil, err
+	}
+	defer f.Close()
+	zr, err := gzip.NewReader(f)
+	if err != nil {
+		return nil, err
+	}
+	return io.ReadAll(zr)
 }
