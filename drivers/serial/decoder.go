@@ -118,6 +118,8 @@ type Decoder struct {
 	lastSeq  uint32
 	anchor   time.Time // host time of device millisecond 0
 	anchored bool
+	last     time.Time // the previous line's time
+	lastRead time.Time // and the host time it was read at
 }
 
 // NewDecoder checks the inputs and returns a decoder.
@@ -189,6 +191,7 @@ func (d *Decoder) line(line []byte, now time.Time) error {
 			return err
 		}
 		d.c.Frames.Add(1)
+		now = d.after(now, now)
 		for i := 0; i < n && i < len(d.byCol); i++ {
 			if j := d.byCol[i]; j >= 0 {
 				d.emit(j, d.nums[i], !d.inputs[j].Counts, now)
@@ -223,7 +226,7 @@ func (d *Decoder) line(line []byte, now time.Time) error {
 		}
 	}
 	d.haveSeq, d.lastSeq = true, f.Seq
-	t := d.stamp(f.DeviceMS, now)
+	t := d.after(d.stamp(f.DeviceMS, now), now)
 	var unknown error
 	for i := 0; i < f.N; i++ {
 		r := &f.Readings[i]
@@ -293,6 +296,20 @@ func (d *Decoder) stamp(ms uint32, now time.Time) time.Time {
 	d.anchor = now.Add(-dev)
 	d.anchored = true
 	return now
+}
+
+// after returns t for a line read at host time now, moved to a microsecond
+// after the previous line's time when both came in one read (the same now)
+// and t is not later. Lines read in one burst share the host time of the
+// read, and a device clock ahead of the mapping is pulled back to it, but
+// two lines are two moments, never one: no channel gets two values at one
+// instant.
+func (d *Decoder) after(t, now time.Time) time.Time {
+	if now.Equal(d.lastRead) && !t.After(d.last) {
+		t = d.last.Add(time.Microsecond)
+	}
+	d.last, d.lastRead = t, now
+	return t
 }
 
 // calibrated is a cached calibration result.

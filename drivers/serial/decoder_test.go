@@ -330,3 +330,38 @@ func TestLineIsOneFrame(t *testing.T) {
 		}
 	}
 }
+
+// Lines read in one burst (one Read, so one host time) are stamped at
+// distinct, increasing times, for framed lines whose device clock runs ahead
+// of the mapping and for delimited lines, which carry no clock.
+func TestBurstLinesGetDistinctTimes(t *testing.T) {
+	var c collect
+	d, _ := newTestDecoder(t, &c)
+	now := time.Unix(100, 0)
+	d.Line([]byte(frameLine("P1,1,1000,a0=2525m")), now)
+	later := now.Add(2 * time.Second) // a stall: three lines arrive in one read
+	for seq, ms := range []string{"3010", "3020", "3030"} {
+		d.Line([]byte(frameLine("P1,"+itoa(seq+2)+","+ms+",a0=2525m")), later)
+	}
+	h := pipeline.NewHealth("source", "sketch")
+	dl, err := NewDecoder(Delimited, ',', []Input{{Column: 1, Channel: 5, Sensor: mapSensor()}}, NewCounters(h))
+	if err != nil {
+		t.Fatal(err)
+	}
+	for range 3 {
+		dl.Line([]byte("2525"), later, &c)
+	}
+	if len(c.s) != 7 {
+		t.Fatalf("%d samples, want 7", len(c.s))
+	}
+	for i := 1; i < 4; i++ {
+		if !c.s[i].Time.After(c.s[i-1].Time) || c.s[i].Time.After(later.Add(time.Millisecond)) {
+			t.Errorf("framed line %d at %v after %v (read at %v)", i, c.s[i].Time, c.s[i-1].Time, later)
+		}
+	}
+	for i := 5; i < 7; i++ {
+		if !c.s[i].Time.After(c.s[i-1].Time) {
+			t.Errorf("delimited line %d at %v, not after %v", i, c.s[i].Time, c.s[i-1].Time)
+		}
+	}
+}
