@@ -46,6 +46,9 @@ func (b *burstLog) refuse(kind, user string, cl *mqtt.Client, topic, why string)
 	k := burstKey{kind, user}
 	b.mu.Lock()
 	defer b.mu.Unlock()
+	if len(b.open) >= maxBursts {
+		b.expire(now)
+	}
 	if o := b.open[k]; o != nil {
 		if now.Sub(o.since) < b.every {
 			o.repeats++
@@ -75,6 +78,27 @@ func (b *burstLog) summary(k burstKey, o *burst) {
 		attrs = append(attrs, "last_topic", o.lastPath)
 	}
 	b.log.Warn("broker refused a "+k.kind+" (repeated)", attrs...)
+}
+
+// maxBursts bounds the bursts kept open at once, so that a client trying
+// many user names cannot grow the map without end.
+const maxBursts = 256
+
+// expire logs and forgets the bursts whose interval has passed, and if
+// that is not enough, all of them; b.mu is held.
+func (b *burstLog) expire(now time.Time) {
+	for k, o := range b.open {
+		if now.Sub(o.since) >= b.every {
+			b.summary(k, o)
+			delete(b.open, k)
+		}
+	}
+	if len(b.open) >= maxBursts {
+		for k, o := range b.open {
+			b.summary(k, o)
+		}
+		b.open = nil
+	}
 }
 
 // flush logs every open burst's repeats and forgets them.
