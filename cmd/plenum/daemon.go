@@ -90,7 +90,11 @@ func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *s
 		}
 		// The broker outlives the publisher's last "offline" message: it is
 		// the last stage to stop.
-		brk, err = broker.Start(context.WithoutCancel(ctx), broker.Config{Addr: cfg.MQTT.Listen, Anonymous: anon, Users: users, Prefix: cfg.MQTT.Prefix, Logger: quiet(log)})
+		// The publisher's client ID is reserved for it: no other client can
+		// knock it off the broker.
+		mcfg.ClientID = "plenum-" + cfg.Vehicle
+		brk, err = broker.Start(context.WithoutCancel(ctx), broker.Config{Addr: cfg.MQTT.Listen, Anonymous: anon, Users: users, Prefix: cfg.MQTT.Prefix,
+			DaemonClientID: mcfg.ClientID, Logger: quiet(log)})
 		if err != nil {
 			return err
 		}

@@ -209,7 +209,10 @@ type MQTT struct {
 	Prefix        string   `yaml:"prefix"`
 	MaxRateHz     float64  `yaml:"max_rate_hz"`
 	SnapshotEvery Duration `yaml:"snapshot_every"`
-	Anonymous     *bool    `yaml:"anonymous_read"`
+	// Anonymous (anonymous_read, default true) lets clients without
+	// credentials read the data topics of the embedded broker; false
+	// refuses every connection without credentials.
+	Anonymous *bool `yaml:"anonymous_read"`
 	// Users are accounts of the embedded broker, for dashboards that must
 	// log in and for clients allowed to send run commands.
 	Users []MQTTUser `yaml:"users"`
