@@ -60,6 +60,31 @@ func lineOf(root *yaml.Node, path ...any) int {
 	return line
 }
 
+// written tells whether the key at path is in the file (not a default).
+func written(root *yaml.Node, path ...any) bool {
+	n := root
+	if n.Kind == yaml.DocumentNode && len(n.Content) > 0 {
+		n = n.Content[0]
+	}
+	for _, p := range path {
+		k, _ := p.(string)
+		if n.Kind != yaml.MappingNode {
+			return false
+		}
+		found := false
+		for i := 0; i+1 < len(n.Content); i += 2 {
+			if n.Content[i].Value == k {
+				n, found = n.Content[i+1], true
+				break
+			}
+		}
+		if !found {
+			return false
+		}
+	}
+	return true
+}
+
 func fieldName(path []any) string {
 	var b strings.Builder
 	for _, p := range path {
@@ -251,7 +276,11 @@ func (cfg *Config) check(file string, root *yaml.Node) Errors {
 		c.fail("must be host:port", "http", "listen")
 	}
 	if cfg.MQTT.Broker == "embedded" && mqttErr == nil && httpErr == nil && sameListener(cfg.MQTT.Listen, cfg.HTTP.Listen) {
-		c.fail(fmt.Sprintf("is %s, the address of the embedded broker (mqtt.listen) too: give each listener a port of its own", cfg.HTTP.Listen), "http", "listen")
+		if written(c.root, "http", "listen") || !written(c.root, "mqtt", "listen") {
+			c.fail(fmt.Sprintf("is %s, the address of the embedded broker (mqtt.listen) too: give each listener a port of its own", cfg.HTTP.Listen), "http", "listen")
+		} else {
+			c.fail(fmt.Sprintf("is %s, the address of the metrics listener (http.listen) too: give each listener a port of its own", cfg.MQTT.Listen), "mqtt", "listen")
+		}
 	}
 	checkWriters(c, cfg)
 	if cfg.Record.RotateMB < 0 {
