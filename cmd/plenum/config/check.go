@@ -243,7 +243,11 @@ func (cfg *Config) check(file string, root *yaml.Node) Errors {
 		for j, in := range s.Inputs {
 			p := []any{"serial", i, "inputs", j}
 			if _, ok := pipeline.Standard(in.Channel); !ok {
-				c.fail(fmt.Sprintf("unknown channel %q (one of %s)", in.Channel, strings.Join(pipeline.StandardNames(), ", ")), append(p, "channel")...)
+				why := ""
+				if _, ok := pipeline.Catalogued(in.Channel); ok {
+					why = fmt.Sprintf(": %s is derived or read from the ECU, not wired to a microcontroller", in.Channel)
+				}
+				c.fail(fmt.Sprintf("unknown channel %q%s (one of %s)", in.Channel, why, strings.Join(pipeline.StandardNames(), ", ")), append(p, "channel")...)
 			}
 			key := in.Field
 			if s.Format == "delimited" {
@@ -431,8 +435,8 @@ func checkCalibration(c *checker, in SerialInput, p []any) {
 		c.fail("needs exactly one of linear, table, ntc_beta, ntc_steinhart_hart", p...)
 		return
 	}
-	ch, _ := pipeline.Standard(in.Channel)
-	if _, err := ToCanonical(cal.Unit, ch.Unit, 0); err != nil && ch.Name != "" {
+	ch, standard := pipeline.Standard(in.Channel)
+	if _, err := ToCanonical(cal.Unit, ch.Unit, 0); err != nil && standard {
 		c.fail(fmt.Sprintf("%v: channel %s takes one of %s", err, ch.Name, strings.Join(unitsOf(ch.Unit), ", ")), append(p, "unit")...)
 	}
 	switch {
