@@ -32,6 +32,10 @@ import (
 // recorded, pushed and published.
 func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *slog.Logger) error {
 	fmt.Fprintln(stdout, Safety)
+	// Every validation of `plenum check` first, opening nothing.
+	if _, err := checkConfig(cfg); err != nil {
+		return err
+	}
 	// Build: nothing runs yet, so a failure leaves nothing to stop.
 	reg := pipeline.NewRegistry()
 	srcs, cleanup, err := buildSources(cfg, reg, log)
@@ -43,6 +47,7 @@ func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *s
 	if err != nil {
 		return err
 	}
+	logLeftOut(log, set.LeftOut)
 	if err := set.LoadTurboState(time.Now()); errors.Is(err, derived.ErrStateDir) {
 		log.Warn("turbo state directory; the cool-down state will not survive a restart", "err", err)
 	} else if err != nil {
@@ -126,7 +131,11 @@ func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *s
 		if pusher != nil {
 			deps.Forward = pusher
 		}
-		rr = runs.New(runsConfig(cfg), deps)
+		rc, err := runsConfig(cfg)
+		if err != nil {
+			return err
+		}
+		rr = runs.New(rc, deps)
 		mux.Handle("/api/runs/", rr.Handler())
 	}
 	if cfg.StateDir != "" {

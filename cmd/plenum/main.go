@@ -61,7 +61,7 @@ func run(args []string, stdout, stderr io.Writer) int {
 		fmt.Fprintln(stdout, "plenum", version)
 		return 0
 	case "check":
-		err = cmdCheck(args[1:], stdout)
+		err = cmdCheck(args[1:], stdout, log)
 	case "demo":
 		err = cmdDemo(ctx, args[1:], stdout, log)
 	case "run":
@@ -92,7 +92,9 @@ func run(args []string, stdout, stderr io.Writer) int {
 	return 1
 }
 
-func cmdCheck(args []string, stdout io.Writer) error {
+// cmdCheck loads the configuration and builds, without opening anything,
+// all that run builds from it: what check accepts, run starts.
+func cmdCheck(args []string, stdout io.Writer, log *slog.Logger) error {
 	fs := flag.NewFlagSet("check", flag.ContinueOnError)
 	path := fs.String("config", "", "configuration file")
 	if err := fs.Parse(args); err != nil {
@@ -104,6 +106,14 @@ func cmdCheck(args []string, stdout io.Writer) error {
 	cfg, err := config.Load(*path)
 	if err != nil {
 		return err
+	}
+	rep, err := checkConfig(cfg)
+	if err != nil {
+		return err
+	}
+	logLeftOut(log, rep.LeftOut)
+	for _, f := range rep.Absent {
+		fmt.Fprintf(stdout, "note: %s does not exist on this machine; run reads it at start-up.\n", f)
 	}
 	fmt.Fprintf(stdout, "%s: ok (vehicle %s, %d serial source(s))\n", *path, cfg.Vehicle, len(cfg.Serial))
 	return nil

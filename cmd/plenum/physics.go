@@ -47,11 +47,20 @@ func derivedConfig(cfg *config.Config) derived.Config {
 
 // buildAll returns the derivations and then the detectors for cfg over the
 // channels registered in reg, and the set they belong to (the VE table's
-// handler, the turbo state).
+// handler, the turbo state, the built-in rules left out). A configured
+// warning rule on a channel reg lacks is an error.
 func buildAll(cfg *config.Config, reg *pipeline.Registry) ([]pipeline.Derivation, *derived.Set, error) {
-	set, err := derived.Build(derivedConfig(cfg), reg)
+	return buildDerived(cfg, reg, false)
+}
+
+// buildDerived is buildAll; lenientRules leaves out configured rules on
+// absent channels too, for replaying a recording that lacks them.
+func buildDerived(cfg *config.Config, reg *pipeline.Registry, lenientRules bool) ([]pipeline.Derivation, *derived.Set, error) {
+	dc := derivedConfig(cfg)
+	dc.LenientRules = lenientRules
+	set, err := derived.Build(dc, reg)
 	if err != nil {
-		return nil, nil, err
+		return nil, nil, buildError(cfg, err)
 	}
 	return set.Derivations, set, nil
 }

@@ -75,7 +75,7 @@ func recordedChannel(name string) (pipeline.Channel, bool) {
 func offlinePipeline(cfg *config.Config, reg *pipeline.Registry) (*pipeline.Pipeline, error) {
 	c := *cfg
 	c.StateDir = ""
-	ds, _, err := buildAll(&c, reg)
+	ds, _, err := buildDerived(&c, reg, true)
 	if err != nil {
 		return nil, err
 	}

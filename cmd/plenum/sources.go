@@ -69,7 +69,11 @@ func buildSources(cfg *config.Config, reg *pipeline.Registry, log *slog.Logger) 
 		srcs = append(srcs, source{name: sc.Name, run: drv.Run, health: drv})
 	}
 	if eng != nil && len(cfg.Serial) == 0 {
-		return nil, nil, fmt.Errorf("simulator: needs a serial source to drive (the simulated microcontroller steps the engine)")
+		// No simulated microcontroller to step the engine model: it runs on
+		// its own, for the simulated ECU.
+		srcs = append(srcs, source{name: "simulator", run: func(ctx context.Context, _ serial.Sink) error {
+			return stepEngine(ctx, eng, cfg.Sim)
+		}})
 	}
 	obds, closers, err := buildOBDSources(cfg, reg, eng)
 	cleanups = append(cleanups, closers...)
@@ -167,4 +171,27 @@ func sensorFor(sc config.Serial, in config.SerialInput, ch pipeline.Channel) (ca
 		s.Min, s.Max = lo, hi
 	}
 	return s, s.Validate()
+}
+
+// stepEngine advances eng in real time (times the simulator's time scale)
+// at its frame rate until ctx ends.
+func stepEngine(ctx context.Context, eng *sim.Shared, sc *config.Simulator) error {
+	period := 10 * time.Millisecond
+	if sc.FrameRateHz > 0 {
+		period = time.Duration(float64(time.Second) / sc.FrameRateHz)
+	}
+	scale := sc.TimeScale
+	if scale <= 0 {
+		scale = 1
+	}
+	tick := time.NewTicker(period)
+	defer tick.Stop()
+	for {
+		select {
+		case <-ctx.Done():
+			return ctx.Err()
+		case <-tick.C:
+			eng.Step(time.Duration(float64(period) * scale))
+		}
+	}
 }

@@ -44,8 +44,14 @@ type Config struct {
 	// Turbo configures the turbo detectors.
 	Turbo Turbo
 	// Warnings replace built-in rules of the same name (warn.Off disables
-	// one) or add rules (warn.Merge over warn.Builtin).
+	// one) or add rules (warn.Merge over warn.Builtin). A built-in rule on
+	// a channel the setup lacks is left out (Set.LeftOut); a rule of
+	// Warnings on such a channel makes Build fail with a *RuleChannelError.
 	Warnings []warn.Text
+	// LenientRules leaves out rules of Warnings on absent channels as well,
+	// listing them in Set.LeftOut: for replaying a recording that lacks
+	// channels the configuration has.
+	LenientRules bool
 }
 
 // Turbo configures the turbo lag detector and the turbo guard.
@@ -72,6 +78,9 @@ type Set struct {
 	// Derivations holds the derivations, then the detectors, ready for
 	// pipeline.BuildGraph.
 	Derivations []pipeline.Derivation
+	// LeftOut lists the warning rules left out for want of channels, in
+	// the order of the rules; the binary names each in one info line.
+	LeftOut []LeftOut
 
 	ve    *veEstimate
 	guard *turboGuard
@@ -234,10 +243,11 @@ func (s *Set) buildDetectors(cfg Config, reg *pipeline.Registry, made map[string
 		s.Derivations = append(s.Derivations, s.guard)
 		made["turbo_warmup_warning"], made["turbo_shutdown_hot"] = true, true
 	}
-	w, err := newWarnings(warn.Merge(warn.Builtin(), cfg.Warnings), has)
+	w, leftOut, err := newWarnings(cfg.Warnings, has, cfg.LenientRules)
 	if err != nil {
 		return err
 	}
+	s.LeftOut = leftOut
 	if w != nil {
 		s.Derivations = append(s.Derivations, w)
 	}

@@ -1,6 +1,7 @@
 package derived
 
 import (
+	"errors"
 	"math"
 	"reflect"
 	"strings"
@@ -143,22 +144,26 @@ func TestWarningRules(t *testing.T) {
 	all := []string{"warning_lean_under_boost", "warning_over_boost", "warning_hot_intake_air", "warning_hot_oil", "warning_hot_coolant",
 		"warning_low_oil_pressure", "warning_cold_engine_high_load", "warning_switched_off_hot"}
 	cases := []struct {
-		name  string
-		rules []warn.Text
-		want  []string
+		name    string
+		rules   []warn.Text
+		lenient bool
+		want    []string
 	}{
-		{"built-ins", nil, all},
-		{"one off", []warn.Text{{Name: "hot_oil", Rule: warn.Off}},
+		{"built-ins", nil, false, all},
+		{"one off", []warn.Text{{Name: "hot_oil", Rule: warn.Off}}, false,
 			[]string{"warning_lean_under_boost", "warning_over_boost", "warning_hot_intake_air", "warning_hot_coolant",
 				"warning_low_oil_pressure", "warning_cold_engine_high_load", "warning_switched_off_hot"}},
-		{"one replaced in place", []warn.Text{{Name: "over_boost", Rule: "boost_pressure > 150000 clear 140000"}}, all},
-		{"one added", []warn.Text{{Name: "hot_exhaust", Rule: "exhaust_temp > 950 clear 900 for 1s"}}, append(all[:len(all):len(all)], "warning_hot_exhaust")},
-		{"on a missing channel: left out", []warn.Text{{Name: "low_fuel_pressure", Rule: "fuel_pressure < 250000"}}, all},
+		{"one replaced in place", []warn.Text{{Name: "over_boost", Rule: "boost_pressure > 150000 clear 140000"}}, false, all},
+		{"one added", []warn.Text{{Name: "hot_exhaust", Rule: "exhaust_temp > 950 clear 900 for 1s"}}, false, append(all[:len(all):len(all)], "warning_hot_exhaust")},
+		// Replay leaves out a configured rule whose channel the recording
+		// lacks; the daemon refuses it (TestConfiguredRuleOnAbsentChannel).
+		{"on a missing channel: left out in replay", []warn.Text{{Name: "low_fuel_pressure", Rule: "fuel_pressure < 250000"}}, true, all},
 	}
 	for _, c := range cases {
 		t.Run(c.name, func(t *testing.T) {
 			cfg := demoConfig()
 			cfg.Warnings = c.rules
+			cfg.LenientRules = c.lenient
 			s, err := Build(cfg, registry(t, demoChannels...))
 			if err != nil {
 				t.Fatal(err)
@@ -168,6 +173,63 @@ func TestWarningRules(t *testing.T) {
 			}
 		})
 	}
+}
+
+// TestConfiguredRuleOnAbsentChannel: a configured rule that reads a channel
+// the setup lacks is refused, naming the rule, its index and the channel
+// (with the nearest name for a misspelt one), where the daemon once dropped
+// it silently; a built-in rule on absent channels is left out and listed.
+func TestConfiguredRuleOnAbsentChannel(t *testing.T) {
+	cases := []struct {
+		name  string
+		rules []warn.Text
+		want  RuleChannelError
+		msg   string
+	}{
+		{"misspelt", []warn.Text{{Name: "hot_oil", Rule: warn.Off}, {Name: "typo", Rule: "boost_presure > 80000 for 1s severity critical"}},
+			RuleChannelError{Index: 1, Rule: "typo", Channel: "boost_presure", Suggest: "boost_pressure"},
+			`warning rule typo reads "boost_presure", which is no channel Plenum knows (did you mean boost_pressure?); the rule could never be raised.`},
+		{"known but not measured", []warn.Text{{Name: "hot_gearbox", Rule: "gear > 6"}},
+			RuleChannelError{Index: 0, Rule: "hot_gearbox", Channel: "gear", Known: true},
+			"warning rule hot_gearbox reads gear, which this setup neither measures nor derives"},
+		{"a built-in replaced on an absent channel", []warn.Text{{Name: "over_boost", Rule: "gear > 6 and boost_pressure > 1"}},
+			RuleChannelError{Index: 0, Rule: "over_boost", Channel: "gear", Known: true}, "over_boost reads gear"},
+	}
+	for _, c := range cases {
+		t.Run(c.name, func(t *testing.T) {
+			if _, ok := pipeline.Catalogued(c.want.Channel); ok != c.want.Known {
+				t.Fatalf("test premise: %s catalogued = %v", c.want.Channel, ok)
+			}
+			cfg := demoConfig()
+			cfg.Warnings = c.rules
+			_, err := Build(cfg, registry(t, demoChannels...))
+			var rce *RuleChannelError
+			if !errors.As(err, &rce) {
+				t.Fatalf("err = %v, want a *RuleChannelError", err)
+			}
+			if *rce != c.want {
+				t.Errorf("err = %+v, want %+v", *rce, c.want)
+			}
+			if !strings.Contains(err.Error(), c.msg) {
+				t.Errorf("message %q, want it to contain %q", err.Error(), c.msg)
+			}
+		})
+	}
+	t.Run("built-ins on absent channels are listed", func(t *testing.T) {
+		s, err := Build(demoConfig(), registry(t, "manifold_pressure", "intake_air_temp", "engine_speed"))
+		if err != nil {
+			t.Fatal(err)
+		}
+		want := []LeftOut{
+			{Rule: "lean_under_boost", Missing: []string{"lambda"}},
+			{Rule: "hot_oil", Missing: []string{"oil_temp"}},
+			{Rule: "hot_coolant", Missing: []string{"coolant_temp"}},
+			{Rule: "low_oil_pressure", Missing: []string{"oil_pressure"}},
+		}
+		if !reflect.DeepEqual(s.LeftOut, want) {
+			t.Errorf("left out %+v, want %+v", s.LeftOut, want)
+		}
+	})
 }
 
 func TestBuildErrors(t *testing.T) {

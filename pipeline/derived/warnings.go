@@ -3,6 +3,7 @@ package derived
 import (
 	"fmt"
 	"math"
+	"slices"
 	"time"
 
 	"github.com/plenum-engine/plenum/derive/warn"
@@ -22,36 +23,85 @@ type warnings struct {
 	lastAll time.Time
 }
 
-// newWarnings parses rules (skipping warn.Off ones), leaves out those on a
-// channel has refuses, and returns nil when no rule is left.
-func newWarnings(rules []warn.Text, has func(string) bool) (*warnings, error) {
+// LeftOut is a built-in warning rule that Build left out because the setup
+// neither measures nor derives channels it reads.
+type LeftOut struct {
+	Rule    string   // the rule's name
+	Missing []string // the channels the setup lacks
+}
+
+// RuleChannelError is a configured warning rule (Config.Warnings[Index])
+// that reads a channel the setup neither measures nor derives: it could
+// never be raised, so Build refuses it.
+type RuleChannelError struct {
+	Index   int    // in Config.Warnings
+	Rule    string // the rule's name
+	Channel string // the first channel the setup lacks
+	// Known tells whether the channel is in the channel catalogue (the
+	// setup lacks it) or not (a misspelt name); Suggest is the catalogued
+	// name nearest a misspelt one, or "".
+	Known   bool
+	Suggest string
+}
+
+// Error says what is wrong as a sentence.
+func (e *RuleChannelError) Error() string {
+	if !e.Known {
+		s := fmt.Sprintf("warning rule %s reads %q, which is no channel Plenum knows", e.Rule, e.Channel)
+		if e.Suggest != "" {
+			s += fmt.Sprintf(" (did you mean %s?)", e.Suggest)
+		}
+		return s + "; the rule could never be raised."
+	}
+	return fmt.Sprintf("warning rule %s reads %s, which this setup neither measures nor derives, so it could never be raised: add an input for %s or remove the rule.", e.Rule, e.Channel, e.Channel)
+}
+
+// newWarnings parses the built-in rules merged with the configured ones
+// (skipping warn.Off ones). A built-in rule on a channel has refuses is left
+// out and listed in leftOut; a configured rule on such a channel is a
+// *RuleChannelError, unless lenient, when it is left out too.
+func newWarnings(user []warn.Text, has func(string) bool, lenient bool) (w *warnings, leftOut []LeftOut, err error) {
+	configured := map[string]int{}
+	for i, r := range user {
+		configured[r.Name] = i
+	}
 	var parsed []warn.Rule
-	for _, r := range rules {
+	for _, r := range warn.Merge(warn.Builtin(), user) {
 		if r.Rule == warn.Off {
 			continue
 		}
 		rule, err := warn.Parse(r.Name, r.Rule)
 		if err != nil {
-			return nil, fmt.Errorf("warning %s: %w", r.Name, err)
+			return nil, nil, fmt.Errorf("warning %s: %w", r.Name, err)
 		}
-		ok := true
+		var missing []string
 		for _, ch := range rule.Channels() {
-			if !has(ch) {
-				ok = false // a rule on a channel this setup lacks is left out
+			if !has(ch) && !slices.Contains(missing, ch) {
+				missing = append(missing, ch)
 			}
 		}
-		if ok {
+		if len(missing) == 0 {
 			parsed = append(parsed, rule)
+			continue
 		}
+		if i, ok := configured[r.Name]; ok && !lenient {
+			_, known := pipeline.Catalogued(missing[0])
+			e := &RuleChannelError{Index: i, Rule: r.Name, Channel: missing[0], Known: known}
+			if !known {
+				e.Suggest = nearestChannel(missing[0])
+			}
+			return nil, nil, e
+		}
+		leftOut = append(leftOut, LeftOut{Rule: r.Name, Missing: missing})
 	}
 	if len(parsed) == 0 {
-		return nil, nil
+		return nil, leftOut, nil
 	}
 	eng, err := warn.NewEngine(parsed)
 	if err != nil {
-		return nil, fmt.Errorf("warnings: %w", err)
+		return nil, nil, fmt.Errorf("warnings: %w", err)
 	}
-	w := &warnings{eng: eng, names: eng.Channels()}
+	w = &warnings{eng: eng, names: eng.Channels()}
 	for _, n := range w.names {
 		idx, _ := eng.Channel(n)
 		w.chIdx = append(w.chIdx, idx)
@@ -61,7 +111,40 @@ func newWarnings(rules []warn.Text, has func(string) bool) (*warnings, error) {
 		w.last[i] = math.NaN()
 	}
 	w.active = make([]float64, eng.Rules())
-	return w, nil
+	return w, leftOut, nil
+}
+
+// nearestChannel returns the catalogued channel name nearest name by edit
+// distance, when it is close enough to be a misspelling; else "".
+func nearestChannel(name string) string {
+	best, bestD := "", 4
+	for _, c := range pipeline.Catalogue() {
+		if d := editDistance(name, c.Name); d < bestD {
+			best, bestD = c.Name, d
+		}
+	}
+	return best
+}
+
+// editDistance is the Levenshtein distance between a and b, in bytes.
+func editDistance(a, b string) int {
+	prev := make([]int, len(b)+1)
+	cur := make([]int, len(b)+1)
+	for j := range prev {
+		prev[j] = j
+	}
+	for i := 1; i <= len(a); i++ {
+		cur[0] = i
+		for j := 1; j <= len(b); j++ {
+			cost := 1
+			if a[i-1] == b[j-1] {
+				cost = 0
+			}
+			cur[j] = min(prev[j]+1, cur[j-1]+1, prev[j-1]+cost)
+		}
+		prev, cur = cur, prev
+	}
+	return prev[len(b)]
 }
 
 // Name names the detector.

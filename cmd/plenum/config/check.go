@@ -2,12 +2,15 @@ package config
 
 import (
 	"fmt"
+	"math"
 	"net"
 	"net/url"
+	"reflect"
 	"regexp"
 	"sort"
 	"strconv"
 	"strings"
+	"time"
 
 	"go.yaml.in/yaml/v3"
 
@@ -57,6 +60,31 @@ func lineOf(root *yaml.Node, path ...any) int {
 	return line
 }
 
+// written tells whether the key at path is in the file (not a default).
+func written(root *yaml.Node, path ...any) bool {
+	n := root
+	if n.Kind == yaml.DocumentNode && len(n.Content) > 0 {
+		n = n.Content[0]
+	}
+	for _, p := range path {
+		k, _ := p.(string)
+		if n.Kind != yaml.MappingNode {
+			return false
+		}
+		found := false
+		for i := 0; i+1 < len(n.Content); i += 2 {
+			if n.Content[i].Value == k {
+				n, found = n.Content[i+1], true
+				break
+			}
+		}
+		if !found {
+			return false
+		}
+	}
+	return true
+}
+
 func fieldName(path []any) string {
 	var b strings.Builder
 	for _, p := range path {
@@ -80,11 +108,73 @@ type checker struct {
 }
 
 func (c *checker) fail(msg string, path ...any) {
-	c.errs = append(c.errs, &Error{File: c.file, Line: lineOf(c.root, path...), Field: fieldName(path), Msg: msg})
+	c.errs = append(c.errs, &Error{File: c.file, Line: lineOf(c.root, path...), Field: fieldName(path), Msg: sentence(msg)})
+}
+
+// sentence ends msg with a full stop unless it already ends a sentence.
+func sentence(msg string) string {
+	msg = strings.TrimSpace(msg)
+	if msg == "" || strings.HasSuffix(msg, ".") || strings.HasSuffix(msg, "?") || strings.HasSuffix(msg, "!") {
+		return msg
+	}
+	return msg + "."
+}
+
+var durationType = reflect.TypeOf(Duration(0))
+
+// checkNumbers refuses every number that is NaN or infinite and every
+// negative duration, anywhere in the configuration: none of them means
+// anything in a key of Plenum's.
+func checkNumbers(c *checker, v reflect.Value, path []any) {
+	switch v.Kind() {
+	case reflect.Pointer:
+		if !v.IsNil() {
+			checkNumbers(c, v.Elem(), path)
+		}
+	case reflect.Struct:
+		t := v.Type()
+		for i := 0; i < t.NumField(); i++ {
+			key, ok := yamlKey(t.Field(i))
+			if !ok {
+				continue
+			}
+			checkNumbers(c, v.Field(i), append(append([]any(nil), path...), key))
+		}
+	case reflect.Slice, reflect.Array:
+		for i := 0; i < v.Len(); i++ {
+			checkNumbers(c, v.Index(i), append(append([]any(nil), path...), i))
+		}
+	case reflect.Float64, reflect.Float32:
+		if f := v.Float(); math.IsNaN(f) || math.IsInf(f, 0) {
+			c.fail(fmt.Sprintf("is %v, but it must be a finite number", f), path...)
+		}
+	case reflect.Int64:
+		if v.Type() == durationType && v.Int() < 0 {
+			c.fail(fmt.Sprintf("is %v, but a duration must not be negative", time.Duration(v.Int())), path...)
+		}
+	}
+}
+
+// yamlKey returns the YAML key of a decoded struct field, as the decoder
+// names it; ok is false for fields that are not decoded.
+func yamlKey(f reflect.StructField) (key string, ok bool) {
+	if !f.IsExported() {
+		return "", false
+	}
+	tag := f.Tag.Get("yaml")
+	if tag == "-" {
+		return "", false
+	}
+	key, _, _ = strings.Cut(tag, ",")
+	if key == "" {
+		key = strings.ToLower(f.Name)
+	}
+	return key, true
 }
 
 func (cfg *Config) check(file string, root *yaml.Node) Errors {
 	c := &checker{file: file, root: root}
+	checkNumbers(c, reflect.ValueOf(cfg).Elem(), nil)
 	if cfg.Vehicle == "" {
 		c.fail("must name the vehicle or cell (a topic segment, e.g. brackenfell-rs)", "vehicle")
 	} else if strings.ContainsAny(cfg.Vehicle, "/+# ") {
@@ -153,7 +243,11 @@ func (cfg *Config) check(file string, root *yaml.Node) Errors {
 		for j, in := range s.Inputs {
 			p := []any{"serial", i, "inputs", j}
 			if _, ok := pipeline.Standard(in.Channel); !ok {
-				c.fail(fmt.Sprintf("unknown channel %q (one of %s)", in.Channel, strings.Join(pipeline.StandardNames(), ", ")), append(p, "channel")...)
+				why := ""
+				if _, ok := pipeline.Catalogued(in.Channel); ok {
+					why = fmt.Sprintf(": %s is derived or read from the ECU, not wired to a microcontroller", in.Channel)
+				}
+				c.fail(fmt.Sprintf("unknown channel %q%s (one of %s)", in.Channel, why, strings.Join(pipeline.StandardNames(), ", ")), append(p, "channel")...)
 			}
 			key := in.Field
 			if s.Format == "delimited" {
@@ -177,11 +271,38 @@ func (cfg *Config) check(file string, root *yaml.Node) Errors {
 			c.fail(`must be "embedded" or a URL such as tcp://host:1883 or ssl://host:8883`, "mqtt", "broker")
 		}
 	}
-	if _, _, err := net.SplitHostPort(cfg.MQTT.Listen); err != nil {
+	_, _, mqttErr := net.SplitHostPort(cfg.MQTT.Listen)
+	if mqttErr != nil {
 		c.fail("must be host:port", "mqtt", "listen")
 	}
-	if _, _, err := net.SplitHostPort(cfg.HTTP.Listen); err != nil {
+	_, _, httpErr := net.SplitHostPort(cfg.HTTP.Listen)
+	if httpErr != nil {
 		c.fail("must be host:port", "http", "listen")
+	}
+	if cfg.MQTT.Broker == "embedded" && mqttErr == nil && httpErr == nil && sameListener(cfg.MQTT.Listen, cfg.HTTP.Listen) {
+		if written(c.root, "http", "listen") || !written(c.root, "mqtt", "listen") {
+			c.fail(fmt.Sprintf("is %s, the address of the embedded broker (mqtt.listen) too: give each listener a port of its own", cfg.HTTP.Listen), "http", "listen")
+		} else {
+			c.fail(fmt.Sprintf("is %s, the address of the metrics listener (http.listen) too: give each listener a port of its own", cfg.MQTT.Listen), "mqtt", "listen")
+		}
+	}
+	checkWriters(c, cfg)
+	if cfg.Record.RotateMB < 0 {
+		c.fail("must not be negative (0: the default, 64)", "record", "rotate_mb")
+	}
+	for _, k := range []struct {
+		v   float64
+		key string
+	}{{cfg.Turbo.TargetBoostKPa, "target_boost_kpa"}, {cfg.Turbo.FilterDropKPa, "filter_drop_kpa"}, {cfg.Turbo.WarmOilC, "warm_oil_c"}} {
+		if k.v < 0 {
+			c.fail("must not be negative (0: the default)", "turbo", k.key)
+		}
+	}
+	if cfg.Record.LegacyControlToken != "" {
+		c.fail("is no longer read: a secret in the configuration would be copied into every recorded run. Put the token in a file readable only by the daemon and name it in record.control_token_file", "record", "control_token")
+	}
+	if cfg.Record.ControlTokenFile != "" && cfg.Record.Dir == "" {
+		c.fail("run commands need record.dir: a token without recording enables nothing", "record", "control_token_file")
 	}
 	if cfg.MQTT.MaxRateHz < 0 || cfg.MQTT.MaxRateHz > 1000 {
 		c.fail("must be between 0 and 1000", "mqtt", "max_rate_hz")
@@ -231,8 +352,8 @@ func (cfg *Config) check(file string, root *yaml.Node) Errors {
 			c.fail("run commands need record.dir", "mqtt", "commands")
 		case cfg.MQTT.Broker == "embedded" && commandUsers == 0:
 			c.fail("no user may send them: give a user in mqtt.users commands: true", "mqtt", "commands")
-		case cfg.MQTT.Broker != "embedded" && cfg.Record.ControlToken == "":
-			c.fail("with an external broker, commands need record.control_token, carried in each command's token", "mqtt", "commands")
+		case cfg.MQTT.Broker != "embedded" && cfg.Record.ControlTokenFile == "":
+			c.fail("with an external broker, commands need record.control_token_file: the token is carried in each command", "mqtt", "commands")
 		}
 	}
 	if (cfg.MQTT.CertFile == "") != (cfg.MQTT.KeyFile == "") {
@@ -314,9 +435,9 @@ func checkCalibration(c *checker, in SerialInput, p []any) {
 		c.fail("needs exactly one of linear, table, ntc_beta, ntc_steinhart_hart", p...)
 		return
 	}
-	ch, _ := pipeline.Standard(in.Channel)
-	if _, err := ToCanonical(cal.Unit, ch.Unit, 0); err != nil && ch.Name != "" {
-		c.fail(err.Error(), append(p, "unit")...)
+	ch, standard := pipeline.Standard(in.Channel)
+	if _, err := ToCanonical(cal.Unit, ch.Unit, 0); err != nil && standard {
+		c.fail(fmt.Sprintf("%v: channel %s takes one of %s", err, ch.Name, strings.Join(unitsOf(ch.Unit), ", ")), append(p, "unit")...)
 	}
 	switch {
 	case cal.Linear != nil:
@@ -354,31 +475,98 @@ func contains(list []string, s string) bool {
 	return false
 }
 
+// unitName names a canonical unit in a sentence ("" is a plain number).
+func unitName(u pipeline.Unit) string {
+	if u == "" {
+		return "plain numbers without a unit"
+	}
+	return string(u)
+}
+
+// unitsOf lists the configuration units that measure the canonical unit u.
+func unitsOf(u pipeline.Unit) []string {
+	var out []string
+	for name, cv := range unitTable {
+		if name != "" && cv.to == u {
+			out = append(out, fmt.Sprintf("%q", name))
+		}
+	}
+	sort.Strings(out)
+	out = append(out, `"" (the channel's own unit)`)
+	return out
+}
+
+// sameListener tells whether two host:port addresses would collide: the
+// same port on the same host or on a wildcard host.
+func sameListener(a, b string) bool {
+	ha, pa, _ := net.SplitHostPort(a)
+	hb, pb, _ := net.SplitHostPort(b)
+	if pa != pb || pa == "0" {
+		return false
+	}
+	wild := func(h string) bool { return h == "" || h == "0.0.0.0" || h == "::" }
+	norm := func(h string) string {
+		if h == "localhost" {
+			return "127.0.0.1"
+		}
+		return h
+	}
+	return wild(ha) || wild(hb) || norm(ha) == norm(hb)
+}
+
+// checkWriters refuses a channel that two inputs write: each frame would
+// hold two different values of it.
+func checkWriters(c *checker, cfg *Config) {
+	first := map[string][]any{}
+	claim := func(name string, p []any) {
+		if name == "" {
+			return
+		}
+		if q, ok := first[name]; ok {
+			c.fail(fmt.Sprintf("channel %s is already written by %s (line %d); one channel takes one input, so map this reading to another channel or remove it", name, fieldName(q), lineOf(c.root, q...)), p...)
+			return
+		}
+		first[name] = p
+	}
+	for i, s := range cfg.Serial {
+		for j, in := range s.Inputs {
+			claim(in.Channel, []any{"serial", i, "inputs", j, "channel"})
+		}
+	}
+	for i, cn := range cfg.CAN {
+		for j, ch := range cn.Channels {
+			claim(ch.Name, []any{"can", i, "channels", j, "name"})
+		}
+	}
+}
+
+type unitConv struct {
+	to    pipeline.Unit
+	scale float64
+	off   float64
+}
+
+var unitTable = map[string]unitConv{
+	"pa": {pipeline.Pascal, 1, 0}, "kpa": {pipeline.Pascal, 1000, 0}, "bar": {pipeline.Pascal, 1e5, 0},
+	"psi": {pipeline.Pascal, 6894.757293168, 0}, // NIST SP 811: 1 psi = 6.894 757 kPa
+	"c":   {pipeline.Celsius, 1, 0}, "k": {pipeline.Celsius, 1, -273.15},
+	"f": {pipeline.Celsius, 5.0 / 9, -32 * 5.0 / 9},
+	"v": {pipeline.Volts, 1, 0}, "mv": {pipeline.Volts, 0.001, 0},
+	"ratio": {pipeline.Ratio, 1, 0}, "percent": {pipeline.Ratio, 0.01, 0},
+	"rpm": {pipeline.RPM, 1, 0}, "nm": {pipeline.NewtonMetres, 1, 0}, "": {"", 1, 0},
+}
+
 // ToCanonical converts v from a config unit to the canonical unit want.
 func ToCanonical(unit string, want pipeline.Unit, v float64) (float64, error) {
-	type conv struct {
-		to    pipeline.Unit
-		scale float64
-		off   float64
-	}
-	table := map[string]conv{
-		"pa": {pipeline.Pascal, 1, 0}, "kpa": {pipeline.Pascal, 1000, 0}, "bar": {pipeline.Pascal, 1e5, 0},
-		"psi": {pipeline.Pascal, 6894.757293168, 0}, // NIST SP 811: 1 psi = 6.894 757 kPa
-		"c":   {pipeline.Celsius, 1, 0}, "k": {pipeline.Celsius, 1, -273.15},
-		"f": {pipeline.Celsius, 5.0 / 9, -32 * 5.0 / 9},
-		"v": {pipeline.Volts, 1, 0}, "mv": {pipeline.Volts, 0.001, 0},
-		"ratio": {pipeline.Ratio, 1, 0}, "percent": {pipeline.Ratio, 0.01, 0},
-		"rpm": {pipeline.RPM, 1, 0}, "nm": {pipeline.NewtonMetres, 1, 0}, "": {"", 1, 0},
-	}
-	cv, ok := table[strings.ToLower(unit)]
+	cv, ok := unitTable[strings.ToLower(unit)]
 	if !ok {
-		return 0, fmt.Errorf("unknown unit %q", unit)
+		return 0, fmt.Errorf("unit %q is not one Plenum knows (pa, kpa, bar, psi, c, k, f, v, mv, ratio, percent, rpm, nm)", unit)
 	}
 	if unit == "" {
 		cv.to = want
 	}
 	if cv.to != want {
-		return 0, fmt.Errorf("unit %q does not measure %s", unit, want)
+		return 0, fmt.Errorf("unit %q does not measure %s (it measures %s)", unit, unitName(want), unitName(cv.to))
 	}
 	return v*cv.scale + cv.off, nil
 }

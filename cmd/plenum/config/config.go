@@ -36,6 +36,9 @@ type Config struct {
 
 	// Raw is the text the configuration was parsed from.
 	Raw []byte `yaml:"-"`
+
+	file string     // the name errors give
+	root *yaml.Node // the parsed document, for the lines of errors found after Parse
 }
 
 // Record configures the durable recording of every sample.
@@ -49,9 +52,18 @@ type Record struct {
 	// AutoTrigger starts a run at wide-open throttle with engine speed
 	// rising and ends it once the throttle has been closed for 2 s.
 	AutoTrigger bool `yaml:"auto_trigger"`
-	// ControlToken enables the run commands of the HTTP API; requests must
-	// carry "Authorization: Bearer <token>". Empty: commands are off.
-	ControlToken string `yaml:"control_token"`
+	// ControlTokenFile names the file holding the control token, which
+	// enables the run commands of the HTTP API (requests carry
+	// "Authorization: Bearer <token>") and guards MQTT commands. Empty:
+	// the HTTP commands are off. Like every secret, the token is never in
+	// the configuration itself: the configuration is copied into every run.
+	ControlTokenFile string `yaml:"control_token_file"`
+	// LegacyControlToken is the old record.control_token key, refused with
+	// a sentence naming control_token_file.
+	LegacyControlToken string `yaml:"control_token"`
+	// ControlToken is the token itself, read from ControlTokenFile by the
+	// binary (or set by tests); never decoded from the file.
+	ControlToken string `yaml:"-"`
 	// Push sends the recorded lines to an InfluxDB-compatible write
 	// endpoint as well; empty URL: off.
 	Push Push `yaml:"push"`
@@ -289,6 +301,17 @@ func (es Errors) Error() string {
 	return strings.Join(s, "\n")
 }
 
+// At returns an error at the key named by path (map keys and sequence
+// indexes, e.g. "warnings", 2, "rule") of the file c was parsed from, for
+// problems found after Parse, when the configuration is built.
+func (c *Config) At(msg string, path ...any) *Error {
+	e := &Error{File: c.file, Field: fieldName(path), Msg: sentence(msg)}
+	if c.root != nil {
+		e.Line = lineOf(c.root, path...)
+	}
+	return e
+}
+
 // Load reads and checks the file at path.
 func Load(path string) (*Config, error) {
 	data, err := os.ReadFile(path)
@@ -306,7 +329,7 @@ func Parse(name string, data []byte) (*Config, error) {
 	dec := yaml.NewDecoder(bytes.NewReader(data))
 	if err := dec.Decode(&root); err != nil {
 		if errors.Is(err, io.EOF) {
-			return nil, &Error{File: name, Msg: "empty configuration"}
+			return nil, &Error{File: name, Msg: "the configuration is empty: it needs at least vehicle and engine."}
 		}
 		return nil, yamlError(name, err)
 	}
@@ -318,6 +341,7 @@ func Parse(name string, data []byte) (*Config, error) {
 	}
 	cfg.defaults()
 	cfg.Raw = append([]byte(nil), data...)
+	cfg.file, cfg.root = name, &root
 	if errs := cfg.check(name, &root); len(errs) > 0 {
 		return nil, errs
 	}
@@ -342,6 +366,7 @@ func yamlError(name string, err error) error {
 				e.Msg = "unknown key in " + strings.ToLower(f[2])
 			}
 		}
+		e.Msg = sentence(e.Msg)
 		out = append(out, e)
 	}
 	return out

@@ -116,3 +116,89 @@ func TestEveryKnownFuelAccepted(t *testing.T) {
 		})
 	}
 }
+
+// TestRefusedButAcceptedBefore lists configurations that check used to pass
+// although the daemon then did something else than they say: each is now
+// refused with file:line, the field and a complete sentence.
+func TestRefusedButAcceptedBefore(t *testing.T) {
+	const head = "vehicle: x\nengine: {displacement_l: 2, volumetric_efficiency: 0.9}\n"
+	const mcu = "serial:\n  - name: m\n    device: /dev/x\n    inputs:\n" +
+		"      - {field: a0, channel: manifold_pressure, calibration: {unit: kpa, linear: {in_mv: [0, 5000], out: [0, 300]}}}\n"
+	cases := []struct {
+		name, yaml, want string
+	}{
+		{"two serial inputs on one channel", head + mcu +
+			"      - {field: a1, channel: manifold_pressure, calibration: {unit: kpa, linear: {in_mv: [0, 5000], out: [0, 300]}}}\n",
+			"bad.yaml:8: serial[0].inputs[1].channel: channel manifold_pressure is already written by serial[0].inputs[0].channel (line 7)"},
+		{"two serial sources on one channel", head + mcu +
+			"  - name: n\n    device: /dev/y\n    inputs:\n      - {field: a0, channel: manifold_pressure, calibration: {unit: kpa, linear: {in_mv: [0, 5000], out: [0, 300]}}}\n",
+			"bad.yaml:11: serial[1].inputs[0].channel: channel manifold_pressure is already written"},
+		{"two CAN sections on one channel", head +
+			"can:\n  - {name: a, bus: can0, channels: [{name: ecu_engine_speed, rate_hz: 10}]}\n  - {name: b, bus: can1, channels: [{name: ecu_engine_speed, rate_hz: 10}]}\n",
+			"bad.yaml:5: can[1].channels[0].name: channel ecu_engine_speed is already written"},
+		{"NaN volumetric efficiency", "vehicle: x\nengine:\n  displacement_l: 2\n  volumetric_efficiency: .nan\n",
+			"bad.yaml:4: engine.volumetric_efficiency: is NaN, but it must be a finite number."},
+		{"NaN barometric pressure", "vehicle: x\nengine:\n  displacement_l: 2\n  volumetric_efficiency: 0.9\n  baro_kpa: .nan\n",
+			"bad.yaml:5: engine.baro_kpa: is NaN, but it must be a finite number."},
+		{"infinite displacement", "vehicle: x\nengine:\n  displacement_l: .inf\n  volumetric_efficiency: 0.9\n",
+			"bad.yaml:3: engine.displacement_l: is +Inf, but it must be a finite number."},
+		{"NaN in a calibration", head + "serial:\n  - name: m\n    device: /dev/x\n    inputs:\n      - field: a0\n        channel: manifold_pressure\n        calibration: {unit: kpa, linear: {in_mv: [0, 5000], out: [0, .nan]}}\n",
+			"bad.yaml:9: serial[0].inputs[0].calibration.linear.out[1]: is NaN"},
+		{"NaN poll rate", head + "can:\n  - name: e\n    bus: can0\n    channels:\n      - {name: ecu_engine_speed, rate_hz: .nan}\n",
+			"bad.yaml:7: can[0].channels[0].rate_hz: is NaN"},
+		{"negative sync_every", head + "record:\n  dir: /tmp/r\n  sync_every: -1s\n",
+			"bad.yaml:5: record.sync_every: is -1s, but a duration must not be negative."},
+		{"negative rotate_mb", head + "record:\n  dir: /tmp/r\n  rotate_mb: -4\n",
+			"bad.yaml:5: record.rotate_mb: must not be negative"},
+		{"negative snapshot_every", head + "mqtt:\n  snapshot_every: -5s\n",
+			"bad.yaml:4: mqtt.snapshot_every: is -5s, but a duration must not be negative."},
+		{"negative cool_down_tau", head + "turbo:\n  cool_down_tau: -60s\n",
+			"bad.yaml:4: turbo.cool_down_tau: is -1m0s, but a duration must not be negative."},
+		{"negative max_age", head + "serial:\n  - name: m\n    device: /dev/x\n    inputs:\n      - field: a0\n        channel: manifold_pressure\n        max_age: -1s\n        calibration: {unit: kpa, linear: {in_mv: [0, 5000], out: [0, 300]}}\n",
+			"bad.yaml:9: serial[0].inputs[0].max_age: is -1s"},
+		{"negative filter drop", head + "turbo:\n  filter_drop_kpa: -2\n",
+			"bad.yaml:4: turbo.filter_drop_kpa: must not be negative"},
+		{"one address for both listeners", head + "mqtt:\n  listen: 127.0.0.1:9000\nhttp:\n  listen: 127.0.0.1:9000\n",
+			"bad.yaml:6: http.listen: is 127.0.0.1:9000, the address of the embedded broker (mqtt.listen) too"},
+		{"a wildcard and a loopback listener on one port", head + "mqtt:\n  listen: :9000\nhttp:\n  listen: localhost:9000\n",
+			"bad.yaml:6: http.listen: is localhost:9000, the address of the embedded broker"},
+		{"the old control_token key", head + "record:\n  dir: /tmp/r\n  control_token: change-me-to-a-long-random-string\n",
+			"bad.yaml:5: record.control_token: is no longer read: a secret in the configuration would be copied into every recorded run. Put the token in a file readable only by the daemon and name it in record.control_token_file."},
+		{"a token without recording", head + "record:\n  control_token_file: /etc/plenum/control-token\n",
+			"bad.yaml:4: record.control_token_file: run commands need record.dir"},
+		{"a unit of another quantity names what fits", head + "serial:\n  - name: m\n    device: /dev/x\n    inputs:\n      - field: a0\n        channel: throttle_position\n        calibration: {unit: kpa, linear: {in_mv: [0, 5000], out: [0, 1]}}\n",
+			`bad.yaml:9: serial[0].inputs[0].calibration.unit: unit "kpa" does not measure ratio (it measures pascals): channel throttle_position takes one of "percent", "ratio", "" (the channel's own unit).`},
+	}
+	for _, c := range cases {
+		t.Run(c.name, func(t *testing.T) {
+			_, err := Parse("bad.yaml", []byte(c.yaml))
+			if err == nil || !strings.Contains(err.Error(), c.want) {
+				t.Fatalf("err = %v\nwant it to contain %q", err, c.want)
+			}
+		})
+	}
+}
+
+// TestMessagesAreSentences checks that every refusal ends as a sentence and
+// none ends mid-phrase (as `unit "kpa" does not measure ` once did).
+func TestMessagesAreSentences(t *testing.T) {
+	bad := []string{
+		"vehicle: x\nengine:\n  displacement_l: 2\n  volumetric_efficiency: 0.9\n  turbo_size: 3\n",
+		"vehicle: x\nengine: {displacement_l: -2, volumetric_efficiency: 0.9, fuel: kerosene}\n",
+		"vehicle: x\nengine: {displacement_l: 2, volumetric_efficiency: 0.9}\nserial:\n  - name: m\n    device: /dev/x\n    inputs:\n      - field: a0\n        channel: lambda_error\n        calibration: {unit: kpa, linear: {in_mv: [0, 5000], out: [0, 1]}}\n",
+		"vehicle: x\nengine: {displacement_l: 2, volumetric_efficiency: 0.9}\nserial:\n  - name: m\n    device: /dev/x\n    inputs:\n      - field: a0\n        channel: wideband_voltage\n        calibration: {unit: furlongs, linear: {in_mv: [0, 5000], out: [0, 1]}}\n",
+		"vehicle: x\nengine: {displacement_l: 2, volumetric_efficiency: 0.9}\nwarnings:\n  - {name: x, rule: 'oil_temp >'}\n",
+		"",
+	}
+	for _, y := range bad {
+		_, err := Parse("bad.yaml", []byte(y))
+		if err == nil {
+			t.Fatalf("accepted:\n%s", y)
+		}
+		for _, line := range strings.Split(err.Error(), "\n") {
+			if !strings.HasSuffix(line, ".") || strings.HasSuffix(line, " .") {
+				t.Errorf("not a complete sentence: %q", line)
+			}
+		}
+	}
+}
