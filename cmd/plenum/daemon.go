@@ -164,6 +164,9 @@ func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *s
 	if pusher != nil {
 		parts = append(parts, pusher)
 	}
+	if brk != nil {
+		parts = append(parts, brk)
+	}
 	for _, s := range srcs {
 		if s.health != nil {
 			parts = append(parts, s.health)
@@ -308,6 +311,16 @@ type levelFilter struct {
 
 func (f levelFilter) Enabled(ctx context.Context, l slog.Level) bool {
 	return l >= f.min && f.Handler.Enabled(ctx, l)
+}
+
+// WithAttrs keeps the filter around the handler with the attributes.
+func (f levelFilter) WithAttrs(as []slog.Attr) slog.Handler {
+	return levelFilter{f.Handler.WithAttrs(as), f.min}
+}
+
+// WithGroup keeps the filter around the handler with the group.
+func (f levelFilter) WithGroup(name string) slog.Handler {
+	return levelFilter{f.Handler.WithGroup(name), f.min}
 }
 
 func tlsConfig(m config.MQTT) (*tls.Config, error) {
