@@ -373,3 +373,57 @@ func TestSlowProducerCannotSplitFrames(t *testing.T) {
 		})
 	}
 }
+
+// BenchmarkPutFrame measures the live path: a driver hands frames of 15
+// samples (one serial line of the demo) to a running ingest loop, which
+// stores them, runs the derivations once a frame and fans them out.
+func BenchmarkPutFrame(b *testing.B) {
+	names := make([]string, 15)
+	for i := range names {
+		names[i] = "in" + strconv.Itoa(i)
+	}
+	reg := newReg(b, names...)
+	ds := []Derivation{
+		&sumDeriv{name: "d1", in: []Input{{Name: "in0"}, {Name: "in1"}}, out: "s01"},
+		&sumDeriv{name: "d2", in: []Input{{Name: "s01"}, {Name: "in2"}}, out: "s012"},
+	}
+	g, err := BuildGraph(reg, ds)
+	if err != nil {
+		b.Fatal(err)
+	}
+	p := New(reg, g, Options{})
+	sub := p.Subscribe("recorder", 1<<16)
+	ctx, cancel := context.WithCancel(context.Background())
+	done := make(chan struct{})
+	go func() { p.Run(ctx); close(done) }()
+	drained := make(chan struct{})
+	go func() {
+		var buf []Sample
+		for {
+			select {
+			case <-sub.C():
+				buf, _ = sub.Drain(buf[:0], nil)
+			case <-done:
+				close(drained)
+				return
+			}
+		}
+	}()
+	frame := make([]Sample, 15)
+	t0 := time.Unix(0, 0)
+	b.ReportAllocs()
+	b.ResetTimer()
+	for i := 0; i < b.N; i++ {
+		ti := t0.Add(time.Duration(i) * time.Millisecond)
+		for j := range frame {
+			frame[j] = Sample{Channel: ChannelID(j), Value: float64(i + j), Time: ti}
+		}
+		p.PutFrame(frame)
+	}
+	cancel()
+	<-done
+	b.StopTimer()
+	<-drained
+	b.ReportMetric(float64(b.N*15)/b.Elapsed().Seconds(), "samples/s")
+	b.ReportMetric(float64(b.Elapsed().Nanoseconds())/float64(b.N*15), "ns/sample")
+}
