@@ -21,6 +21,7 @@ type stepClock struct {
 	release chan struct{}
 
 	mu    sync.Mutex
+	held  bool
 	asked map[time.Duration]int
 }
 
@@ -29,18 +30,24 @@ func newStepClock(hold time.Duration) *stepClock {
 		release: make(chan struct{}), asked: map[time.Duration]int{}}
 }
 
+// After counts d once the manual clock has the deadline, so that a test that
+// saw the count can Advance past it.
 func (c *stepClock) After(d time.Duration) <-chan time.Time {
 	c.mu.Lock()
-	c.asked[d]++
-	first := c.asked[d] == 1
+	hold := c.hold > 0 && d == c.hold && !c.held
+	c.held = c.held || hold
 	c.mu.Unlock()
-	if c.hold > 0 && d == c.hold && first {
+	if hold {
 		<-c.release
 	}
-	return c.Manual.After(d)
+	ch := c.Manual.After(d)
+	c.mu.Lock()
+	c.asked[d]++
+	c.mu.Unlock()
+	return ch
 }
 
-// askedFor returns how many times After(d) was called.
+// askedFor returns how many After(d) deadlines are set.
 func (c *stepClock) askedFor(d time.Duration) int {
 	c.mu.Lock()
 	defer c.mu.Unlock()
