@@ -86,8 +86,16 @@ type Stats struct {
 	MessagesIn          uint64
 	MessagesOut         uint64
 	Ignored             uint64 // frames ignored (ErrIgnored) from accepted IDs
-	Aborted             uint64 // receptions aborted: wrong SN, short CF, N_Cr timeout, interrupted, too long
+	Aborted             uint64 // receptions aborted: wrong SN, short CF, N_Cr timeout, interrupted, too long (one each)
 	Dropped             uint64 // completed messages dropped because Receive was not keeping up
+	// UnexpectedFC counts flow control frames from an accepted ID that came
+	// while no send was waiting for one (between sends, or in the middle of
+	// a block) and were ignored.
+	UnexpectedFC uint64
+	// Interrupted counts receptions abandoned because the same sender began
+	// a new message (SF or FF) before the last one was complete; each is
+	// also counted in Aborted.
+	Interrupted uint64
 }
 
 // Conn is an ISO-TP endpoint over a can.Bus. It reads the bus in its own
@@ -106,13 +114,68 @@ type Conn struct {
 	wg     sync.WaitGroup
 
 	sendMu sync.Mutex
-	fcWant atomic.Int64 // tx ID whose FC the current send waits for, or -1
-	fcCh   chan FlowControl
+	tx     sender
 
 	results chan result
 	stats   struct {
 		framesIn, framesOut, msgsIn, msgsOut, ignored, aborted, dropped atomic.Uint64
+		unexpectedFC, interrupted                                       atomic.Uint64
 	}
+}
+
+// txState is where the send in progress stands, as flow control sees it.
+type txState uint8
+
+const (
+	// txIdle: no multi-frame send; every FC is unexpected.
+	txIdle txState = iota
+	// txSending: in the middle of a block; every FC is unexpected.
+	txSending
+	// txAwait: the FF or the last CF of a block is out or going out; the
+	// next FC from the peer is applied.
+	txAwait
+	// txDone: an FC (Overflow, invalid FS, one Wait too many) or N_Bs ended
+	// the send; every FC is unexpected.
+	txDone
+)
+
+// sender is the flow-control state of the send in progress. The engine
+// applies each FC to it as the FC arrives, under mu, so nothing is queued
+// and nothing is lost however fast FCs come; the sending goroutine reads
+// the outcome when wake tells it something changed.
+//
+// ISO 15765-2 has the sender wait for an FC only after the FF and after the
+// last CF of a block, and ignore an FC that arrives at any other time (from
+// memory of the standard's table for the unexpected arrival of an N_PDU).
+// The wait begins here when the FF or last CF is handed to the bus, not
+// when the bus confirms it: a peer on a virtual bus answers before the
+// sending goroutine has resumed from the confirmation. An FC that the peer
+// sent before that frame reached the wire but that arrives while the frame
+// is being handed over is therefore taken as the answer, a window of one
+// frame's transmission.
+type sender struct {
+	mu    sync.Mutex
+	state txState
+	id    uint32      // CAN ID of the send in progress
+	waits int         // FC Wait frames since the FF or the block's last CF
+	fc    FlowControl // the CTS that opened the next block
+	err   error       // why the send ended, in txDone
+	wake  chan struct{}
+}
+
+// expect makes the send on id wait for an FC, before the FF or the last CF
+// of a block goes out.
+func (s *sender) expect(id uint32) {
+	s.mu.Lock()
+	s.state, s.id, s.waits, s.err = txAwait, id, 0, nil
+	s.mu.Unlock()
+}
+
+// finish ends the send: every later FC is unexpected.
+func (s *sender) finish() {
+	s.mu.Lock()
+	s.state = txIdle
+	s.mu.Unlock()
 }
 
 type result struct {
@@ -168,10 +231,9 @@ func NewConn(bus can.Bus, cfg Config) (*Conn, error) {
 	}
 	c := &Conn{
 		bus: bus, cfg: cfg, clock: cfg.Clock, stmin: stmin,
-		fcCh:    make(chan FlowControl, 4),
 		results: make(chan result, cfg.Queue),
 	}
-	c.fcWant.Store(-1)
+	c.tx.wake = make(chan struct{}, 1)
 	c.ctx, c.cancel = context.WithCancel(context.Background())
 	frames := make(chan can.Frame, 64)
 	busErr := make(chan error, 1)
@@ -187,6 +249,7 @@ func (c *Conn) Stats() Stats {
 		FramesIn: c.stats.framesIn.Load(), FramesOut: c.stats.framesOut.Load(),
 		MessagesIn: c.stats.msgsIn.Load(), MessagesOut: c.stats.msgsOut.Load(),
 		Ignored: c.stats.ignored.Load(), Aborted: c.stats.aborted.Load(), Dropped: c.stats.dropped.Load(),
+		UnexpectedFC: c.stats.unexpectedFC.Load(), Interrupted: c.stats.interrupted.Load(),
 	}
 }
 
@@ -201,7 +264,9 @@ func (c *Conn) Close() error {
 // Receive returns the next message from the peer or any accepted responder,
 // or an error for a reception that failed (ErrWrongSN, ErrTimeout,
 // ErrShortFrame, ErrInterrupted, ErrTooLong, or a bus error); later
-// messages still arrive after an error. The payload belongs to the caller.
+// messages still arrive after an error. An FF that is too long and
+// interrupts a reception yields two errors, ErrInterrupted and then
+// ErrTooLong. The payload belongs to the caller.
 func (c *Conn) Receive(ctx context.Context) (Message, error) {
 	select {
 	case r := <-c.results:
@@ -248,12 +313,9 @@ func (c *Conn) SendTo(ctx context.Context, txID uint32, payload []byte) error {
 		c.stats.msgsOut.Add(1)
 		return nil
 	}
-	// Drain stale FC, then announce which FC we wait for.
-	for len(c.fcCh) > 0 {
-		<-c.fcCh
-	}
-	c.fcWant.Store(int64(txID))
-	defer c.fcWant.Store(-1)
+	// From here the FF's FC is expected; FCs before are not ours.
+	c.tx.expect(txID)
+	defer c.tx.finish()
 
 	var d [8]byte
 	var off int
@@ -285,6 +347,9 @@ func (c *Conn) SendTo(ctx context.Context, txID uint32, payload []byte) error {
 			}
 			d = [8]byte{pciCF<<4 | sn}
 			k := copy(d[1:], payload[off:])
+			if off+k < n && fc.BlockSize > 0 && sent+1 == int(fc.BlockSize) {
+				c.tx.expect(txID) // the block's last CF: its FC is next
+			}
 			if err := c.put(ctx, txID, d[:], 1+k); err != nil {
 				return err
 			}
@@ -296,27 +361,37 @@ func (c *Conn) SendTo(ctx context.Context, txID uint32, payload []byte) error {
 	return nil
 }
 
-// awaitCTS waits for a ContinueToSend FC, following Wait frames.
+// awaitCTS waits for the ContinueToSend FC that opens the next block,
+// following Wait frames, after the FF or a block's last CF was sent. N_Bs
+// starts now, once the bus has taken the frame, and again after each Wait
+// (ISO 15765-2 restarts N_Bs on FC Wait; from memory).
 func (c *Conn) awaitCTS(ctx context.Context, txID uint32) (FlowControl, error) {
+	s := &c.tx
+	timer := c.clock.After(c.cfg.NBs)
 	waits := 0
 	for {
+		s.mu.Lock()
+		state, fc, err, w := s.state, s.fc, s.err, s.waits
+		s.mu.Unlock()
+		switch state {
+		case txSending:
+			return fc, nil
+		case txDone:
+			return fc, err
+		}
+		if w != waits {
+			waits = w
+			timer = c.clock.After(c.cfg.NBs)
+		}
 		select {
-		case fc := <-c.fcCh:
-			switch fc.Status {
-			case ContinueToSend:
-				return fc, nil
-			case Wait:
-				waits++
-				if waits > c.cfg.MaxWaits {
-					return fc, fmt.Errorf("isotp: send on %X: %d FC Wait frames, limit %d: %w", txID, waits, c.cfg.MaxWaits, ErrWaitLimit)
-				}
-			case Overflow:
-				return fc, fmt.Errorf("isotp: send on %X: %w", txID, ErrOverflow)
-			default:
-				return fc, fmt.Errorf("isotp: send on %X: FS %d: %w", txID, fc.Status, ErrInvalidFS)
+		case <-s.wake:
+		case <-timer:
+			s.mu.Lock()
+			if s.state == txAwait { // else an FC came with the timer: it wins
+				s.state = txDone
+				s.err = fmt.Errorf("isotp: send on %X: no FC within N_Bs %v: %w", txID, c.cfg.NBs, ErrTimeout)
 			}
-		case <-c.clock.After(c.cfg.NBs):
-			return FlowControl{}, fmt.Errorf("isotp: send on %X: no FC within N_Bs %v: %w", txID, c.cfg.NBs, ErrTimeout)
+			s.mu.Unlock()
 		case <-ctx.Done():
 			return FlowControl{}, c.ctxErr(ctx)
 		}
@@ -455,8 +530,7 @@ func (c *Conn) engine(frames <-chan can.Frame, busErr <-chan error) {
 				if errors.Is(err, ErrIgnored) {
 					c.stats.ignored.Add(1)
 				} else {
-					c.stats.aborted.Add(1)
-					c.deliver(result{m: Message{ID: f.ID}, err: fmt.Errorf("isotp: receive from %X: %w", f.ID, err)})
+					c.receiveFailed(f.ID, err)
 				}
 			}
 			switch act {
@@ -488,21 +562,58 @@ func (c *Conn) engine(frames <-chan can.Frame, busErr <-chan error) {
 	}
 }
 
+// flowControl applies an FC from the peer to the send in progress: at once
+// and in arrival order, so that a burst of Waits and the CTS behind it all
+// count. An FC the sender is not waiting for is ignored and counted.
 func (c *Conn) flowControl(f can.Frame, fcTx uint32) {
 	fc, err := parseFlowControl(f.Data[:f.DLC])
 	if err != nil && !errors.Is(err, ErrInvalidFS) {
 		c.stats.ignored.Add(1)
 		return
 	}
-	if c.fcWant.Load() != int64(fcTx) {
-		c.stats.ignored.Add(1)
+	s := &c.tx
+	s.mu.Lock()
+	if s.state != txAwait || s.id != fcTx {
+		s.mu.Unlock()
+		c.stats.unexpectedFC.Add(1)
 		return
 	}
-	select {
-	case c.fcCh <- fc:
+	switch fc.Status {
+	case ContinueToSend:
+		s.state, s.fc = txSending, fc
+	case Wait:
+		s.waits++
+		if s.waits > c.cfg.MaxWaits {
+			s.state = txDone
+			s.err = fmt.Errorf("isotp: send on %X: %d FC Wait frames, limit %d: %w", fcTx, s.waits, c.cfg.MaxWaits, ErrWaitLimit)
+		}
+	case Overflow:
+		s.state, s.err = txDone, fmt.Errorf("isotp: send on %X: %w", fcTx, ErrOverflow)
 	default:
-		c.stats.ignored.Add(1)
+		s.state, s.err = txDone, fmt.Errorf("isotp: send on %X: FS %d: %w", fcTx, fc.Status, ErrInvalidFS)
 	}
+	s.mu.Unlock()
+	select {
+	case s.wake <- struct{}{}:
+	default: // a wake-up is already pending; the state holds the news
+	}
+}
+
+// receiveFailed reports and counts a reception that ended in err: each
+// error of a joined err (an FF too long that also interrupted a message)
+// is a result of its own.
+func (c *Conn) receiveFailed(id uint32, err error) {
+	if j, ok := err.(interface{ Unwrap() []error }); ok {
+		for _, e := range j.Unwrap() {
+			c.receiveFailed(id, e)
+		}
+		return
+	}
+	c.stats.aborted.Add(1)
+	if errors.Is(err, ErrInterrupted) {
+		c.stats.interrupted.Add(1)
+	}
+	c.deliver(result{m: Message{ID: id}, err: fmt.Errorf("isotp: receive from %X: %w", id, err)})
 }
 
 // deliver queues r for Receive, dropping the oldest result when full.

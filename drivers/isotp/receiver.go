@@ -1,6 +1,7 @@
 package isotp
 
 import (
+	"errors"
 	"fmt"
 
 	"github.com/plenum-engine/plenum/drivers/can"
@@ -73,7 +74,9 @@ func (r *Receiver) FlowControl() FlowControl { return r.fc }
 // Feed processes one frame received from this Receiver's sender. The
 // returned Action is valid even when err is not nil: an FF that is too long
 // yields ActionFlowControl (Overflow) with ErrTooLong, and an SF or FF that
-// interrupts a message yields its own action with ErrInterrupted. Errors
+// interrupts a message yields its own action with ErrInterrupted. An FF that
+// is too long and interrupts a message reports both: its error is an
+// errors.Join of the ErrInterrupted and the ErrTooLong errors. Errors
 // wrapping ErrIgnored leave the state unchanged; ErrWrongSN and
 // ErrShortFrame abort the message in progress.
 func (r *Receiver) Feed(f can.Frame) (Action, error) {
@@ -132,7 +135,12 @@ func (r *Receiver) firstFrame(id uint32, d []byte) (Action, error) {
 		r.busy = false
 		r.buf = r.buf[:0]
 		r.fc = FlowControl{Status: Overflow}
-		return ActionFlowControl, fmt.Errorf("isotp: FF %X: FF_DL %d exceeds %d: %w", id, size, r.cfg.MaxLength, ErrTooLong)
+		tooLong := fmt.Errorf("isotp: FF %X: FF_DL %d exceeds %d: %w", id, size, r.cfg.MaxLength, ErrTooLong)
+		if err != nil {
+			// Two outcomes: the message in progress is lost and the new one refused.
+			return ActionFlowControl, errors.Join(err, tooLong)
+		}
+		return ActionFlowControl, tooLong
 	}
 	r.busy = true
 	r.want = size

@@ -21,6 +21,7 @@ type step struct {
 	msg  []byte // on ActionComplete
 	fc   *FlowControl
 	busy bool
+	also error // a second error err must also wrap
 }
 
 func runSteps(t *testing.T, name string, cfg ReceiverConfig, steps []step) {
@@ -30,6 +31,9 @@ func runSteps(t *testing.T, name string, cfg ReceiverConfig, steps []step) {
 		act, err := r.Feed(s.f)
 		if act != s.act || (s.err == nil) != (err == nil) || (s.err != nil && !errors.Is(err, s.err)) {
 			t.Fatalf("%s step %d (%v): Feed = %d, %v; want %d, %v", name, i, s.f, act, err, s.act, s.err)
+		}
+		if s.also != nil && !errors.Is(err, s.also) {
+			t.Fatalf("%s step %d (%v): Feed error %v does not report %v", name, i, s.f, err, s.also)
 		}
 		if act == ActionComplete && !bytes.Equal(r.Message(), s.msg) {
 			t.Fatalf("%s step %d: message % X, want % X", name, i, r.Message(), s.msg)
@@ -107,6 +111,11 @@ func TestReceiverFrames(t *testing.T) {
 			{f: fr(0x10, 0x0A, 1, 2, 3, 4, 5, 6), act: ActionFlowControl, busy: true},
 			{f: fr(0x10, 0x08, 9, 9, 9, 9, 9, 9), act: ActionFlowControl, err: ErrInterrupted, busy: true},
 			{f: fr(0x21, 8, 7, 0xCC, 0xCC, 0xCC, 0xCC, 0xCC), act: ActionComplete, msg: []byte{9, 9, 9, 9, 9, 9, 8, 7}},
+		}},
+		{"too-long FF interrupts a message: both reported", ReceiverConfig{MaxLength: 100}, []step{
+			{f: fr(0x10, 0x0A, 1, 2, 3, 4, 5, 6), act: ActionFlowControl, busy: true},
+			{f: fr(0x10, 0x65, 1, 2, 3, 4, 5, 6), act: ActionFlowControl, err: ErrTooLong, also: ErrInterrupted, fc: &FlowControl{Status: Overflow}},
+			{f: fr(0x21, 7, 8, 9, 10, 0, 0, 0), err: ErrIgnored},
 		}},
 		{"remote frame ignored", ReceiverConfig{}, []step{{f: can.Frame{ID: 0x7E8, Remote: true, DLC: 8}, err: ErrIgnored}}},
 	}
