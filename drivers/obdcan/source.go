@@ -155,6 +155,7 @@ func (s *Source) Report() pipeline.HealthReport {
 	last := s.last.Load()
 	up := s.running.Load() && last != 0 && s.clk.Now().Sub(time.Unix(0, last)) < UpWindow
 	st := s.poller.Stats()
+	tp := s.tr.Stats()
 	return pipeline.HealthReport{Kind: "source", Name: s.name, Up: up, Counters: []pipeline.NamedCount{
 		{Name: "negative_responses", Value: st.NRCs},
 		{Name: "readings", Value: s.readings.Load()},
@@ -162,6 +163,12 @@ func (s *Source) Report() pipeline.HealthReport {
 		{Name: "requests", Value: st.Requests},
 		{Name: "responses", Value: st.Responses},
 		{Name: "timeouts", Value: st.Timeouts},
+		// The ISO-TP layer's: receptions aborted or interrupted, completed
+		// messages dropped, flow control frames ignored.
+		{Name: "isotp_aborted_receptions", Value: tp.Aborted},
+		{Name: "isotp_interrupted_receptions", Value: tp.Interrupted},
+		{Name: "isotp_dropped_messages", Value: tp.Dropped},
+		{Name: "isotp_unexpected_flow_controls", Value: tp.UnexpectedFC},
 	}}
 }
 

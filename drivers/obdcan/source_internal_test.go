@@ -73,6 +73,11 @@ func TestReportUpWindow(t *testing.T) {
 	if n, _ := counterOf(s.Report(), "readings"); n != 3 {
 		t.Errorf("readings %d, want 3", n)
 	}
+	for _, name := range []string{"isotp_aborted_receptions", "isotp_interrupted_receptions", "isotp_dropped_messages", "isotp_unexpected_flow_controls"} {
+		if _, ok := counterOf(s.Report(), name); !ok {
+			t.Errorf("the report lacks the ISO-TP counter %s", name)
+		}
+	}
 }
 
 func counterOf(r pipeline.HealthReport, name string) (uint64, bool) {
