@@ -65,7 +65,7 @@ func readSamples(files []string, derived bool) (Recording, error) {
 	var rec Recording
 	keyOf := map[SeriesKey]uint32{}
 	for _, f := range files {
-		b, err := readMaybeGzip(f)
+		b, err := ReadFile(f)
 		if err != nil {
 			return Recording{}, err
 		}
@@ -127,9 +127,9 @@ func readSamples(files []string, derived bool) (Recording, error) {
 	return rec, nil
 }
 
-// readMaybeGzip reads a file, gunzipping it when its name ends in .gz
+// ReadFile reads a recorded file, gunzipping it when its name ends in .gz
 // (archived runs).
-func readMaybeGzip(path string) ([]byte, error) {
+func ReadFile(path string) ([]byte, error) {
 	if !strings.HasSuffix(path, ".gz") {
 		return os.ReadFile(path)
 	}

@@ -3,7 +3,6 @@ package tsdbpush
 import (
 	"bufio"
 	"bytes"
-	"compress/gzip"
 	"context"
 	"encoding/json"
 	"errors"
@@ -497,7 +496,7 @@ func TestIntegrationVictoriaMetrics(t *testing.T) {
 				distinct[k]++
 			}
 		}
-		raw, err := readGzip(golden)
+		raw, err := record.ReadFile(golden)
 		if err != nil {
 			t.Fatal(err)
 		}
@@ -547,16 +546,3 @@ func TestIntegrationVictoriaMetrics(t *testing.T) {
 	t.Logf("VictoriaMetrics integration took %v", time.Since(start).Round(time.Millisecond))
 }
 
-// readGzip returns the decompressed content of a gzipped file.
-func readGzip(path string) ([]byte, error) {
-	f, err := os.Open(path)
-	if err != nil {
-		return nil, err
-	}
-	defer f.Close()
-	zr, err := gzip.NewReader(f)
-	if err != nil {
-		return nil, err
-	}
-	return io.ReadAll(zr)
-}
