@@ -545,4 +545,3 @@ func TestIntegrationVictoriaMetrics(t *testing.T) {
 	})
 	t.Logf("VictoriaMetrics integration took %v", time.Since(start).Round(time.Millisecond))
 }
-
