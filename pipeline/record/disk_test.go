@@ -307,7 +307,7 @@ func mountTmpfs(t *testing.T, size string) string {
 		t.Skipf("cannot mount a %s tmpfs to fill up (%v): needs root or CAP_SYS_ADMIN; the injected-disk tests cover the logic", size, err)
 	}
 	t.Cleanup(func() {
-		if err := syscall.Unmount(dir, 0); err != nil {
+		if err := syscall.Unmount(dir, syscall.MNT_DETACH); err != nil {
 			t.Errorf("unmount %s: %v", dir, err)
 		}
 	})
