@@ -1,8 +1,8 @@
 package runs
 
 import (
-	"context"
 	"bytes"
+	"context"
 	"encoding/json"
 	"log/slog"
 	"net/http/httptest"
