@@ -14,7 +14,7 @@
 //	plenum_event,kind=<kind>,name=<name>,run=<id>,vehicle=<v> <field>=<float>,…,duration_seconds=<float> <start ns>
 //
 // A disk that refuses writes (full, or failing) does not end the recording:
-// the recorder holds what it could not write (up to 16 MiB), retries with
+// the recorder holds what it could not write (Config.HoldBytes), retries with
 // backoff and resumes when the disk takes writes again. What it cannot hold
 // is counted as lost, and once writing works again the gap is written into
 // the run as a recording_gap event (start and end: the times of the first
@@ -63,7 +63,14 @@ type Config struct {
 	Create func(path string) (File, error)
 	// Now is the clock of the write retries; nil: time.Now.
 	Now func() time.Time
+	// HoldBytes bounds what is held in memory while the disk refuses
+	// writes; beyond it points are lost. 0: DefaultHoldBytes.
+	HoldBytes int
 }
+
+// DefaultHoldBytes is what a recorder holds while the disk refuses writes:
+// some two to three minutes of a whole car's channels.
+const DefaultHoldBytes = 16 << 20
 
 // File is what the recorder writes a run's data into; *os.File is one.
 type File interface {
@@ -177,6 +184,9 @@ func Open(cfg Config, reg *pipeline.Registry) (*Recorder, error) {
 	}
 	if cfg.RotateBytes <= 0 {
 		cfg.RotateBytes = 64 << 20
+	}
+	if cfg.HoldBytes <= 0 {
+		cfg.HoldBytes = DefaultHoldBytes
 	}
 	dir := filepath.Join(cfg.Dir, cfg.Run)
 	if err := os.MkdirAll(dir, 0o755); err != nil {
@@ -314,6 +324,9 @@ func (r *Recorder) WriteFailures() uint64 { return r.writeFails.Load() }
 // use.
 func (r *Recorder) Refusing() bool { return r.refusing.Load() }
 
+// HoldBytes returns how many bytes it holds at most while the disk refuses.
+func (r *Recorder) HoldBytes() int { return r.cfg.HoldBytes }
+
 // Unwritten returns how many bytes are encoded but not yet written.
 func (r *Recorder) Unwritten() int { return r.heldBytes + len(r.enc.Bytes()) }
 
@@ -326,7 +339,7 @@ func (r *Recorder) TakeResumed() []Gap {
 
 // full reports whether nothing more can be held while the disk refuses.
 func (r *Recorder) full() bool {
-	return r.f != nil && r.refusing.Load() && r.heldBytes+len(r.enc.Bytes()) >= maxUnwritten
+	return r.f != nil && r.refusing.Load() && r.heldBytes+len(r.enc.Bytes()) >= r.cfg.HoldBytes
 }
 
 // refuse counts a point that cannot be held while the disk refuses.
@@ -380,9 +393,6 @@ func (r *Recorder) Write(s pipeline.Sample) {
 		r.flush(false)
 	}
 }
-
-// maxUnwritten bounds what is held in memory while the disk refuses writes.
-const maxUnwritten = 16 << 20
 
 // flush hands the held blocks and the buffered lines to the kernel without
 // syncing them. While the disk refuses, it tries only when the retry is due

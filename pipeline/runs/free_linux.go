@@ -5,12 +5,12 @@ import (
 	"syscall"
 )
 
-// freeBytes returns the space of dir's filesystem that an unprivileged
-// writer may still use.
-func freeBytes(dir string) (uint64, error) {
+// diskSpace returns the space of dir's filesystem that an unprivileged
+// writer may still use, and its size.
+func diskSpace(dir string) (free, total uint64, err error) {
 	var st syscall.Statfs_t
 	if err := syscall.Statfs(dir, &st); err != nil {
-		return 0, fmt.Errorf("statfs %s: %w", dir, err)
+		return 0, 0, fmt.Errorf("statfs %s: %w", dir, err)
 	}
-	return st.Bavail * uint64(st.Bsize), nil
+	return st.Bavail * uint64(st.Bsize), st.Blocks * uint64(st.Bsize), nil
 }

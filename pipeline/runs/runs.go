@@ -10,6 +10,7 @@ import (
 	"errors"
 	"fmt"
 	"log/slog"
+	"os"
 	"sync"
 	"time"
 
@@ -82,9 +83,11 @@ type Deps struct {
 	// Create creates the runs' data files; nil: the recorder's default
 	// (files on disk). Tests inject a disk that refuses writes.
 	Create func(path string) (record.File, error)
-	// FreeBytes returns the free space of the filesystem holding dir, for
-	// the free-space guard; nil: statfs (on Linux; elsewhere no guard).
-	FreeBytes func(dir string) (uint64, error)
+	// DiskSpace returns the free space and the size of the filesystem
+	// holding dir, for the free-space guard and for what a run holds in
+	// memory while the disk refuses writes; nil: statfs (on Linux;
+	// elsewhere no guard).
+	DiskSpace func(dir string) (free, total uint64, err error)
 }
 
 // Controller owns the recorder subscription and the run being recorded.
@@ -101,7 +104,7 @@ type Controller struct {
 	log     *slog.Logger
 	now     func() time.Time
 	create  func(string) (record.File, error)
-	freeOf  func(string) (uint64, error)
+	space   func(string) (uint64, uint64, error)
 
 	mu      sync.Mutex // guards everything below
 	publish func([]byte)
@@ -141,12 +144,12 @@ type Controller struct {
 // being recorded until Start or StartUnlessManual.
 func New(cfg Config, d Deps) *Controller {
 	c := &Controller{cfg: cfg, reg: d.Registry, sub: d.Sub, store: d.Store, emit: d.Emit, publish: d.Publish,
-		forward: d.Forward, log: d.Log, now: d.Now, create: d.Create, freeOf: d.FreeBytes}
+		forward: d.Forward, log: d.Log, now: d.Now, create: d.Create, space: d.DiskSpace}
 	if c.cfg.MinFreeBytes == 0 {
 		c.cfg.MinFreeBytes = DefaultMinFreeBytes
 	}
-	if c.freeOf == nil {
-		c.freeOf = freeBytes
+	if c.space == nil {
+		c.space = diskSpace
 	}
 	if c.emit == nil {
 		c.emit = func(pipeline.Event) {}
@@ -197,9 +200,14 @@ func (c *Controller) start(req StartRequest, auto bool) (string, error) {
 	}
 	now := c.now()
 	id := now.UTC().Format("20060102T150405.000Z")
+	if err := os.MkdirAll(c.cfg.Dir, 0o755); err != nil {
+		return "", fmt.Errorf("opening run %s: %w", id, err)
+	}
+	_, total, err := c.space(c.cfg.Dir)
 	rec, err := record.Open(record.Config{Dir: c.cfg.Dir, Run: id, Vehicle: c.cfg.Vehicle, Label: req.Label, Notes: req.Notes,
 		SyncEvery: c.cfg.SyncEvery, RotateBytes: c.cfg.RotateBytes, ConfigYAML: c.cfg.ConfigYAML,
-		Conditions: c.conditions(req.Entered, now), Forward: c.forward, Create: c.create, Now: c.now}, c.reg)
+		Conditions: c.conditions(req.Entered, now), Forward: c.forward, Create: c.create, Now: c.now,
+		HoldBytes: holdBytes(total, err)}, c.reg)
 	if err != nil {
 		return "", fmt.Errorf("opening run %s: %w", id, err)
 	}
@@ -314,8 +322,8 @@ func (c *Controller) sync() {
 	case c.cur.Refusing():
 		if !c.refLog {
 			c.refLog = true
-			c.log.Error("the disk refuses writes to the run: holding up to 16 MiB and retrying; beyond that samples are lost",
-				"run", c.cur.ID(), "err", err)
+			c.log.Error("the disk refuses writes to the run: holding what it cannot write and retrying; beyond that samples are lost",
+				"run", c.cur.ID(), "hold_bytes", c.cur.HoldBytes(), "err", err)
 		}
 	case err != nil:
 		if c.syncErr == nil {
@@ -415,6 +423,16 @@ func (c *Controller) account() {
 	}
 }
 
+// holdBytes is what a run holds in memory while the disk refuses writes: a
+// quarter of the filesystem at most, so that freeing a quarter of it lets
+// the run resume, and no more than record.DefaultHoldBytes.
+func holdBytes(total uint64, err error) int {
+	if err != nil || total == 0 {
+		return record.DefaultHoldBytes
+	}
+	return int(min(record.DefaultHoldBytes, max(total/4, 64<<10)))
+}
+
 // checkFree is the free-space guard: it looks at the disk at most once a
 // second; c.mu is held.
 func (c *Controller) checkFree(now time.Time) {
@@ -422,7 +440,7 @@ func (c *Controller) checkFree(now time.Time) {
 		return
 	}
 	c.freeAt = now
-	free, err := c.freeOf(c.cfg.Dir)
+	free, _, err := c.space(c.cfg.Dir)
 	if err != nil {
 		if !c.freeErr {
 			c.freeErr = true

@@ -78,10 +78,10 @@ func newHarnessSized(t *testing.T, cfg Config, ring int) *harness {
 	h.sub = h.p.Subscribe("recorder", ring)
 	cfg.Dir, cfg.Vehicle = h.dir, "test-car"
 	h.c = New(cfg, Deps{Registry: reg, Sub: h.sub, Store: h.p.Store(), Log: slog.New(slog.NewTextHandler(&h.logs, nil)),
-		FreeBytes: func(string) (uint64, error) {
+		DiskSpace: func(string) (uint64, uint64, error) {
 			h.mu.Lock()
 			defer h.mu.Unlock()
-			return h.free, nil
+			return h.free, 1 << 41, nil
 		},
 		Emit: func(e pipeline.Event) {
 			h.mu.Lock()
