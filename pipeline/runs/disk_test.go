@@ -1,6 +1,7 @@
 package runs
 
 import (
+	"context"
 	"errors"
 	"path/filepath"
 	"strings"
@@ -336,5 +337,33 @@ func TestFreeSpaceGuard(t *testing.T) {
 				t.Fatalf("not cleared: %+v", w)
 			}
 		})
+	}
+}
+
+// TestRunReturnsDataLost: Run ends with an error when the run it closes at
+// the end lost samples, so that the daemon does not exit as if all went
+// well; a run that kept everything ends without one.
+func TestRunReturnsDataLost(t *testing.T) {
+	for _, lose := range []bool{false, true} {
+		h := newHarnessSized(t, Config{}, 8)
+		if _, err := h.c.Start(StartRequest{}); err != nil {
+			t.Fatal(err)
+		}
+		n := 5
+		if lose {
+			n = 20 // the queue of 8 drops 12 before Run drains it
+		}
+		for i := range n {
+			h.p.Process(pipeline.Sample{Channel: h.x, Time: time.Unix(1000, int64(i)), Value: 1})
+		}
+		ctx, cancel := context.WithCancel(context.Background())
+		cancel()
+		err := h.c.Run(ctx)
+		if lose != errors.Is(err, record.ErrDataLost) || (!lose && err != nil) {
+			t.Errorf("lose %v: Run returned %v", lose, err)
+		}
+		if lose && !strings.Contains(h.logs.String(), "samples_lost=12") {
+			t.Errorf("the loss was not logged:\n%s", h.logs.String())
+		}
 	}
 }

@@ -267,10 +267,11 @@ func (c *Controller) Current() string {
 	return c.cur.ID()
 }
 
-// Run records until ctx is done, then closes the current run. It syncs the
-// run at Config.SyncEvery and, with Config.AutoTrigger, starts and stops
-// runs on pulls.
-func (c *Controller) Run(ctx context.Context) {
+// Run records until ctx is done, then closes the current run and returns
+// what Stop returns for it (nil without one): an error when the run could
+// not be closed or lost data. It syncs the run at Config.SyncEvery and,
+// with Config.AutoTrigger, starts and stops runs on pulls.
+func (c *Controller) Run(ctx context.Context) error {
 	every := c.cfg.SyncEvery
 	if every == 0 {
 		every = 200 * time.Millisecond
@@ -298,8 +299,10 @@ func (c *Controller) Run(ctx context.Context) {
 		select {
 		case <-ctx.Done():
 			drain()
-			c.Stop() // logs what went wrong
-			return
+			if sum, err := c.Stop(); err != nil && sum.Run != "" { // logged by Stop
+				return err
+			}
+			return nil
 		case <-c.sub.C():
 			drain()
 		case <-tick.C:
