@@ -69,7 +69,7 @@ type Config struct {
 }
 
 // DefaultHoldBytes is what a recorder holds while the disk refuses writes:
-// some two to three minutes of a whole car's channels.
+// some 30 s of the demo's channels at 100 frames/s (0.5 MB/s).
 const DefaultHoldBytes = 16 << 20
 
 // File is what the recorder writes a run's data into; *os.File is one.

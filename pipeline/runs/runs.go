@@ -43,10 +43,11 @@ type Config struct {
 }
 
 // DefaultMinFreeBytes is the free space below which recorder_behind is
-// raised: 256 MiB, about 45 minutes of a whole car's channels (some 100 kB
-// of line protocol a second), time for a person to make room before the
-// disk refuses writes. A fixed size rather than a share of the disk: what
-// matters is how long the recording can go on, not how big the disk is.
+// raised: 256 MiB, some 8 minutes of the demo's channels at 100 frames/s
+// (0.5 MB of line protocol a second, measured), time for a person to end
+// the run or make room before the disk refuses writes. A fixed size rather
+// than a share of the disk: what matters is how long the recording can go
+// on, not how big the disk is.
 const DefaultMinFreeBytes = 256 << 20
 
 // freeCheckEvery is how often the free-space guard looks at the disk.

@@ -45,7 +45,7 @@ type Record struct {
 	RotateMB  int      `yaml:"rotate_mb"`  // default 64
 	// MinFreeMB is the free-space guard: recorder_behind is raised while
 	// the filesystem of dir has less free space than this (default 256,
-	// some 45 minutes of recording), before the disk is full.
+	// some 8 minutes of the demo's channels), before the disk is full.
 	MinFreeMB int `yaml:"min_free_mb"`
 	// Manual: runs start and stop only on command (default: one run per
 	// daemon lifetime, started at once).
