@@ -204,11 +204,11 @@ func (c *Controller) start(req StartRequest, auto bool) (string, error) {
 	if err := os.MkdirAll(c.cfg.Dir, 0o755); err != nil {
 		return "", fmt.Errorf("opening run %s: %w", id, err)
 	}
-	_, total, err := c.space(c.cfg.Dir)
+	_, total, serr := c.space(c.cfg.Dir)
 	rec, err := record.Open(record.Config{Dir: c.cfg.Dir, Run: id, Vehicle: c.cfg.Vehicle, Label: req.Label, Notes: req.Notes,
 		SyncEvery: c.cfg.SyncEvery, RotateBytes: c.cfg.RotateBytes, ConfigYAML: c.cfg.ConfigYAML,
 		Conditions: c.conditions(req.Entered, now), Forward: c.forward, Create: c.create, Now: c.now,
-		HoldBytes: holdBytes(total, err)}, c.reg)
+		HoldBytes: holdBytes(total, serr)}, c.reg)
 	if err != nil {
 		return "", fmt.Errorf("opening run %s: %w", id, err)
 	}
