@@ -42,8 +42,15 @@ func (s *Subscription) Name() string { return s.name }
 // C is signalled when samples or events are waiting.
 func (s *Subscription) C() <-chan struct{} { return s.notify }
 
-// Dropped returns how many samples were dropped because the queue was full.
+// Dropped returns how many samples were dropped because the queue was full,
+// and those the consumer counted as lost with CountLost.
 func (s *Subscription) Dropped() uint64 { return s.dropped.Load() }
+
+// CountLost counts n samples the consumer took but could not keep (a
+// recorder whose disk refused them), so that Dropped, and with it
+// plenum_consumer_dropped_samples_total, counts every sample the consumer
+// lost.
+func (s *Subscription) CountLost(n uint64) { s.dropped.Add(n) }
 
 // DroppedEvents returns how many events were dropped because the queue was full.
 func (s *Subscription) DroppedEvents() uint64 { return s.evDrop.Load() }

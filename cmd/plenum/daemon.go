@@ -234,7 +234,7 @@ func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *s
 		st = append(st, stage{{"push", pusher.Run}})
 	}
 	if rr != nil {
-		st = append(st, stage{{"recorder", func(ctx context.Context) error { rr.Run(ctx); return nil }}})
+		st = append(st, stage{{"recorder", rr.Run}})
 	}
 	st = append(st, stage{{"pipeline", p.Run}})
 	var drivers stage

@@ -27,6 +27,7 @@ func runsConfig(cfg *config.Config) (runs.Config, error) {
 		Vehicle:      cfg.Vehicle,
 		SyncEvery:    time.Duration(cfg.Record.SyncEvery),
 		RotateBytes:  int64(cfg.Record.RotateMB) << 20,
+		MinFreeBytes: int64(cfg.Record.MinFreeMB) << 20,
 		ConfigYAML:   cfg.Raw,
 		Manual:       cfg.Record.Manual || cfg.Record.AutoTrigger,
 		AutoTrigger:  cfg.Record.AutoTrigger,

@@ -12,6 +12,14 @@
 //
 //	plenum,channel=<name>,run=<id>,source=<source>,vehicle=<v> value=<float>,quality="ok" <ns>
 //	plenum_event,kind=<kind>,name=<name>,run=<id>,vehicle=<v> <field>=<float>,…,duration_seconds=<float> <start ns>
+//
+// A disk that refuses writes (full, or failing) does not end the recording:
+// the recorder holds what it could not write (Config.HoldBytes), retries with
+// backoff and resumes when the disk takes writes again. What it cannot hold
+// is counted as lost, and once writing works again the gap is written into
+// the run as a recording_gap event (start and end: the times of the first
+// and last point lost; fields lost_samples, lost_events). A data file only
+// ever holds whole lines: a write the disk took in part is cut back.
 package record
 
 import (
@@ -50,7 +58,39 @@ type Config struct {
 	// written to the run's file, e.g. to push them to a time-series
 	// database. It must copy and must not block.
 	Forward Forwarder
+	// Create creates a data file of the run; nil: os.OpenFile (append-only,
+	// never an existing file). Tests inject a disk that refuses writes.
+	Create func(path string) (File, error)
+	// Now is the clock of the write retries; nil: time.Now.
+	Now func() time.Time
+	// HoldBytes bounds what is held in memory while the disk refuses
+	// writes; beyond it points are lost. 0: DefaultHoldBytes.
+	HoldBytes int
 }
+
+// DefaultHoldBytes is what a recorder holds while the disk refuses writes:
+// some 30 s of the demo's channels at 100 frames/s (0.5 MB/s).
+const DefaultHoldBytes = 16 << 20
+
+// File is what the recorder writes a run's data into; *os.File is one.
+type File interface {
+	Write(b []byte) (int, error)
+	// Truncate cuts the file back to size bytes: a write the disk took in
+	// part is undone so that the file only ever holds whole lines.
+	Truncate(size int64) error
+	Sync() error
+	Close() error
+}
+
+// ErrDataLost is wrapped by the error Close returns when points of the run
+// never reached the disk.
+var ErrDataLost = errors.New("record: data lost")
+
+// Retry backoff while the disk refuses writes.
+const (
+	firstRetry = 100 * time.Millisecond
+	maxRetry   = 2 * time.Second
+)
 
 // Forwarder takes whole lines of line protocol. Append copies them and
 // returns at once; an error means they were not taken.
@@ -77,19 +117,57 @@ type Recorder struct {
 	dir    string
 	chans  []pipeline.Channel
 	reg    *pipeline.Registry
-	f      *os.File
+	f      File
 	fileNo int
-	size   int64
+	size   int64 // bytes of whole lines in the current file
 	enc    lineprotocol.Encoder
 	points atomic.Uint64
 	failed atomic.Uint64
-	lost   atomic.Uint64 // encoded but dropped because the disk refused them
-	prefix [][]byte      // escaped series key per channel
+	prefix [][]byte // escaped series key per channel
 	sum    *summarizer
 	roles  []role
 	qtext  []string // ,quality="ok" and so on, with the space before the time
-	werr   error    // a write that failed between syncs; Sync returns it
 	fwdErr atomic.Uint64
+
+	// What is encoded but not yet written: the samples and events in enc,
+	// and the blocks the disk refused, oldest first.
+	encSamples, encEvents uint64
+	held                  []block
+	heldBytes             int
+	kept                  summarizer // the summary of what reached the disk
+
+	written     atomic.Uint64 // points that reached the run's files
+	lostSamples atomic.Uint64 // samples that never reached the disk
+	lostEvents  atomic.Uint64
+	queueLost   atomic.Uint64 // part of lostSamples: dropped before the recorder (CountDropped)
+	writeFails  atomic.Uint64 // writes and syncs the disk refused
+	gaps        int
+
+	// The outage in progress: the disk refuses writes.
+	refusing atomic.Bool
+	werr     error // the last refusal
+	retryAt  time.Time
+	backoff  time.Duration
+	gap      Gap // what this outage lost so far
+	resumed  []Gap
+}
+
+// block is a run of whole lines the disk refused, held for a retry, with
+// the summary as it stands once the block is on disk.
+type block struct {
+	b               []byte
+	samples, events uint64
+	sum             summarizer
+}
+
+// Gap is one outage of the disk: from the first refused write (Since) to
+// the first write that worked again (Until), by the recorder's clock, and
+// the points it lost, whose times run from Start to End (zero when nothing
+// was lost).
+type Gap struct {
+	Since, Until    time.Time
+	Start, End      time.Time
+	Samples, Events uint64
 }
 
 // chunkBytes is how much Write buffers before handing it to the kernel (no
@@ -106,6 +184,9 @@ func Open(cfg Config, reg *pipeline.Registry) (*Recorder, error) {
 	}
 	if cfg.RotateBytes <= 0 {
 		cfg.RotateBytes = 64 << 20
+	}
+	if cfg.HoldBytes <= 0 {
+		cfg.HoldBytes = DefaultHoldBytes
 	}
 	dir := filepath.Join(cfg.Dir, cfg.Run)
 	if err := os.MkdirAll(dir, 0o755); err != nil {
@@ -130,6 +211,14 @@ func Open(cfg Config, reg *pipeline.Registry) (*Recorder, error) {
 	}
 	r := newRecorder(cfg, reg)
 	r.dir = dir
+	if r.cfg.Now == nil {
+		r.cfg.Now = time.Now
+	}
+	if r.cfg.Create == nil {
+		r.cfg.Create = func(path string) (File, error) {
+			return os.OpenFile(path, os.O_CREATE|os.O_EXCL|os.O_WRONLY|os.O_APPEND, 0o644)
+		}
+	}
 	if err := r.rotate(); err != nil {
 		return nil, err
 	}
@@ -152,6 +241,7 @@ func (r *Recorder) TakeBytes() []byte {
 
 func newRecorder(cfg Config, reg *pipeline.Registry) *Recorder {
 	r := &Recorder{cfg: cfg, reg: reg, chans: reg.Channels(), sum: newSummarizer(cfg.Run, cfg.Vehicle)}
+	r.kept = *r.sum
 	for q := pipeline.OK; q <= pipeline.SensorFault; q++ {
 		r.qtext = append(r.qtext, `,quality="`+q.String()+`" `)
 	}
@@ -176,19 +266,18 @@ func writeSynced(path string, b []byte) error {
 	return f.Close()
 }
 
+// rotate starts the next data file. The current one (synced by the caller)
+// stays in use when the next cannot be created.
 func (r *Recorder) rotate() error {
-	if r.f != nil {
-		if err := r.f.Sync(); err != nil {
-			return fmt.Errorf("record: sync: %w", err)
-		}
-		r.f.Close()
-	}
-	r.fileNo++
-	name := filepath.Join(r.dir, fmt.Sprintf("%04d.lp", r.fileNo))
-	f, err := os.OpenFile(name, os.O_CREATE|os.O_EXCL|os.O_WRONLY|os.O_APPEND, 0o644)
+	name := filepath.Join(r.dir, fmt.Sprintf("%04d.lp", r.fileNo+1))
+	f, err := r.cfg.Create(name)
 	if err != nil {
 		return fmt.Errorf("record: %w", err)
 	}
+	if r.f != nil {
+		r.f.Close()
+	}
+	r.fileNo++
 	r.f, r.size = f, 0
 	return nil
 }
@@ -196,21 +285,88 @@ func (r *Recorder) rotate() error {
 // Dir is the run's directory.
 func (r *Recorder) Dir() string { return r.dir }
 
-// Points returns how many points were encoded; Failed how many were refused
-// by the encoder (NaN values are never written).
+// Points returns how many points (samples and events) were encoded for the
+// run's files; Written how many of them reached the files.
 func (r *Recorder) Points() uint64 { return r.points.Load() }
+
+// Written returns how many points reached the run's files (handed to the
+// kernel).
+func (r *Recorder) Written() uint64 { return r.written.Load() }
 
 // Failed returns how many points the encoder refused.
 func (r *Recorder) Failed() uint64 { return r.failed.Load() }
 
-// Lost returns how many encoded points were dropped because the disk kept
-// refusing writes.
-func (r *Recorder) Lost() uint64 { return r.lost.Load() }
+// Lost returns how many samples of the run never reached the disk: refused
+// while the disk refused writes and nothing more could be held, held but
+// never written by the close, or counted by CountDropped.
+func (r *Recorder) Lost() uint64 { return r.lostSamples.Load() }
+
+// LostEvents returns how many events of the run never reached the disk.
+func (r *Recorder) LostEvents() uint64 { return r.lostEvents.Load() }
+
+// DiskLost returns the part of Lost the disk refused (Lost without what
+// CountDropped counted).
+func (r *Recorder) DiskLost() uint64 { return r.lostSamples.Load() - r.queueLost.Load() }
+
+// CountDropped counts n samples of the run that were dropped before they
+// reached the recorder (its queue was full): they are part of Lost and of
+// the summary's samples_lost.
+func (r *Recorder) CountDropped(n uint64) {
+	r.queueLost.Add(n)
+	r.lostSamples.Add(n)
+}
+
+// WriteFailures returns how many writes and syncs the disk refused.
+func (r *Recorder) WriteFailures() uint64 { return r.writeFails.Load() }
+
+// Refusing reports whether the disk refuses writes now: from the first
+// refused write until a write and a sync work again. Safe for concurrent
+// use.
+func (r *Recorder) Refusing() bool { return r.refusing.Load() }
+
+// HoldBytes returns how many bytes it holds at most while the disk refuses.
+func (r *Recorder) HoldBytes() int { return r.cfg.HoldBytes }
+
+// Unwritten returns how many bytes are encoded but not yet written.
+func (r *Recorder) Unwritten() int { return r.heldBytes + len(r.enc.Bytes()) }
+
+// TakeResumed returns the outages that ended since the last call.
+func (r *Recorder) TakeResumed() []Gap {
+	g := r.resumed
+	r.resumed = nil
+	return g
+}
+
+// full reports whether nothing more can be held while the disk refuses.
+func (r *Recorder) full() bool {
+	return r.f != nil && r.refusing.Load() && r.heldBytes+len(r.enc.Bytes()) >= r.cfg.HoldBytes
+}
+
+// refuse counts a point that cannot be held while the disk refuses.
+func (r *Recorder) refuse(t time.Time, sample bool) {
+	if sample {
+		r.lostSamples.Add(1)
+		r.gap.Samples++
+	} else {
+		r.lostEvents.Add(1)
+		r.gap.Events++
+	}
+	if r.gap.Start.IsZero() || t.Before(r.gap.Start) {
+		r.gap.Start = t
+	}
+	if t.After(r.gap.End) {
+		r.gap.End = t
+	}
+}
 
 // Write encodes one sample. The escaped series key of each channel
 // (measurement and tags) is built once with the line-protocol encoder; the
 // fields and time are appended to it the way the encoder writes them.
 func (r *Recorder) Write(s pipeline.Sample) {
+	if r.full() {
+		r.refuse(s.Time, true)
+		return
+	}
 	if int(s.Channel) >= len(r.prefix) {
 		r.chans = r.reg.Channels()
 		if int(s.Channel) >= len(r.chans) {
@@ -232,37 +388,112 @@ func (r *Recorder) Write(s pipeline.Sample) {
 	b = append(b, '\n')
 	r.enc.SetBuffer(b)
 	r.points.Add(1)
+	r.encSamples++
 	if len(b) >= chunkBytes && r.f != nil {
-		r.flush()
-		if r.werr != nil && len(r.enc.Bytes()) >= maxUnwritten {
-			// The disk refuses: keep memory bounded and count what is lost.
-			r.lost.Add(uint64(bytes.Count(r.enc.Bytes(), []byte{'\n'})))
-			r.enc.Reset()
-		}
+		r.flush(false)
 	}
 }
 
-// maxUnwritten bounds what is held in memory while the disk refuses writes.
-const maxUnwritten = 16 << 20
+// flush hands the held blocks and the buffered lines to the kernel without
+// syncing them. While the disk refuses, it tries only when the retry is due
+// (or when now is set), and holds a full buffer as a block.
+func (r *Recorder) flush(now bool) {
+	if r.f == nil {
+		return
+	}
+	if r.refusing.Load() && !now && r.cfg.Now().Before(r.retryAt) {
+		r.hold(chunkBytes)
+		return
+	}
+	for len(r.held) > 0 {
+		if !r.writeBlock(&r.held[0]) {
+			r.hold(chunkBytes)
+			return
+		}
+		r.heldBytes -= len(r.held[0].b)
+		r.held[0] = block{}
+		r.held = r.held[1:]
+	}
+	if len(r.enc.Bytes()) == 0 {
+		return
+	}
+	b := block{b: r.enc.Bytes(), samples: r.encSamples, events: r.encEvents, sum: *r.sum}
+	if r.writeBlock(&b) {
+		r.enc.Reset()
+		r.encSamples, r.encEvents = 0, 0
+		return
+	}
+	r.hold(0)
+}
 
-// flush hands the buffered lines to the kernel without syncing them.
-func (r *Recorder) flush() {
+// hold moves the buffered lines into a held block once they are at least
+// atLeast bytes long.
+func (r *Recorder) hold(atLeast int) {
 	b := r.enc.Bytes()
-	if len(b) == 0 || r.werr != nil {
+	if len(b) == 0 || len(b) < atLeast {
 		return
 	}
-	n, err := r.f.Write(b)
-	r.size += int64(n)
+	r.held = append(r.held, block{b: b, samples: r.encSamples, events: r.encEvents, sum: *r.sum})
+	r.heldBytes += len(b)
+	r.enc.SetBuffer(nil) // the block owns the bytes now
+	r.encSamples, r.encEvents = 0, 0
+}
+
+// writeBlock writes one block; a write the disk refuses, even in part, is
+// cut back and starts (or continues) an outage.
+func (r *Recorder) writeBlock(b *block) bool {
+	n, err := r.f.Write(b.b)
 	if err != nil {
-		r.werr = fmt.Errorf("record: write: %w", err)
-		return
+		if n > 0 {
+			if terr := r.f.Truncate(r.size); terr != nil {
+				err = errors.Join(err, fmt.Errorf("cutting back a part-written block: %w", terr))
+			}
+		}
+		r.fail(fmt.Errorf("record: write: %w", err))
+		return false
 	}
+	r.size += int64(n)
+	r.written.Add(b.samples + b.events)
+	r.kept = b.sum
 	if r.cfg.Forward != nil {
-		if err := r.cfg.Forward.Append(b); err != nil {
+		if err := r.cfg.Forward.Append(b.b); err != nil {
 			r.fwdErr.Add(1)
 		}
 	}
-	r.enc.Reset()
+	return true
+}
+
+// fail starts or continues an outage and schedules the next retry.
+func (r *Recorder) fail(err error) {
+	now := r.cfg.Now()
+	r.writeFails.Add(1)
+	r.werr = err
+	if !r.refusing.Load() {
+		r.refusing.Store(true)
+		r.backoff = firstRetry
+		r.gap = Gap{Since: now}
+	} else {
+		r.backoff = min(2*r.backoff, maxRetry)
+	}
+	r.retryAt = now.Add(r.backoff)
+}
+
+// resume ends the outage: the gap, when it lost anything, is written into
+// the run as a recording_gap event.
+func (r *Recorder) resume() {
+	r.refusing.Store(false)
+	r.werr = nil
+	g := r.gap
+	g.Until = r.cfg.Now()
+	r.gap = Gap{}
+	r.resumed = append(r.resumed, g)
+	if g.Samples+g.Events == 0 {
+		return
+	}
+	r.gaps++
+	r.WriteEvent(pipeline.Event{Kind: "recording_gap", Name: "disk", Start: g.Start, End: g.End,
+		Fields: map[string]float64{"lost_samples": float64(g.Samples), "lost_events": float64(g.Events),
+			"refused_seconds": g.Until.Sub(g.Since).Seconds()}})
 }
 
 // ForwardFailures returns how many blocks of lines Config.Forward refused.
@@ -294,6 +525,10 @@ func (r *Recorder) buildPrefixes() {
 
 // WriteEvent encodes one event.
 func (r *Recorder) WriteEvent(e pipeline.Event) {
+	if r.full() {
+		r.refuse(e.Start, false)
+		return
+	}
 	r.sum.event(e)
 	r.enc.StartLine("plenum_event")
 	r.enc.AddTag("kind", e.Kind)
@@ -328,17 +563,31 @@ func (r *Recorder) check() {
 		return
 	}
 	r.points.Add(1)
+	r.encEvents++
 }
 
 // Sync writes the buffered points and fsyncs the file, rotating when it has
-// grown past the configured size.
+// grown past the configured size. While the disk refuses writes it returns
+// the last refusal, retrying only when the retry is due; the first sync that
+// works again ends the outage. A file that cannot be rotated stays in use.
 func (r *Recorder) Sync() error {
-	r.flush()
-	if err := r.werr; err != nil {
-		return err
+	return r.sync(false)
+}
+
+func (r *Recorder) sync(now bool) error {
+	if r.f == nil {
+		return nil
+	}
+	r.flush(now)
+	if r.refusing.Load() && (len(r.held) > 0 || (!now && r.cfg.Now().Before(r.retryAt))) {
+		return r.werr
 	}
 	if err := r.f.Sync(); err != nil {
-		return fmt.Errorf("record: sync: %w", err)
+		r.fail(fmt.Errorf("record: sync: %w", err))
+		return r.werr
+	}
+	if r.refusing.Load() {
+		r.resume()
 	}
 	if r.size >= r.cfg.RotateBytes {
 		return r.rotate()
@@ -349,22 +598,55 @@ func (r *Recorder) Sync() error {
 // ID returns the run id.
 func (r *Recorder) ID() string { return r.cfg.Run }
 
-// Summary returns the run's summary so far.
-func (r *Recorder) Summary() Summary { return r.sum.summary() }
+// Summary returns the run's summary so far: of what reached the disk, for a
+// recorder with files (with the samples and events lost), of everything
+// encoded for one without (NewEncoder).
+func (r *Recorder) Summary() Summary {
+	if r.f == nil {
+		return r.sum.summary()
+	}
+	s := r.kept.summary()
+	s.SamplesLost = r.lostSamples.Load()
+	s.EventsLost = r.lostEvents.Load()
+	s.Gaps = r.gaps
+	return s
+}
 
-// Close syncs, writes summary.json beside the data and marks the run as
-// ended normally.
+// Close writes what it holds (retrying once at once), syncs, writes
+// summary.json beside the data and marks the run as ended normally. What
+// the disk still refuses is lost; the error then wraps ErrDataLost, as it
+// does whenever points of the run were lost. A run whose summary or end
+// marker cannot be written is left for Recover.
 func (r *Recorder) Close() error {
-	if err := r.Sync(); err != nil {
-		return err
+	var errs []error
+	if err := r.sync(true); err != nil {
+		errs = append(errs, err)
+	}
+	if r.refusing.Load() {
+		// Still refused: what is held is lost.
+		for _, b := range r.held {
+			r.lostSamples.Add(b.samples)
+			r.lostEvents.Add(b.events)
+		}
+		r.lostSamples.Add(r.encSamples)
+		r.lostEvents.Add(r.encEvents)
+		r.held, r.heldBytes, r.encSamples, r.encEvents = nil, 0, 0, 0
+		r.enc.Reset()
 	}
 	if err := r.f.Close(); err != nil {
-		return fmt.Errorf("record: %w", err)
+		errs = append(errs, fmt.Errorf("record: %w", err))
 	}
-	if err := writeSynced(filepath.Join(r.dir, "summary.json"), r.sum.summary().JSON()); err != nil {
-		return err
+	sum := r.Summary()
+	if err := writeSynced(filepath.Join(r.dir, "summary.json"), sum.JSON()); err != nil {
+		errs = append(errs, err)
+	} else if err := writeSynced(filepath.Join(r.dir, "ended"), []byte(time.Now().UTC().Format(time.RFC3339Nano)+"\n")); err != nil {
+		errs = append(errs, err)
 	}
-	return writeSynced(filepath.Join(r.dir, "ended"), []byte(time.Now().UTC().Format(time.RFC3339Nano)+"\n"))
+	if sum.SamplesLost > 0 || sum.EventsLost > 0 {
+		errs = append(errs, fmt.Errorf("%w: run %s: %d samples and %d events lost, %d samples written",
+			ErrDataLost, r.cfg.Run, sum.SamplesLost, sum.EventsLost, sum.Samples))
+	}
+	return errors.Join(errs...)
 }
 
 // Recovered says what Recover did to one run.
@@ -464,9 +746,10 @@ func lastNewline(f io.ReaderAt, size int64) (int64, error) {
 }
 
 // Run records everything sub delivers until ctx is done, syncing every
-// SyncEvery, then closes the run. A failing disk is reported through the
-// returned error; samples are never blocked on it (the subscription drops
-// and counts what the recorder cannot take).
+// SyncEvery, then closes the run and returns what Close returns. A disk
+// that refuses writes does not end it (see the package doc); samples are
+// never blocked on it (the subscription drops and counts what the recorder
+// cannot take).
 func (r *Recorder) Run(ctx context.Context, sub *pipeline.Subscription) error {
 	tick := time.NewTicker(r.cfg.SyncEvery)
 	defer tick.Stop()
@@ -489,9 +772,7 @@ func (r *Recorder) Run(ctx context.Context, sub *pipeline.Subscription) error {
 		case <-sub.C():
 			drain()
 		case <-tick.C:
-			if err := r.Sync(); err != nil {
-				return err
-			}
+			r.Sync() // a refusal is retried; Refusing and Lost tell
 		}
 	}
 }

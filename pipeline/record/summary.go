@@ -8,24 +8,32 @@ import (
 	"github.com/plenum-engine/plenum/pipeline"
 )
 
-// Summary is what a run comes to, computed from every sample it recorded.
-// Peaks are in canonical units; NaN-free (absent values are omitted).
+// Summary is what a run comes to, computed from every sample that reached
+// the run's files. Peaks are in canonical units; NaN-free (absent values
+// are omitted).
 type Summary struct {
-	Run                 string    `json:"run"`
-	Vehicle             string    `json:"vehicle"`
-	Start               time.Time `json:"start"`
-	End                 time.Time `json:"end"`
-	Samples             uint64    `json:"samples"`
-	PeakCorrectedPowerW *float64  `json:"peak_corrected_power_watts,omitempty"`
-	PeakPowerRPM        *float64  `json:"peak_power_engine_speed_rpm,omitempty"`
-	PeakTorqueNm        *float64  `json:"peak_torque_newton_meters,omitempty"`
-	PeakTorqueRPM       *float64  `json:"peak_torque_engine_speed_rpm,omitempty"`
-	PeakBoostPa         *float64  `json:"peak_boost_pascals,omitempty"`
-	MinLambdaUnderLoad  *float64  `json:"min_lambda_under_load,omitempty"`
-	MaxLambdaUnderLoad  *float64  `json:"max_lambda_under_load,omitempty"`
-	MaxIntakeAirC       *float64  `json:"max_intake_air_temp_celsius,omitempty"`
-	LagEvents           int       `json:"turbo_lag_events"`
-	WarningsRaised      int       `json:"warnings_raised"`
+	Run     string    `json:"run"`
+	Vehicle string    `json:"vehicle"`
+	Start   time.Time `json:"start"`
+	End     time.Time `json:"end"`
+	Samples uint64    `json:"samples"` // samples written
+	// SamplesLost counts the samples of the run that never reached its
+	// files: dropped by a full queue, or refused by the disk; EventsLost
+	// the events; Gaps the recording_gap events written into the run.
+	SamplesLost uint64 `json:"samples_lost"`
+	EventsLost  uint64 `json:"events_lost,omitempty"`
+	Gaps        int    `json:"recording_gaps,omitempty"`
+
+	PeakCorrectedPowerW *float64 `json:"peak_corrected_power_watts,omitempty"`
+	PeakPowerRPM        *float64 `json:"peak_power_engine_speed_rpm,omitempty"`
+	PeakTorqueNm        *float64 `json:"peak_torque_newton_meters,omitempty"`
+	PeakTorqueRPM       *float64 `json:"peak_torque_engine_speed_rpm,omitempty"`
+	PeakBoostPa         *float64 `json:"peak_boost_pascals,omitempty"`
+	MinLambdaUnderLoad  *float64 `json:"min_lambda_under_load,omitempty"`
+	MaxLambdaUnderLoad  *float64 `json:"max_lambda_under_load,omitempty"`
+	MaxIntakeAirC       *float64 `json:"max_intake_air_temp_celsius,omitempty"`
+	LagEvents           int      `json:"turbo_lag_events"`
+	WarningsRaised      int      `json:"warnings_raised"`
 	// Conditions are the means of the ambient channels over the run, where
 	// the car had those sensors.
 	Conditions *Conditions `json:"conditions,omitempty"`

@@ -10,6 +10,7 @@ import (
 	"errors"
 	"fmt"
 	"log/slog"
+	"os"
 	"sync"
 	"time"
 
@@ -35,14 +36,33 @@ type Config struct {
 	// token) and guards the MQTT commands (as their token key). Empty: the
 	// HTTP commands are off and MQTT commands need no token.
 	ControlToken string
+	// MinFreeBytes is the free-space guard: recorder_behind is raised while
+	// the filesystem of Dir has less free space than this, before the disk
+	// is full. 0: DefaultMinFreeBytes.
+	MinFreeBytes int64
 }
+
+// DefaultMinFreeBytes is the free space below which recorder_behind is
+// raised: 256 MiB, some 8 minutes of the demo's channels at 100 frames/s
+// (0.5 MB of line protocol a second, measured), time for a person to end
+// the run or make room before the disk refuses writes. A fixed size rather
+// than a share of the disk: what matters is how long the recording can go
+// on, not how big the disk is.
+const DefaultMinFreeBytes = 256 << 20
+
+// freeCheckEvery is how often the free-space guard looks at the disk.
+const freeCheckEvery = time.Second
 
 // Subscription is the recorder's queue of samples and events: a ring that
 // drops and counts rather than block the pipeline.
 type Subscription interface {
 	C() <-chan struct{}
 	Drain(dst []pipeline.Sample, evs []pipeline.Event) ([]pipeline.Sample, []pipeline.Event)
+	// Dropped counts the samples the queue dropped and those counted
+	// with CountLost.
 	Dropped() uint64
+	// CountLost counts samples taken from the queue that the disk refused.
+	CountLost(n uint64)
 }
 
 // Latest gives the latest value of a channel.
@@ -61,6 +81,14 @@ type Deps struct {
 	Forward  record.Forwarder     // the push backlog; nil: none
 	Log      *slog.Logger         // nil: discarded
 	Now      func() time.Time     // the clock; nil: time.Now
+	// Create creates the runs' data files; nil: the recorder's default
+	// (files on disk). Tests inject a disk that refuses writes.
+	Create func(path string) (record.File, error)
+	// DiskSpace returns the free space and the size of the filesystem
+	// holding dir, for the free-space guard and for what a run holds in
+	// memory while the disk refuses writes; nil: statfs (on Linux;
+	// elsewhere no guard).
+	DiskSpace func(dir string) (free, total uint64, err error)
 }
 
 // Controller owns the recorder subscription and the run being recorded.
@@ -76,27 +104,54 @@ type Controller struct {
 	forward record.Forwarder
 	log     *slog.Logger
 	now     func() time.Time
+	create  func(string) (record.File, error)
+	space   func(string) (uint64, uint64, error)
 
 	mu      sync.Mutex // guards everything below
 	publish func([]byte)
 	cur     *record.Recorder
 	auto    bool  // the current run was started by the pull trigger
-	syncErr error // the first sync failure, logged once
+	syncErr error // the first sync failure of a burst, logged once
+	refLog  bool  // the current outage of the disk was logged
 
 	// What the recorder failed to keep: samples its subscription dropped
-	// and points the disk refused. A rise raises recorder_behind.
-	lostClosed    uint64 // Lost() of runs already closed
+	// and samples the disk refused, which are counted back into the
+	// subscription (CountLost) so that its Dropped counts both.
+	fedBack       uint64 // samples counted back into the subscription
+	queueSeen     uint64 // samples the queue dropped, accounted so far
+	diskFed       uint64 // DiskLost() of the current run counted back
+	diskClosed    uint64 // DiskLost() of runs already closed
+	evLostClosed  uint64 // LostEvents() of runs already closed
+	failsClosed   uint64 // WriteFailures() of runs already closed
 	writtenClosed uint64 // Points() of runs already closed
-	lossSeen      uint64
-	lossRaised    bool
-	lossSince     time.Time
+
+	// recorder_behind: raised while samples are being lost, the disk
+	// refuses writes or free space is short; cleared 5 s after none is.
+	lossSeen   uint64
+	lossRaised bool
+	lossCause  string
+	lossAt     uint64 // Dropped() when it was raised
+	lossSince  time.Time
+
+	// The free-space guard.
+	freeAt  time.Time // last look
+	free    uint64
+	freeOK  bool // free is known
+	lowFree bool
+	freeErr bool // a failure to read it was logged
 }
 
 // New returns a controller recording from d.Sub into cfg.Dir. No run is
 // being recorded until Start or StartUnlessManual.
 func New(cfg Config, d Deps) *Controller {
 	c := &Controller{cfg: cfg, reg: d.Registry, sub: d.Sub, store: d.Store, emit: d.Emit, publish: d.Publish,
-		forward: d.Forward, log: d.Log, now: d.Now}
+		forward: d.Forward, log: d.Log, now: d.Now, create: d.Create, space: d.DiskSpace}
+	if c.cfg.MinFreeBytes == 0 {
+		c.cfg.MinFreeBytes = DefaultMinFreeBytes
+	}
+	if c.space == nil {
+		c.space = diskSpace
+	}
 	if c.emit == nil {
 		c.emit = func(pipeline.Event) {}
 	}
@@ -146,20 +201,27 @@ func (c *Controller) start(req StartRequest, auto bool) (string, error) {
 	}
 	now := c.now()
 	id := now.UTC().Format("20060102T150405.000Z")
+	if err := os.MkdirAll(c.cfg.Dir, 0o755); err != nil {
+		return "", fmt.Errorf("opening run %s: %w", id, err)
+	}
+	_, total, serr := c.space(c.cfg.Dir)
 	rec, err := record.Open(record.Config{Dir: c.cfg.Dir, Run: id, Vehicle: c.cfg.Vehicle, Label: req.Label, Notes: req.Notes,
 		SyncEvery: c.cfg.SyncEvery, RotateBytes: c.cfg.RotateBytes, ConfigYAML: c.cfg.ConfigYAML,
-		Conditions: c.conditions(req.Entered, now), Forward: c.forward}, c.reg)
+		Conditions: c.conditions(req.Entered, now), Forward: c.forward, Create: c.create, Now: c.now,
+		HoldBytes: holdBytes(total, serr)}, c.reg)
 	if err != nil {
 		return "", fmt.Errorf("opening run %s: %w", id, err)
 	}
-	c.cur, c.auto = rec, auto
+	c.account() // what the queue dropped before the run is not the run's
+	c.cur, c.auto, c.diskFed, c.refLog = rec, auto, 0, false
 	c.emit(pipeline.Event{Kind: "run_started", Name: id, Start: now, Tags: map[string]string{"label": req.Label}})
 	return id, nil
 }
 
 // Stop closes the current run, publishes its summary and returns it. With
 // no run being recorded it returns an error and an empty summary; a run
-// that closed with an error returns both.
+// that closed with an error, or lost samples or events (the error wraps
+// record.ErrDataLost), returns both, and the error is logged.
 func (c *Controller) Stop() (record.Summary, error) {
 	c.mu.Lock()
 	defer c.mu.Unlock()
@@ -167,10 +229,16 @@ func (c *Controller) Stop() (record.Summary, error) {
 		return record.Summary{}, errors.New("no run is being recorded")
 	}
 	rec := c.cur
-	c.cur, c.auto = nil, false
+	c.account() // the queue's drops up to now belong to the run
 	err := rec.Close()
-	c.lostClosed += rec.Lost()
+	c.account() // what the disk refused at the close
+	c.logResumed()
+	c.cur, c.auto = nil, false
+	c.diskClosed += rec.DiskLost()
+	c.evLostClosed += rec.LostEvents()
+	c.failsClosed += rec.WriteFailures()
 	c.writtenClosed += rec.Points()
+	c.diskFed = 0
 	if n := rec.ForwardFailures(); n > 0 {
 		c.log.Error("push: blocks of this run were refused by the push backlog; they are in the run's files but were not pushed", "run", rec.ID(), "blocks", n)
 	}
@@ -179,8 +247,12 @@ func (c *Controller) Stop() (record.Summary, error) {
 		c.publish(sum.JSON())
 	}
 	c.emit(pipeline.Event{Kind: "run_ended", Name: rec.ID(), Start: sum.Start, End: sum.End,
-		Fields: map[string]float64{"samples": float64(sum.Samples), "turbo_lag_events": float64(sum.LagEvents), "warnings_raised": float64(sum.WarningsRaised)}})
+		Fields: map[string]float64{"samples": float64(sum.Samples), "samples_lost": float64(sum.SamplesLost),
+			"events_lost": float64(sum.EventsLost), "recording_gaps": float64(sum.Gaps),
+			"turbo_lag_events": float64(sum.LagEvents), "warnings_raised": float64(sum.WarningsRaised)}})
 	if err != nil {
+		c.log.Error("the run ended incomplete", "run", rec.ID(), "samples_written", sum.Samples,
+			"samples_lost", sum.SamplesLost, "events_lost", sum.EventsLost, "err", err)
 		return sum, fmt.Errorf("closing run %s: %w", rec.ID(), err)
 	}
 	return sum, nil
@@ -196,10 +268,11 @@ func (c *Controller) Current() string {
 	return c.cur.ID()
 }
 
-// Run records until ctx is done, then closes the current run. It syncs the
-// run at Config.SyncEvery and, with Config.AutoTrigger, starts and stops
-// runs on pulls.
-func (c *Controller) Run(ctx context.Context) {
+// Run records until ctx is done, then closes the current run and returns
+// what Stop returns for it (nil without one): an error when the run could
+// not be closed or lost data. It syncs the run at Config.SyncEvery and,
+// with Config.AutoTrigger, starts and stops runs on pulls.
+func (c *Controller) Run(ctx context.Context) error {
 	every := c.cfg.SyncEvery
 	if every == 0 {
 		every = 200 * time.Millisecond
@@ -227,30 +300,60 @@ func (c *Controller) Run(ctx context.Context) {
 		select {
 		case <-ctx.Done():
 			drain()
-			if sum, err := c.Stop(); err != nil && sum.Run != "" {
-				c.log.Error("closing the run", "err", err)
+			if sum, err := c.Stop(); err != nil && sum.Run != "" { // logged by Stop
+				return err
 			}
-			return
+			return nil
 		case <-c.sub.C():
 			drain()
 		case <-tick.C:
-			c.watchLoss(c.now())
 			c.sync()
+			c.watchLoss(c.now())
 		}
 	}
 }
 
-// sync hands the current run's buffered lines to the disk and logs the
-// first failure.
+// sync hands the current run's buffered lines to the disk. A disk that
+// refuses writes is logged once per outage, other failures once per burst.
 func (c *Controller) sync() {
 	c.mu.Lock()
 	defer c.mu.Unlock()
 	if c.cur == nil {
 		return
 	}
-	if err := c.cur.Sync(); err != nil && c.syncErr == nil {
-		c.syncErr = err
-		c.log.Error("recorder cannot write; samples of this run are being lost", "err", err)
+	err := c.cur.Sync()
+	switch {
+	case c.cur.Refusing():
+		if !c.refLog {
+			c.refLog = true
+			c.log.Error("the disk refuses writes to the run: holding what it cannot write and retrying; beyond that samples are lost",
+				"run", c.cur.ID(), "hold_bytes", c.cur.HoldBytes(), "err", err)
+		}
+	case err != nil:
+		if c.syncErr == nil {
+			c.syncErr = err
+			c.log.Error("recorder", "run", c.cur.ID(), "err", err)
+		}
+	default:
+		c.syncErr = nil
+	}
+	c.logResumed()
+}
+
+// logResumed logs the disk's outages that ended; c.mu is held.
+func (c *Controller) logResumed() {
+	if c.cur == nil {
+		return
+	}
+	for _, g := range c.cur.TakeResumed() {
+		c.refLog = false
+		if g.Samples+g.Events == 0 {
+			c.log.Warn("the disk takes writes again; nothing was lost", "run", c.cur.ID(), "refused_for", g.Until.Sub(g.Since))
+			continue
+		}
+		c.log.Error("the disk takes writes again; the gap is written into the run as a recording_gap event", "run", c.cur.ID(),
+			"refused_for", g.Until.Sub(g.Since), "lost_samples", g.Samples, "lost_events", g.Events,
+			"gap_start", g.Start, "gap_end", g.End)
 	}
 }
 
@@ -299,44 +402,106 @@ func (t *trigger) feed(buf []pipeline.Sample) {
 			auto := t.c.auto && t.c.cur != nil
 			t.c.mu.Unlock()
 			if auto {
-				if _, err := t.c.Stop(); err != nil {
-					t.c.log.Error("auto trigger: closing the run", "err", err)
-				}
+				t.c.Stop() // logs what went wrong
 			}
 		}
 	}
 }
 
-// lost returns what the recorder failed to keep so far; c.mu is held.
-func (c *Controller) lost() uint64 {
-	n := c.sub.Dropped() + c.lostClosed
-	if c.cur != nil {
-		n += c.cur.Lost()
+// account counts the queue's new drops into the current run and the
+// samples the disk refused back into the subscription; c.mu is held.
+func (c *Controller) account() {
+	if q := c.sub.Dropped() - c.fedBack; q > c.queueSeen {
+		if c.cur != nil {
+			c.cur.CountDropped(q - c.queueSeen)
+		}
+		c.queueSeen = q
 	}
-	return n
+	if c.cur == nil {
+		return
+	}
+	if d := c.cur.DiskLost(); d > c.diskFed {
+		c.sub.CountLost(d - c.diskFed)
+		c.fedBack += d - c.diskFed
+		c.diskFed = d
+	}
 }
 
-// watchLoss says loudly when the recorder cannot keep up: a
-// recorder_behind warning (raised at the first loss, cleared after 5 s
-// without any) and an error log once per burst. The counts stay in
+// holdBytes is what a run holds in memory while the disk refuses writes: a
+// quarter of the filesystem at most, so that freeing a quarter of it lets
+// the run resume, and no more than record.DefaultHoldBytes.
+func holdBytes(total uint64, err error) int {
+	if err != nil || total == 0 {
+		return record.DefaultHoldBytes
+	}
+	return int(min(record.DefaultHoldBytes, max(total/4, 64<<10)))
+}
+
+// checkFree is the free-space guard: it looks at the disk at most once a
+// second; c.mu is held.
+func (c *Controller) checkFree(now time.Time) {
+	if !c.freeAt.IsZero() && now.Sub(c.freeAt) < freeCheckEvery && now.After(c.freeAt) {
+		return
+	}
+	c.freeAt = now
+	free, _, err := c.space(c.cfg.Dir)
+	if err != nil {
+		if !c.freeErr {
+			c.freeErr = true
+			c.log.Warn("free-space guard: cannot read the free space of the record directory", "dir", c.cfg.Dir, "err", err)
+		}
+		c.freeOK, c.lowFree = false, false
+		return
+	}
+	c.freeErr = false
+	c.free, c.freeOK = free, true
+	c.lowFree = free < uint64(c.cfg.MinFreeBytes)
+}
+
+// watchLoss says loudly when the recorder cannot keep everything: a
+// recorder_behind warning raised at the first lost sample, the first write
+// the disk refuses, or when the free space falls below MinFreeBytes, kept
+// raised while any of them lasts and cleared 5 s after; an error log when
+// it is raised and a log when it is cleared. The counts are in
 // plenum_consumer_dropped_samples_total{consumer="recorder"} and in Report.
 func (c *Controller) watchLoss(now time.Time) {
 	var ev *pipeline.Event
 	c.mu.Lock()
-	lost := c.lost()
+	c.account()
+	c.checkFree(now)
+	lost := c.sub.Dropped()
+	cause := ""
 	switch {
+	case c.cur != nil && c.cur.Refusing():
+		cause = "disk_refuses_writes"
 	case lost > c.lossSeen:
+		cause = "samples_lost"
+	case c.lowFree:
+		cause = "disk_almost_full"
+	}
+	tags := map[string]string{"severity": "critical", "cause": cause}
+	switch {
+	case cause != "":
 		if !c.lossRaised {
-			c.log.Error("the recorder is not keeping up: samples are being lost", "lost", lost-c.lossSeen)
-			ev = &pipeline.Event{Kind: "warning_raised", Name: "recorder_behind", Start: now, End: now,
-				Tags: map[string]string{"severity": "critical"}, Fields: map[string]float64{"active": 1, "lost_samples": float64(lost - c.lossSeen)}}
-			c.lossRaised = true
+			c.log.Error("recorder_behind: the recorder cannot keep every sample", "cause", cause,
+				"lost", lost-c.lossSeen, "free_bytes", c.free, "min_free_bytes", c.cfg.MinFreeBytes)
+			f := map[string]float64{"active": 1, "lost_samples": float64(lost - c.lossSeen)}
+			if c.freeOK {
+				f["free_bytes"] = float64(c.free)
+			}
+			ev = &pipeline.Event{Kind: "warning_raised", Name: "recorder_behind", Start: now, End: now, Tags: tags, Fields: f}
+			c.lossRaised, c.lossAt = true, c.lossSeen
+		} else if cause != c.lossCause {
+			c.log.Error("recorder_behind: still raised", "cause", cause, "lost", lost-c.lossAt, "free_bytes", c.free)
 		}
+		c.lossCause = cause
 		c.lossSeen, c.lossSince = lost, now
 	case c.lossRaised && now.Sub(c.lossSince) >= 5*time.Second:
+		c.log.Info("recorder_behind cleared: the recorder keeps every sample again", "lost", lost-c.lossAt)
+		tags["cause"] = c.lossCause
 		ev = &pipeline.Event{Kind: "warning_cleared", Name: "recorder_behind", Start: c.lossSince, End: now,
-			Tags: map[string]string{"severity": "critical"}, Fields: map[string]float64{"active": 0}}
-		c.lossRaised = false
+			Tags: tags, Fields: map[string]float64{"active": 0, "lost_samples": float64(lost - c.lossAt)}}
+		c.lossRaised, c.lossCause = false, ""
 	}
 	c.mu.Unlock()
 	if ev != nil {
@@ -345,24 +510,44 @@ func (c *Controller) watchLoss(now time.Time) {
 }
 
 // Report says how the recorder is doing: up while a run is being recorded
-// and recorder_behind is not raised; lost_samples counts samples the
-// subscription dropped and points the disk refused, written_samples the
-// points encoded into run files (samples and the few events), both over
-// the daemon's lifetime.
+// and recorder_behind is not raised. Counters, over the daemon's lifetime:
+// lost_samples, every sample the recorder lost (dropped by its full queue
+// or refused by the disk; the same count as
+// plenum_consumer_dropped_samples_total{consumer="recorder"});
+// refused_samples, the part of it the disk refused; lost_events, events
+// the disk refused; written_samples, the points encoded for run files
+// (samples and the few events); write_failures, writes and syncs the disk
+// refused. Gauges: unwritten_bytes, held while the disk refuses;
+// free_bytes, the free space of the record directory's filesystem (when
+// known).
 func (c *Controller) Report() pipeline.HealthReport {
 	c.mu.Lock()
 	defer c.mu.Unlock()
-	written := c.writtenClosed
+	c.account()
+	written, refused, evLost, fails := c.writtenClosed, c.diskClosed, c.evLostClosed, c.failsClosed
+	unwritten := 0
 	if c.cur != nil {
 		written += c.cur.Points()
+		refused += c.cur.DiskLost()
+		evLost += c.cur.LostEvents()
+		fails += c.cur.WriteFailures()
+		unwritten = c.cur.Unwritten()
 	}
-	return pipeline.HealthReport{
+	r := pipeline.HealthReport{
 		Kind: "recorder",
 		Name: "recorder",
 		Up:   c.cur != nil && !c.lossRaised,
 		Counters: []pipeline.NamedCount{
-			{Name: "lost_samples", Value: c.lost()},
+			{Name: "lost_samples", Value: c.sub.Dropped()},
+			{Name: "refused_samples", Value: refused},
+			{Name: "lost_events", Value: evLost},
 			{Name: "written_samples", Value: written},
+			{Name: "write_failures", Value: fails},
 		},
+		Gauges: []pipeline.NamedValue{{Name: "unwritten_bytes", Value: float64(unwritten)}},
 	}
+	if c.freeOK {
+		r.Gauges = append(r.Gauges, pipeline.NamedValue{Name: "free_bytes", Value: float64(c.free)})
+	}
+	return r
 }

@@ -1,9 +1,9 @@
 package runs
 
 import (
+	"bytes"
 	"context"
 	"encoding/json"
-	"io"
 	"log/slog"
 	"net/http/httptest"
 	"os"
@@ -33,13 +33,33 @@ type harness struct {
 	clock     time.Time
 	events    []pipeline.Event
 	published [][]byte
+	free      uint64 // what the free-space guard reads
+	logs      syncBuffer
+}
+
+// syncBuffer is a bytes.Buffer safe for concurrent use, for logs.
+type syncBuffer struct {
+	mu sync.Mutex
+	b  bytes.Buffer
+}
+
+func (b *syncBuffer) Write(p []byte) (int, error) {
+	b.mu.Lock()
+	defer b.mu.Unlock()
+	return b.b.Write(p)
+}
+
+func (b *syncBuffer) String() string {
+	b.mu.Lock()
+	defer b.mu.Unlock()
+	return b.b.String()
 }
 
 func newHarness(t *testing.T, cfg Config) *harness { return newHarnessSized(t, cfg, 1<<12) }
 
 func newHarnessSized(t *testing.T, cfg Config, ring int) *harness {
 	t.Helper()
-	h := &harness{t: t, dir: t.TempDir(), clock: time.Date(2026, 5, 1, 10, 0, 0, 0, time.UTC)}
+	h := &harness{t: t, dir: t.TempDir(), clock: time.Date(2026, 5, 1, 10, 0, 0, 0, time.UTC), free: 1 << 40}
 	reg := pipeline.NewRegistry()
 	var err error
 	for _, c := range []struct {
@@ -57,7 +77,12 @@ func newHarnessSized(t *testing.T, cfg Config, ring int) *harness {
 	h.p = pipeline.New(reg, g, pipeline.Options{})
 	h.sub = h.p.Subscribe("recorder", ring)
 	cfg.Dir, cfg.Vehicle = h.dir, "test-car"
-	h.c = New(cfg, Deps{Registry: reg, Sub: h.sub, Store: h.p.Store(), Log: slog.New(slog.NewTextHandler(io.Discard, nil)),
+	h.c = New(cfg, Deps{Registry: reg, Sub: h.sub, Store: h.p.Store(), Log: slog.New(slog.NewTextHandler(&h.logs, nil)),
+		DiskSpace: func(string) (uint64, uint64, error) {
+			h.mu.Lock()
+			defer h.mu.Unlock()
+			return h.free, 1 << 41, nil
+		},
 		Emit: func(e pipeline.Event) {
 			h.mu.Lock()
 			h.events = append(h.events, e)

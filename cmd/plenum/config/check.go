@@ -307,6 +307,9 @@ func (cfg *Config) check(file string, root *yaml.Node) Errors {
 	if cfg.MQTT.MaxRateHz < 0 || cfg.MQTT.MaxRateHz > 1000 {
 		c.fail("must be between 0 and 1000", "mqtt", "max_rate_hz")
 	}
+	if cfg.Record.MinFreeMB < 0 || cfg.Record.MinFreeMB > 1<<24 {
+		c.fail("must be between 0 (default 256) and 16777216", "record", "min_free_mb")
+	}
 	if pu := cfg.Record.Push; pu.URL != "" {
 		u, err := url.Parse(pu.URL)
 		switch {

@@ -46,6 +46,10 @@ type Record struct {
 	Dir       string   `yaml:"dir"`        // empty: no recording
 	SyncEvery Duration `yaml:"sync_every"` // default 200ms: at most this is lost at a power cut
 	RotateMB  int      `yaml:"rotate_mb"`  // default 64
+	// MinFreeMB is the free-space guard: recorder_behind is raised while
+	// the filesystem of dir has less free space than this (default 256,
+	// some 8 minutes of the demo's channels), before the disk is full.
+	MinFreeMB int `yaml:"min_free_mb"`
 	// Manual: runs start and stop only on command (default: one run per
 	// daemon lifetime, started at once).
 	Manual bool `yaml:"manual"`

@@ -52,6 +52,8 @@ func TestErrorsNameFileLineAndField(t *testing.T) {
 			"bad.yaml:6: record.push.url: needs precision=ns"},
 		{"push without recording", "vehicle: x\nengine: {displacement_l: 2, volumetric_efficiency: 0.9}\nrecord:\n  push:\n    url: http://db:8086/write?db=plenum&precision=ns\n",
 			"record.push: pushing needs record.dir"},
+		{"negative free-space guard", "vehicle: x\nengine: {displacement_l: 2, volumetric_efficiency: 0.9}\nrecord:\n  dir: /tmp/r\n  min_free_mb: -1\n",
+			"bad.yaml:5: record.min_free_mb: must be between 0"},
 		{"bad broker", "vehicle: x\nengine: {displacement_l: 2, volumetric_efficiency: 0.9}\nmqtt:\n  broker: http://x\n", "bad.yaml:4: mqtt.broker"},
 	}
 	for _, c := range cases {
