@@ -176,7 +176,15 @@ func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *s
 	if err != nil {
 		return err
 	}
-	evm := promexport.NewEvents(p.SubscribeEvents("event_metrics"))
+	rules := make([]promexport.Rule, 0, len(set.Rules)+1)
+	for _, r := range set.Rules {
+		rules = append(rules, promexport.Rule{Name: r.Name, Severity: r.Severity})
+	}
+	if rr != nil {
+		rules = append(rules, promexport.Rule{Name: "recorder_behind", Severity: "critical"})
+	}
+	col.WithRules(rules...)
+	evm := promexport.NewEvents(p.SubscribeEvents("event_metrics"), rules...)
 	h, err := promexport.Handler(col, evm)
 	if err != nil {
 		return err

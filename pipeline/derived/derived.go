@@ -81,6 +81,9 @@ type Set struct {
 	// LeftOut lists the warning rules left out for want of channels, in
 	// the order of the rules; the binary names each in one info line.
 	LeftOut []LeftOut
+	// Rules lists the warning rules in use (built-in and configured), for
+	// the metrics' rule and severity labels.
+	Rules []WarningRule
 
 	ve    *veEstimate
 	guard *turboGuard
@@ -250,6 +253,7 @@ func (s *Set) buildDetectors(cfg Config, reg *pipeline.Registry, made map[string
 	s.LeftOut = leftOut
 	if w != nil {
 		s.Derivations = append(s.Derivations, w)
+		s.Rules = w.rules()
 	}
 	return nil
 }

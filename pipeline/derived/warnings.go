@@ -21,6 +21,22 @@ type warnings struct {
 	trans   []warn.Transition
 	active  []float64
 	lastAll time.Time
+	sev     []warn.Severity // each rule's severity, in the engine's order
+}
+
+// WarningRule is a warning rule in use: its name and severity ("info",
+// "warning" or "critical").
+type WarningRule struct {
+	Name, Severity string
+}
+
+// rules lists the rules in use, in the engine's order.
+func (w *warnings) rules() []WarningRule {
+	out := make([]WarningRule, len(w.sev))
+	for i, s := range w.sev {
+		out[i] = WarningRule{Name: w.ruleName(i), Severity: s.String()}
+	}
+	return out
 }
 
 // LeftOut is a built-in warning rule that Build left out because the setup
@@ -102,6 +118,12 @@ func newWarnings(user []warn.Text, has func(string) bool, lenient bool) (w *warn
 		return nil, nil, fmt.Errorf("warnings: %w", err)
 	}
 	w = &warnings{eng: eng, names: eng.Channels()}
+	for _, r := range parsed {
+		if r.Severity == 0 {
+			r.Severity = warn.Warning // the engine's default
+		}
+		w.sev = append(w.sev, r.Severity)
+	}
 	for _, n := range w.names {
 		idx, _ := eng.Channel(n)
 		w.chIdx = append(w.chIdx, idx)

@@ -15,21 +15,42 @@
 //
 // Live values are latest-value: while the broker is away they are coalesced
 // and the newest is sent on reconnect; nothing queues up without bound.
+//
+// # What can be seen of a broker's refusals
+//
+// The publisher speaks MQTT 3.1.1. A refused connection (bad user name or
+// password, not authorised, a certificate the configured CA does not
+// verify, nothing listening) is reported by the client library: it is
+// counted (connect_failures), logged once per burst with its reason, and
+// Report's Up is false. A broker's ACL refusal of a publish is not: in
+// 3.1.1 the broker acknowledges a refused QoS 1 publish as if it had taken
+// it and silently drops a refused QoS 0 one. So after each connect the
+// publisher subscribes to its own status topic and waits for its "online"
+// message (which carries the connection's start time) to come back; if it
+// does not within Config.ConfirmWithin, it logs that the broker does not
+// deliver what it publishes (an ACL that refuses its publishes, or one that
+// does not let it read its own status topic) and reports the gauge
+// publish_confirmed 0. Publishes that fail or are not acknowledged in time
+// are counted in failed_publishes.
 package mqttpub
 
 import (
+	"bytes"
 	"context"
 	"crypto/tls"
+	"crypto/x509"
 	"encoding/json"
 	"errors"
 	"fmt"
 	"log/slog"
 	"math"
 	"strings"
+	"sync"
 	"sync/atomic"
 	"time"
 
 	paho "github.com/eclipse/paho.mqtt.golang"
+	"github.com/eclipse/paho.mqtt.golang/packets"
 
 	"github.com/plenum-engine/plenum/pipeline"
 )
@@ -58,11 +79,30 @@ type Config struct {
 	// Who may publish commands is the broker's business: the embedded broker
 	// lets only users with command rights write there.
 	OnCommand func(suffix string, payload []byte) []byte
+	// ConfirmWithin is how long after connecting the publisher waits to
+	// read its own "online" status back before it warns that the broker
+	// does not deliver what it publishes; default 5 s.
+	ConfirmWithin time.Duration
+	// AckWithin is how long a QoS 1 publish may wait for the broker's
+	// acknowledgement before it is counted as failed; default 10 s.
+	AckWithin time.Duration
 }
 
 // Stats are the publisher's counters.
 type Stats struct {
-	Published, Coalesced, Failed atomic.Uint64
+	Published, Coalesced atomic.Uint64
+	// Failed counts publishes that failed: not encodable, refused by the
+	// client (not connected), or not acknowledged by the broker in time
+	// (outbox messages stay queued and are retried).
+	Failed atomic.Uint64
+	// ConnectFailures counts connection attempts the broker refused or
+	// that failed (network, TLS, CONNACK refusal).
+	ConnectFailures atomic.Uint64
+	// Lost counts connections lost after they were established.
+	Lost atomic.Uint64
+	// Unconfirmed counts connections on which the publisher's own status
+	// message did not come back within ConfirmWithin.
+	Unconfirmed atomic.Uint64
 }
 
 // Publisher forwards one pipeline subscription to MQTT.
@@ -75,6 +115,21 @@ type Publisher struct {
 	stats  Stats
 	now    func() time.Time
 	store  *pipeline.Store
+
+	// conn is the state of the connection, for once-per-burst logging and
+	// the confirmation of delivery; guarded by its mutex.
+	conn struct {
+		sync.Mutex
+		failing   bool          // connection attempts are failing
+		reason    string        // the reason last logged in this burst
+		attempts  uint64        // failed attempts in this burst
+		online    []byte        // this connection's "online" payload
+		epoch     uint64        // counts connections
+		confirmed bool          // the online payload came back on this connection
+		back      chan struct{} // closed when it does
+		silent    bool          // the last connection was not confirmed (logged)
+		pubFail   bool          // publishes are failing (logged)
+	}
 }
 
 // New prepares a publisher reading sub. Call Run to connect and publish.
@@ -97,6 +152,12 @@ func New(cfg Config, reg *pipeline.Registry, sub *pipeline.Subscription) (*Publi
 	if cfg.ClientID == "" {
 		cfg.ClientID = "plenum-" + cfg.Vehicle
 	}
+	if cfg.ConfirmWithin <= 0 {
+		cfg.ConfirmWithin = 5 * time.Second
+	}
+	if cfg.AckWithin <= 0 {
+		cfg.AckWithin = 10 * time.Second
+	}
 	log := cfg.Logger
 	if log == nil {
 		log = slog.New(slog.DiscardHandler)
@@ -108,6 +169,9 @@ func New(cfg Config, reg *pipeline.Registry, sub *pipeline.Subscription) (*Publi
 		SetUsername(cfg.Username).
 		SetPassword(cfg.Password).
 		SetTLSConfig(cfg.TLS).
+		// 3.1.1 only: without it a refused CONNECT is retried as 3.1 and
+		// the broker's reason is lost behind "unacceptable protocol version".
+		SetProtocolVersion(4).
 		SetCleanSession(true).
 		SetAutoReconnect(true).
 		SetConnectRetry(true).
@@ -115,32 +179,193 @@ func New(cfg Config, reg *pipeline.Registry, sub *pipeline.Subscription) (*Publi
 		SetMaxReconnectInterval(10*time.Second).
 		SetConnectTimeout(5*time.Second).
 		SetWriteTimeout(5*time.Second).
-		SetBinaryWill(p.Topic("status"), p.statusPayload("offline"), 1, true).
-		SetOnConnectHandler(func(c paho.Client) {
-			// Handlers must not block: publish without waiting.
-			c.Publish(p.Topic("status"), 1, true, p.statusPayload("online"))
-			if cfg.OnCommand != nil {
-				tok := c.Subscribe(p.Topic("cmd/#"), 1, p.onCommand)
-				go func() {
-					if tok.WaitTimeout(10*time.Second) && tok.Error() != nil {
-						log.Error("mqtt: cannot subscribe to the command topics", "err", tok.Error())
-					}
-					if st, ok := tok.(*paho.SubscribeToken); ok {
-						for topic, code := range st.Result() {
-							if code >= 0x80 {
-								log.Error("mqtt: the broker refused the command subscription", "topic", topic, "code", code)
-							}
-						}
-					}
-				}()
-			}
-			log.Info("mqtt connected", "broker", cfg.Broker)
-		}).
+		SetBinaryWill(p.Topic("status"), p.statusPayload("offline", time.Time{}), 1, true).
+		SetOnConnectHandler(p.onConnect).
+		SetConnectionNotificationHandler(p.onNotification).
 		SetConnectionLostHandler(func(_ paho.Client, err error) {
+			p.stats.Lost.Add(1)
 			log.Warn("mqtt connection lost; live values are coalesced until it returns", "err", err)
 		})
 	p.client = paho.NewClient(opts)
 	return p, nil
+}
+
+// onConnect runs on every (re)connection: it publishes "online", subscribes
+// to the commands and to its own status topic to confirm delivery. Handlers
+// must not block: it publishes and subscribes without waiting.
+func (p *Publisher) onConnect(c paho.Client) {
+	online := p.statusPayload("online", p.now())
+	p.conn.Lock()
+	p.conn.epoch++
+	epoch := p.conn.epoch
+	p.conn.online, p.conn.confirmed = online, false
+	back := make(chan struct{})
+	p.conn.back = back
+	p.conn.pubFail = false
+	if p.conn.failing {
+		p.log.Info("mqtt connected after failed attempts", "broker", p.cfg.Broker, "failed_attempts", p.conn.attempts)
+	} else {
+		p.log.Info("mqtt connected", "broker", p.cfg.Broker)
+	}
+	p.conn.failing, p.conn.reason, p.conn.attempts = false, "", 0
+	p.conn.Unlock()
+	stok := c.Subscribe(p.Topic("status"), 1, p.onStatus)
+	p.watch(c.Publish(p.Topic("status"), 1, true, online), p.Topic("status"))
+	if p.cfg.OnCommand != nil {
+		tok := c.Subscribe(p.Topic("cmd/#"), 1, p.onCommand)
+		go func() {
+			if tok.WaitTimeout(10*time.Second) && tok.Error() != nil {
+				p.log.Error("mqtt: cannot subscribe to the command topics", "err", tok.Error())
+			}
+			if st, ok := tok.(*paho.SubscribeToken); ok {
+				for topic, code := range st.Result() {
+					if code >= 0x80 {
+						p.log.Error("mqtt: the broker refused the command subscription", "topic", topic, "code", code)
+					}
+				}
+			}
+		}()
+	}
+	go p.confirm(epoch, back, stok)
+}
+
+// onStatus receives the publisher's own status topic: the "online" message
+// of this connection coming back confirms that the broker delivers what the
+// publisher sends.
+func (p *Publisher) onStatus(_ paho.Client, m paho.Message) {
+	p.conn.Lock()
+	defer p.conn.Unlock()
+	if p.conn.confirmed || !bytes.Equal(m.Payload(), p.conn.online) {
+		return
+	}
+	p.conn.confirmed = true
+	close(p.conn.back)
+	if p.conn.silent {
+		p.log.Info("mqtt: the broker delivers this publisher's messages again")
+		p.conn.silent = false
+	}
+}
+
+// confirm waits ConfirmWithin for the connection epoch's "online" message
+// to come back, and warns once per burst when it does not.
+func (p *Publisher) confirm(epoch uint64, back <-chan struct{}, stok paho.Token) {
+	t := time.NewTimer(p.cfg.ConfirmWithin)
+	defer t.Stop()
+	refused := ""
+	if stok.WaitTimeout(p.cfg.ConfirmWithin) {
+		if err := stok.Error(); err != nil {
+			refused = err.Error()
+		} else if st, ok := stok.(*paho.SubscribeToken); ok {
+			for _, code := range st.Result() {
+				if code >= 0x80 {
+					refused = fmt.Sprintf("the broker refused the subscription to %s (code %#x)", p.Topic("status"), code)
+				}
+			}
+		}
+	}
+	select {
+	case <-back:
+		return
+	case <-t.C:
+	}
+	p.conn.Lock()
+	defer p.conn.Unlock()
+	if p.conn.epoch != epoch || p.conn.confirmed || !p.client.IsConnectionOpen() {
+		return
+	}
+	p.stats.Unconfirmed.Add(1)
+	if p.conn.silent {
+		return // logged once for this burst
+	}
+	p.conn.silent = true
+	args := []any{"broker", p.cfg.Broker, "topic", p.Topic("status"), "waited", p.cfg.ConfirmWithin}
+	if refused != "" {
+		args = append(args, "subscription", refused)
+	}
+	p.log.Warn("mqtt: connected, but the broker does not deliver this publisher's own status message back to it: "+
+		"its ACL probably refuses what Plenum publishes (MQTT 3.1.1 brokers acknowledge or drop a refused publish without saying so), "+
+		"or does not let Plenum read its own status topic", args...)
+}
+
+// onNotification counts failed connection attempts and logs the reason once
+// per burst (and again when the reason changes).
+func (p *Publisher) onNotification(_ paho.Client, n paho.ConnectionNotification) {
+	f, ok := n.(paho.ConnectionNotificationFailed)
+	if !ok {
+		return
+	}
+	p.stats.ConnectFailures.Add(1)
+	reason := explainConnectError(f.Reason)
+	p.conn.Lock()
+	defer p.conn.Unlock()
+	p.conn.attempts++
+	if p.conn.failing && p.conn.reason == reason {
+		return
+	}
+	p.conn.failing, p.conn.reason = true, reason
+	p.log.Warn("mqtt: cannot connect to the broker; retrying in the background (logged again when the reason changes or once connected)",
+		"broker", p.cfg.Broker, "reason", reason)
+}
+
+// explainConnectError turns a connection error into one line naming what
+// to check.
+func explainConnectError(err error) string {
+	var unknownCA x509.UnknownAuthorityError
+	var verify *tls.CertificateVerificationError
+	var hostname x509.HostnameError
+	switch {
+	case err == nil:
+		return "unknown"
+	case errors.Is(err, packets.ErrorRefusedBadUsernameOrPassword), errors.Is(err, packets.ErrorRefusedNotAuthorised):
+		return "the broker refused the user name or password (" + err.Error() + ")"
+	case errors.Is(err, packets.ErrorRefusedIDRejected):
+		return "the broker refused the client ID (" + err.Error() + ")"
+	case errors.As(err, &unknownCA):
+		return "the broker's certificate is not signed by the configured CA: " + unknownCA.Error()
+	case errors.As(err, &hostname):
+		return "the broker's certificate does not name this host: " + hostname.Error()
+	case errors.As(err, &verify):
+		return "the broker's certificate does not verify: " + verify.Err.Error()
+	}
+	return err.Error()
+}
+
+// watch counts a publish that fails, or is not acknowledged within
+// AckWithin, without blocking the caller.
+func (p *Publisher) watch(tok paho.Token, topic string) {
+	go func() {
+		if !tok.WaitTimeout(p.cfg.AckWithin) {
+			p.publishFailed(topic, fmt.Errorf("not acknowledged within %s", p.cfg.AckWithin))
+			return
+		}
+		if err := tok.Error(); err != nil {
+			p.publishFailed(topic, err)
+			return
+		}
+		p.publishOK()
+	}()
+}
+
+// publishFailed counts a failed publish and logs the first of a burst.
+func (p *Publisher) publishFailed(topic string, err error) {
+	p.stats.Failed.Add(1)
+	p.conn.Lock()
+	defer p.conn.Unlock()
+	if p.conn.pubFail {
+		return
+	}
+	p.conn.pubFail = true
+	p.log.Warn("mqtt: a publish failed; counted in plenum_mqtt_failed_publishes_total, logged again after publishes succeed", "topic", topic, "err", err)
+}
+
+// publishOK ends a burst of publish failures.
+func (p *Publisher) publishOK() {
+	p.conn.Lock()
+	defer p.conn.Unlock()
+	if p.conn.pubFail {
+		p.conn.pubFail = false
+		p.log.Info("mqtt: publishes succeed again")
+	}
 }
 
 // onCommand hands a command message to Config.OnCommand and publishes its
@@ -175,19 +400,44 @@ func (p *Publisher) Stats() *Stats { return &p.stats }
 // Connected reports whether the client is connected to the broker.
 func (p *Publisher) Connected() bool { return p.client.IsConnectionOpen() }
 
-// Report gives the publisher's health: connected, and its counts of
-// messages published, live values coalesced and publishes that failed.
+// Confirmed reports whether the publisher's own status message came back
+// on the current connection: the broker delivers what it publishes.
+func (p *Publisher) Confirmed() bool {
+	p.conn.Lock()
+	defer p.conn.Unlock()
+	return p.conn.confirmed && p.client.IsConnectionOpen()
+}
+
+// Report gives the publisher's health: Up while connected; the counters
+// published_messages, coalesced_values, failed_publishes, connect_failures,
+// lost_connections and unconfirmed_connections; the gauge
+// publish_confirmed, 1 while the broker is seen to deliver what the
+// publisher sends (see the package doc).
 func (p *Publisher) Report() pipeline.HealthReport {
+	confirmed := 0.0
+	if p.Confirmed() {
+		confirmed = 1
+	}
 	return pipeline.HealthReport{Kind: "mqtt", Name: "publisher", Up: p.Connected(), Counters: []pipeline.NamedCount{
 		{Name: "published_messages", Value: p.stats.Published.Load()},
 		{Name: "coalesced_values", Value: p.stats.Coalesced.Load()},
 		{Name: "failed_publishes", Value: p.stats.Failed.Load()},
-	}}
+		{Name: "connect_failures", Value: p.stats.ConnectFailures.Load()},
+		{Name: "lost_connections", Value: p.stats.Lost.Load()},
+		{Name: "unconfirmed_connections", Value: p.stats.Unconfirmed.Load()},
+	}, Gauges: []pipeline.NamedValue{{Name: "publish_confirmed", Value: confirmed}}}
 }
 
-func (p *Publisher) statusPayload(state string) []byte {
-	b, _ := json.Marshal(map[string]string{"state": state, "vehicle": p.cfg.Vehicle, "version": p.cfg.Version,
-		"notice": "advisory only, not a safety system"})
+// statusPayload is the status message; since, when not zero, is when the
+// connection was made (it makes each connection's "online" message unique,
+// so that the publisher can recognise its own coming back).
+func (p *Publisher) statusPayload(state string, since time.Time) []byte {
+	m := map[string]string{"state": state, "vehicle": p.cfg.Vehicle, "version": p.cfg.Version,
+		"notice": "advisory only, not a safety system"}
+	if !since.IsZero() {
+		m["since"] = since.UTC().Format(time.RFC3339Nano)
+	}
+	b, _ := json.Marshal(m)
 	return b
 }
 
@@ -243,7 +493,7 @@ func (p *Publisher) Run(ctx context.Context) error {
 				p.publishOutbox(time.Now().Add(time.Second))
 			}
 			if p.client.IsConnectionOpen() {
-				t := p.client.Publish(p.Topic("status"), 1, true, p.statusPayload("offline"))
+				t := p.client.Publish(p.Topic("status"), 1, true, p.statusPayload("offline", time.Time{}))
 				t.WaitTimeout(time.Second)
 			}
 			p.client.Disconnect(250)
@@ -282,8 +532,7 @@ func (p *Publisher) Run(ctx context.Context) error {
 					p.stats.Failed.Add(1)
 					continue
 				}
-				p.client.Publish(p.Topic("ch/"+c.Name), 0, false, payload)
-				p.stats.Published.Add(1)
+				p.publish0(p.Topic("ch/"+c.Name), payload)
 				l.pending = false
 				l.sentAt = now
 			}
@@ -327,7 +576,22 @@ func (p *Publisher) publishSnapshot() {
 		p.stats.Failed.Add(1)
 		return
 	}
-	p.client.Publish(p.Topic("snapshot"), 0, false, payload)
+	p.publish0(p.Topic("snapshot"), payload)
+}
+
+// publish0 publishes at QoS 0 and counts it; a publish the client refused at
+// once (not connected) is counted as failed. A QoS 0 message has no
+// acknowledgement: whether the broker took it cannot be known.
+func (p *Publisher) publish0(topic string, payload []byte) {
+	tok := p.client.Publish(topic, 0, false, payload)
+	select {
+	case <-tok.Done():
+		if err := tok.Error(); err != nil {
+			p.publishFailed(topic, err)
+			return
+		}
+	default:
+	}
 	p.stats.Published.Add(1)
 }
 
@@ -397,7 +661,7 @@ func (p *Publisher) send(topic string, retain bool, payload []byte) {
 			return
 		}
 	}
-	p.client.Publish(topic, 1, retain, payload)
+	p.watch(p.client.Publish(topic, 1, retain, payload), topic)
 	p.stats.Published.Add(1)
 }
 
@@ -416,9 +680,15 @@ func (p *Publisher) publishOutbox(deadline time.Time) {
 			wait = time.Until(deadline)
 		}
 		tok := p.client.Publish(m.Topic, 1, m.Retain, m.Payload)
-		if !tok.WaitTimeout(wait) || tok.Error() != nil {
-			return // retried later
+		if !tok.WaitTimeout(wait) {
+			p.publishFailed(m.Topic, fmt.Errorf("not acknowledged within %s; kept in the outbox and retried", wait.Round(time.Millisecond)))
+			return
 		}
+		if err := tok.Error(); err != nil {
+			p.publishFailed(m.Topic, fmt.Errorf("%w; kept in the outbox and retried", err))
+			return
+		}
+		p.publishOK()
 		if err := o.Ack(m.Seq); err != nil {
 			p.log.Error("mqtt outbox: ack", "err", err)
 		}

@@ -3,7 +3,9 @@
 //
 // Every fresh channel becomes a gauge named plenum_<quantity>_<unit>, with the
 // labels source and sensor (both bounded: they come from configuration, never
-// from data). A channel whose value is older than its maximum age, or whose
+// from data). The warning_<rule> channels are the exception:
+// plenum_warning_active{rule="over_boost",severity="critical"}, 1 while the
+// rule is raised. A channel whose value is older than its maximum age, or whose
 // quality is not ok, is left out of the scrape instead of showing its last
 // value forever. Alongside: every part's health as it reports it at scrape
 // time (plenum_<kind>_up, plenum_<kind>_<counter>_total and
@@ -63,6 +65,26 @@ type Collector struct {
 	descs   map[string]*prometheus.Desc
 	mu      sync.Mutex // guards health: scrapes may run concurrently
 	health  map[string]*prometheus.Desc
+	warning *prometheus.Desc
+	sev     map[string]string // rule name -> severity
+}
+
+// warningPrefix names the channels of the warning family.
+const warningPrefix = "warning_"
+
+// isWarning reports whether ch is a warning rule's channel.
+func isWarning(ch pipeline.Channel) bool {
+	return strings.HasPrefix(ch.Name, warningPrefix) && ch.Quantity == "warning_active"
+}
+
+// WithRules gives the collector the severity of each warning rule, for the
+// severity label of plenum_warning_active (empty for a rule not given).
+// Call it before the collector is served.
+func (c *Collector) WithRules(rules ...Rule) *Collector {
+	for _, r := range rules {
+		c.sev[r.Name] = r.Severity
+	}
+	return c
 }
 
 // New returns a collector over p and the health of parts; now is the clock
@@ -77,9 +99,14 @@ func New(p *pipeline.Pipeline, now func() time.Time, parts ...Reporter) (*Collec
 		dropped: prometheus.NewDesc("plenum_consumer_dropped_samples_total", "Samples a slow consumer did not take.", []string{"consumer"}, nil),
 		descs:   map[string]*prometheus.Desc{},
 		health:  map[string]*prometheus.Desc{},
+		warning: prometheus.NewDesc("plenum_warning_active", "1 while the warning rule is raised, 0 otherwise.", []string{"rule", "severity"}, nil),
+		sev:     map[string]string{},
 	}
 	seen := map[string]string{}
 	for _, ch := range p.Registry().Channels() {
+		if isWarning(ch) {
+			continue
+		}
 		name := MetricName(ch)
 		if !metricRE.MatchString(name) {
 			return nil, fmt.Errorf("channel %q: metric name %q is not valid", ch.Name, name)
@@ -116,6 +143,11 @@ func (c *Collector) Collect(out chan<- prometheus.Metric) {
 		}
 		ch := chans[i]
 		if !v.Fresh(now, ch.Age()) {
+			continue
+		}
+		if isWarning(ch) {
+			rule := strings.TrimPrefix(ch.Name, warningPrefix)
+			out <- prometheus.MustNewConstMetric(c.warning, prometheus.GaugeValue, v.Value, rule, c.sev[rule])
 			continue
 		}
 		d := c.descs[MetricName(ch)]

@@ -41,31 +41,46 @@ type sender struct {
 	failing              atomic.Bool // the last request failed and is being retried
 }
 
-// run sends batches until ctx is done.
-func (s *sender) run(ctx context.Context) {
+// run sends batches until ctx is done; with drain, it then goes on until
+// the queue is empty once flushed has been closed (the writer's last flush),
+// or until sctx, which outlives ctx, is done. Requests run under sctx.
+func (s *sender) run(ctx, sctx context.Context, flushed <-chan struct{}, drain bool) {
 	t := time.NewTicker(s.cfg.FlushEvery)
 	defer t.Stop()
-	for ctx.Err() == nil {
+	last := false // the writer's last flush is on disk
+	for sctx.Err() == nil && (drain || ctx.Err() == nil) {
 		b, ok, err := s.q.Next(s.cfg.BatchBytes, s.cfg.BatchLines)
 		if err != nil {
 			s.errs.set(err)
 			s.log.Error("tsdbpush: backlog read failed", "err", err)
-			if s.sleep(ctx, s.cfg.MaxBackoff) != nil {
+			if s.sleep(sctx, s.cfg.MaxBackoff) != nil || ctx.Err() != nil {
 				return
 			}
 			continue
 		}
 		if !ok {
+			if last {
+				return // drained
+			}
+			// With a drain, ctx ending is no reason to stop: the last flush is.
+			ctxDone := ctx.Done()
+			if drain {
+				ctxDone = nil
+			}
 			select {
-			case <-ctx.Done():
+			case <-ctxDone:
 				return
+			case <-sctx.Done():
+				return
+			case <-flushed:
+				last, flushed = true, nil
 			case <-s.ready:
 			case <-t.C:
 			}
 			continue
 		}
-		if err := s.send(ctx, b); err != nil {
-			return // ctx done
+		if err := s.send(sctx, b); err != nil {
+			return // sctx done
 		}
 	}
 }
@@ -142,20 +157,17 @@ func (s *sender) backoff(attempt int) time.Duration {
 }
 
 // inFlightGrace is how long a request in flight may still take once Run's
-// context has ended.
+// context has ended, when there is no drain.
 const inFlightGrace = 2 * time.Second
 
-// post makes one request. For retry it returns the server's Retry-After
-// (0 if none) and the error to report.
+// post makes one request under ctx (the sender's context, which outlives
+// Run's by the drain or the in-flight grace: cut off, the server may have
+// stored a batch without our knowing, and it would be sent again after a
+// restart, harmless where writes are idempotent but needless). For retry it
+// returns the server's Retry-After (0 if none) and the error to report.
 func (s *sender) post(ctx context.Context, body []byte) (outcome, time.Duration, string, error) {
-	// A request in flight when ctx ends gets a short grace: cut off, the
-	// server may have stored it without our knowing, and it would be sent
-	// again after a restart (harmless where writes are idempotent, but
-	// needless).
-	rctx, cancel := context.WithTimeout(context.WithoutCancel(ctx), s.cfg.Timeout)
+	rctx, cancel := context.WithTimeout(ctx, s.cfg.Timeout)
 	defer cancel()
-	stop := context.AfterFunc(ctx, func() { time.AfterFunc(inFlightGrace, cancel) })
-	defer stop()
 	req, err := http.NewRequestWithContext(rctx, http.MethodPost, s.cfg.URL, bytes.NewReader(body))
 	if err != nil {
 		return retry, 0, "", fmt.Errorf("tsdbpush: request: %w", err)

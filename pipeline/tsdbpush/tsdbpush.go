@@ -10,7 +10,10 @@
 // Run owns two loops: a writer that moves staged lines into segment files
 // (appending, fsync on every flush, at most every FlushEvery or as soon as a
 // batch's worth is staged), and a sender that cuts batches from the segment
-// files and POSTs them.
+// files and POSTs them. When Run's context ends (a shutdown) the writer
+// flushes what is staged and the sender goes on for at most Config.Drain
+// until the backlog is empty; what the server has not taken by then stays
+// on disk for the next start, and the log says how much.
 //
 // # Backlog layout
 //
@@ -80,7 +83,6 @@ import (
 	"log/slog"
 	"net/http"
 	"net/url"
-	"sync"
 	"sync/atomic"
 	"time"
 
@@ -130,6 +132,13 @@ type Config struct {
 	// Sleep waits d or until ctx is done; default a timer. Tests inject it to
 	// observe and shorten the waits.
 	Sleep func(ctx context.Context, d time.Duration) error
+	// Drain is how long Run goes on sending after its context ends (a
+	// shutdown), so that what was recorded last reaches the server now
+	// rather than at the next start; a request still in flight at its end
+	// is cut off, and what is left is logged and stays in the backlog for
+	// the next start. Default 3 s (inside the daemon's 5 s shutdown grace);
+	// negative: no drain, only a request in flight is given 2 s.
+	Drain time.Duration
 }
 
 // Stats are the Pusher's counters since Open (BacklogBytes and LastError are
@@ -221,6 +230,9 @@ func Open(cfg Config) (*Pusher, error) {
 	}
 	if cfg.Sleep == nil {
 		cfg.Sleep = sleepCtx
+	}
+	if cfg.Drain == 0 {
+		cfg.Drain = 3 * time.Second
 	}
 	disk, err := backlog.Open(backlog.Config{
 		Dir: cfg.Dir, MaxBytes: cfg.MaxBacklogBytes, SegmentBytes: cfg.SegmentBytes, Logger: cfg.Logger,
@@ -320,10 +332,12 @@ func (p *Pusher) Report() pipeline.HealthReport {
 	}
 }
 
-// Run writes staged lines to disk and sends the backlog until ctx is done,
-// then flushes what is staged to disk and returns nil, or the error of that
-// last flush. Sending failures never end Run; they are retried, counted and
-// reported in Stats.
+// Run writes staged lines to disk and sends the backlog until ctx is done.
+// It then flushes what is staged to disk and goes on sending for at most
+// Config.Drain, until the backlog is empty; what the server did not take by
+// then is logged and stays on disk for the next start. It returns nil, or
+// the error of the last flush. Sending failures never end Run; they are
+// retried, counted and reported in Stats.
 func (p *Pusher) Run(ctx context.Context) error {
 	if !p.running.CompareAndSwap(false, true) {
 		if p.stage.isClosed() {
@@ -332,24 +346,63 @@ func (p *Pusher) Run(ctx context.Context) error {
 		return errors.New("tsdbpush: Run is already running")
 	}
 	defer p.running.Store(false)
-	var wg sync.WaitGroup
-	wg.Add(1)
-	go func() {
-		defer wg.Done()
-		p.writeLoop(ctx)
+	// The sender's context outlives ctx by the drain (or, without one, by
+	// the grace of a request in flight).
+	grace := p.cfg.Drain
+	if grace < 0 {
+		grace = inFlightGrace
+	}
+	sctx, stopSending := context.WithCancel(context.WithoutCancel(ctx))
+	defer stopSending()
+	var timer atomic.Pointer[time.Timer]
+	stopAfter := context.AfterFunc(ctx, func() { timer.Store(time.AfterFunc(grace, stopSending)) })
+	defer func() {
+		stopAfter()
+		if t := timer.Load(); t != nil {
+			t.Stop()
+		}
 	}()
-	p.send.run(ctx)
-	wg.Wait()
-	return p.flush()
+	flushed := make(chan struct{}) // closed after the last flush
+	var flushErr error
+	go func() {
+		defer close(flushed)
+		flushErr = p.writeLoop(ctx)
+	}()
+	before := p.send.sentBytes.Load()
+	p.send.run(ctx, sctx, flushed, p.cfg.Drain > 0)
+	<-flushed
+	p.reportDrain(ctx, before)
+	return flushErr
 }
 
-func (p *Pusher) writeLoop(ctx context.Context) {
+// reportDrain logs, after a shutdown, what the drain sent and what is left.
+func (p *Pusher) reportDrain(ctx context.Context, sentBefore uint64) {
+	if ctx.Err() == nil {
+		return
+	}
+	st := p.Stats()
+	if st.BacklogBytes > 0 {
+		args := []any{"unsent_bytes", st.BacklogBytes, "dir", p.cfg.Dir, "waited", max(p.cfg.Drain, 0)}
+		if st.LastError != "" {
+			args = append(args, "last_error", st.LastError)
+		}
+		p.log.Warn("tsdbpush: stopping with lines the server has not taken; they stay in the backlog and are sent at the next start", args...)
+		return
+	}
+	if sent := p.send.sentBytes.Load() - sentBefore; sent > 0 {
+		p.log.Info("tsdbpush: every recorded line was sent before stopping")
+	}
+}
+
+// writeLoop moves staged lines to disk until ctx is done, then flushes once
+// more and returns the error of that last flush.
+func (p *Pusher) writeLoop(ctx context.Context) error {
 	t := time.NewTicker(p.cfg.FlushEvery)
 	defer t.Stop()
 	for {
 		select {
 		case <-ctx.Done():
-			return
+			return p.flush()
 		case <-p.kick:
 		case <-t.C:
 		}

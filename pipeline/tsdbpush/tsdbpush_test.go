@@ -115,6 +115,7 @@ func testConfig(t *testing.T, url string) Config {
 		URL:        url,
 		Dir:        t.TempDir(),
 		FlushEvery: 10 * time.Millisecond,
+		Drain:      300 * time.Millisecond,
 		MinBackoff: time.Millisecond,
 		MaxBackoff: 5 * time.Millisecond,
 		Timeout:    5 * time.Second,
@@ -816,3 +817,110 @@ func TestReport(t *testing.T) {
 		})
 	}
 }
+
+// TestShutdownDrainsBacklog: lines appended just before a shutdown reach a
+// server that answers, within the drain, instead of waiting on disk for the
+// next start; a server that refuses or does not answer leaves them on disk,
+// Run returns within the drain, and the log says what is left.
+func TestShutdownDrainsBacklog(t *testing.T) {
+	for _, tc := range []struct {
+		name   string
+		answer func(release <-chan struct{}) func(n int, body []byte, w http.ResponseWriter) int
+		sent   bool
+	}{
+		{name: "server answers", sent: true},
+		{name: "server refuses", answer: func(<-chan struct{}) func(int, []byte, http.ResponseWriter) int {
+			return func(int, []byte, http.ResponseWriter) int { return 503 }
+		}},
+		{name: "server does not answer", answer: func(release <-chan struct{}) func(int, []byte, http.ResponseWriter) int {
+			return func(int, []byte, http.ResponseWriter) int { <-release; return 204 }
+		}},
+	} {
+		t.Run(tc.name, func(t *testing.T) {
+			release := make(chan struct{})
+			var answer func(int, []byte, http.ResponseWriter) int
+			if tc.answer != nil {
+				answer = tc.answer(release)
+			}
+			s := newSink(t, answer)
+			t.Cleanup(func() { close(release) }) // runs before the server's Close
+			cfg := testConfig(t, s.url())
+			// Nothing is written or sent before the shutdown: the whole
+			// backlog is what the drain must handle.
+			cfg.FlushEvery = time.Hour
+			cfg.Drain = 500 * time.Millisecond
+			var logs bytes.Buffer
+			var logMu sync.Mutex
+			cfg.Logger = slog.New(slog.NewTextHandler(writerFunc(func(b []byte) (int, error) {
+				logMu.Lock()
+				defer logMu.Unlock()
+				return logs.Write(b)
+			}), nil))
+			want := genLines(300, 1700000000000000000)
+			p, err := Open(cfg)
+			if err != nil {
+				t.Fatal(err)
+			}
+			ctx, cancel := context.WithCancel(context.Background())
+			done := make(chan error, 1)
+			go func() { done <- p.Run(ctx) }()
+			appendAll(t, p, want, 50)
+			start := time.Now()
+			cancel()
+			select {
+			case err := <-done:
+				if err != nil {
+					t.Fatalf("Run: %v", err)
+				}
+			case <-time.After(cfg.Drain + 5*time.Second):
+				t.Fatalf("Run did not return within the drain of %s", cfg.Drain)
+			}
+			took := time.Since(start)
+			st := p.Stats()
+			if err := p.Close(); err != nil {
+				t.Fatal(err)
+			}
+			logMu.Lock()
+			text := logs.String()
+			logMu.Unlock()
+			if tc.sent {
+				exactlyOnceInOrder(t, s.got(), want)
+				if st.BacklogBytes != 0 {
+					t.Errorf("backlog holds %d bytes after the drain", st.BacklogBytes)
+				}
+				if strings.Contains(text, "stopping with lines") {
+					t.Errorf("log reports unsent lines although all were sent:\n%s", text)
+				}
+				return
+			}
+			if len(s.got()) != 0 {
+				t.Fatalf("server stored %d lines", len(s.got()))
+			}
+			var size int
+			for _, l := range want {
+				size += len(l)
+			}
+			if st.BacklogBytes != int64(size) {
+				t.Errorf("backlog %d bytes, want the %d appended", st.BacklogBytes, size)
+			}
+			if !strings.Contains(text, "stopping with lines the server has not taken") || !strings.Contains(text, fmt.Sprintf("unsent_bytes=%d", size)) {
+				t.Errorf("log does not say what is left unsent:\n%s", text)
+			}
+			t.Logf("Run returned %s after the shutdown", took.Round(time.Millisecond))
+			// Still there for the next start.
+			p2, err := Open(cfg)
+			if err != nil {
+				t.Fatal(err)
+			}
+			if got := p2.Stats().BacklogBytes; got != int64(size) {
+				t.Errorf("reopened backlog holds %d bytes, want %d", got, size)
+			}
+			p2.Close()
+		})
+	}
+}
+
+// writerFunc is an io.Writer from a function.
+type writerFunc func([]byte) (int, error)
+
+func (f writerFunc) Write(b []byte) (int, error) { return f(b) }
