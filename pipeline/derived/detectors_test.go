@@ -274,7 +274,10 @@ func TestLagEvents(t *testing.T) {
 		measured bool
 	}{
 		{"in third", 3, 0, "turbo_lag", map[string]string{"gear": "3"}, true},
-		{"gear unknown", math.NaN(), 0, "turbo_lag", map[string]string{"gear": "0"}, true},
+		// No gear channel: the gear is unknown, so the tag is absent, never
+		// a made-up "0".
+		{"gear unknown", math.NaN(), 0, "turbo_lag", map[string]string{}, true},
+		{"in neutral", 0, 0, "turbo_lag", map[string]string{"gear": "0"}, true},
 		{"lifted off", 2, 1.5, "turbo_lag_discarded", map[string]string{"gear": "2", "reason": "throttle lift-off"}, false},
 	}
 	for _, c := range cases {
@@ -284,7 +287,9 @@ func TestLagEvents(t *testing.T) {
 				t.Fatalf("%d events: %+v", len(evs), evs)
 			}
 			e := evs[0]
-			if e.Kind != c.kind || e.Name != "boost_response" || e.Tags["gear"] != c.tags["gear"] || !e.Start.Equal(at(1)) {
+			gear, hasGear := e.Tags["gear"]
+			wantGear, wantHas := c.tags["gear"]
+			if e.Kind != c.kind || e.Name != "boost_response" || gear != wantGear || hasGear != wantHas || !e.Start.Equal(at(1)) {
 				t.Errorf("event %s %s tags %v start %v", e.Kind, e.Name, e.Tags, e.Start)
 			}
 			if !c.measured {
