@@ -84,6 +84,21 @@ type Set struct {
 
 	ve    *veEstimate
 	guard *turboGuard
+	warn  *warnings
+	power *power
+}
+
+// Acknowledge acknowledges a raised warning: a latched one (such as
+// switched_off_hot) whose condition has gone clears at the next sample,
+// and a warning_acknowledged event, tagged with a.Via and a.By, records it.
+// It returns ErrNoWarning for a rule this setup does not evaluate and
+// ErrNotRaised for one that is not raised. Safe for concurrent use with
+// the pipeline.
+func (s *Set) Acknowledge(a Ack) error {
+	if s.warn == nil {
+		return fmt.Errorf("%w: %q (this setup evaluates no warnings)", ErrNoWarning, a.Rule)
+	}
+	return s.warn.acknowledge(a)
 }
 
 // VETableHandler returns the handler that writes the measured-VE table as
@@ -249,6 +264,7 @@ func (s *Set) buildDetectors(cfg Config, reg *pipeline.Registry, made map[string
 	}
 	s.LeftOut = leftOut
 	if w != nil {
+		s.warn = w
 		s.Derivations = append(s.Derivations, w)
 	}
 	return nil
