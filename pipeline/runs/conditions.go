@@ -2,7 +2,7 @@ package runs
 
 import (
 	"fmt"
-	"net/http"
+	"net/url"
 	"strconv"
 	"time"
 
@@ -77,9 +77,9 @@ func checkConditions(c record.Conditions) error {
 
 // parseEntered reads the optional form fields pressure_kpa, temperature_c
 // and humidity_percent: conditions read off a weather station.
-func parseEntered(req *http.Request, c *record.Conditions) error {
+func parseEntered(form url.Values, c *record.Conditions) error {
 	for _, f := range conditionFields(c) {
-		s := req.FormValue(f.form)
+		s := form.Get(f.form)
 		if s == "" {
 			continue
 		}

@@ -1,8 +1,7 @@
 package runs
 
 import (
-	"net/http"
-	"net/http/httptest"
+	"net/url"
 	"strings"
 	"testing"
 	"time"
@@ -24,10 +23,12 @@ func TestParseEntered(t *testing.T) {
 		{"temperature_c=abc", "temperature_c", 0},
 	}
 	for _, c := range cases {
-		req := httptest.NewRequest(http.MethodPost, "/api/runs/start", strings.NewReader(c.form))
-		req.Header.Set("Content-Type", "application/x-www-form-urlencoded")
+		form, err := url.ParseQuery(c.form)
+		if err != nil {
+			t.Fatal(err)
+		}
 		var cond record.Conditions
-		err := parseEntered(req, &cond)
+		err = parseEntered(form, &cond)
 		if (c.wantErr == "") != (err == nil) || (err != nil && !strings.Contains(err.Error(), c.wantErr)) {
 			t.Errorf("%s: err %v, want %q", c.form, err, c.wantErr)
 		}

@@ -61,6 +61,10 @@ type Deps struct {
 	Forward  record.Forwarder     // the push backlog; nil: none
 	Log      *slog.Logger         // nil: discarded
 	Now      func() time.Time     // the clock; nil: time.Now
+	// Acknowledge acknowledges a raised warning for the warning/acknowledge
+	// command, recording that it came by path via from by; nil: the
+	// command answers that no warnings are evaluated.
+	Acknowledge func(rule, via, by string) error
 }
 
 // Controller owns the recorder subscription and the run being recorded.
@@ -76,6 +80,7 @@ type Controller struct {
 	forward record.Forwarder
 	log     *slog.Logger
 	now     func() time.Time
+	ack     func(rule, via, by string) error
 
 	mu      sync.Mutex // guards everything below
 	publish func([]byte)
@@ -96,7 +101,7 @@ type Controller struct {
 // being recorded until Start or StartUnlessManual.
 func New(cfg Config, d Deps) *Controller {
 	c := &Controller{cfg: cfg, reg: d.Registry, sub: d.Sub, store: d.Store, emit: d.Emit, publish: d.Publish,
-		forward: d.Forward, log: d.Log, now: d.Now}
+		forward: d.Forward, log: d.Log, now: d.Now, ack: d.Acknowledge}
 	if c.emit == nil {
 		c.emit = func(pipeline.Event) {}
 	}
