@@ -134,5 +134,3 @@ func contains(list []string, s string) bool {
 	}
 	return false
 }
-
-
