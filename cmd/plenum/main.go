@@ -76,6 +76,8 @@ func run(args []string, stdout, stderr io.Writer) int {
 		err = cmdRunControl("start", args[1:], stdout)
 	case "run-stop":
 		err = cmdRunControl("stop", args[1:], stdout)
+	case "warning-ack":
+		err = cmdWarningAck(args[1:], stdout)
 	default:
 		err = usageError{fmt.Sprintf("unknown command %q: want demo, run, run-start, run-stop, check, probe, replay, plot or version", args[0])}
 	}

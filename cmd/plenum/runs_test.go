@@ -134,3 +134,35 @@ func TestAutoTriggerRecordsThePulls(t *testing.T) {
 		t.Fatalf("the triggered run lasted %v: it should hold the pulls, not the whole cycle", d)
 	}
 }
+
+// TestWarningAckCommand: `plenum warning-ack` reaches the daemon's
+// warnings through its HTTP API: an unknown rule and a rule that is not
+// raised are refused with the daemon's words, and a missing -rule is a
+// usage error.
+func TestWarningAckCommand(t *testing.T) {
+	ctx, cancel := context.WithCancel(context.Background())
+	defer cancel()
+	httpAddr, _, done := startDemo(t, ctx, 4, func(c *config.Config) {
+		c.Record.Dir = t.TempDir()
+		c.Record.Manual = true
+		c.Record.ControlToken = "s3cret-token"
+	})
+	t.Setenv("PLENUM_CONTROL_TOKEN", "s3cret-token")
+	cases := []struct {
+		args     []string
+		code     int
+		inStderr string
+	}{
+		{[]string{"warning-ack", "-addr", httpAddr}, 2, "needs -rule"},
+		{[]string{"warning-ack", "-addr", httpAddr, "-rule", "switched_off_warm"}, 1, "no such warning"},
+		{[]string{"warning-ack", "-addr", httpAddr, "-rule", "switched_off_hot", "-by", "tester"}, 1, "warning is not raised"},
+	}
+	for _, c := range cases {
+		var out, errb bytes.Buffer
+		if code := run(c.args, &out, &errb); code != c.code || !strings.Contains(errb.String(), c.inStderr) {
+			t.Errorf("%v: exit %d, stderr %q; want %d, %q", c.args, code, errb.String(), c.code, c.inStderr)
+		}
+	}
+	cancel()
+	<-done
+}
