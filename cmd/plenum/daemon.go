@@ -128,7 +128,8 @@ func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *s
 		}
 		// The recorder must see every sample: a ring of several seconds.
 		deps := runs.Deps{Registry: reg, Sub: p.Subscribe("recorder", 1<<18), Store: p.Store(), Emit: p.Emit, Log: log,
-			Acknowledge: func(rule, via, by string) error { return set.Acknowledge(derived.Ack{Rule: rule, Via: via, By: by}) }}
+			Acknowledge:     func(rule, via, by string) error { return set.Acknowledge(derived.Ack{Rule: rule, Via: via, By: by}) },
+			EnterConditions: enterConditions(set)}
 		if pusher != nil {
 			deps.Forward = pusher
 		}

@@ -5,6 +5,7 @@ import (
 	"flag"
 	"fmt"
 	"io"
+	"math"
 	"net/http"
 	"net/url"
 	"os"
@@ -13,6 +14,9 @@ import (
 	"time"
 
 	"github.com/plenum-engine/plenum/cmd/plenum/config"
+	"github.com/plenum-engine/plenum/derive"
+	"github.com/plenum-engine/plenum/pipeline/derived"
+	"github.com/plenum-engine/plenum/pipeline/record"
 	"github.com/plenum-engine/plenum/pipeline/runs"
 )
 
@@ -34,6 +38,23 @@ func runsConfig(cfg *config.Config) (runs.Config, error) {
 		AutoTrigger:  cfg.Record.AutoTrigger,
 		ControlToken: tok,
 	}, nil
+}
+
+// enterConditions hands the conditions entered for a run to the power
+// correction, in its units (NaN: not entered).
+func enterConditions(set *derived.Set) func(record.Conditions) string {
+	return func(c record.Conditions) string {
+		if c.Empty() {
+			return set.EnterConditions(nil)
+		}
+		v := func(p *float64) float64 {
+			if p == nil {
+				return math.NaN()
+			}
+			return *p
+		}
+		return set.EnterConditions(&derive.Ambient{Pressure: v(c.PressurePa), Temperature: v(c.TemperatureC), Humidity: v(c.RelativeHumidity)})
+	}
 }
 
 // minTokenLen is the shortest control token accepted: 16 characters of a

@@ -65,6 +65,11 @@ type Deps struct {
 	// command, recording that it came by path via from by; nil: the
 	// command answers that no warnings are evaluated.
 	Acknowledge func(rule, via, by string) error
+	// EnterConditions hands the conditions entered for a run to the power
+	// correction (empty: back to the ambient channels) and returns the
+	// standard power is corrected to, or "" when no power is derived; nil:
+	// entered conditions are only recorded.
+	EnterConditions func(record.Conditions) string
 }
 
 // Controller owns the recorder subscription and the run being recorded.
@@ -81,12 +86,14 @@ type Controller struct {
 	log     *slog.Logger
 	now     func() time.Time
 	ack     func(rule, via, by string) error
+	enter   func(record.Conditions) string
 
 	mu      sync.Mutex // guards everything below
 	publish func([]byte)
 	cur     *record.Recorder
 	auto    bool  // the current run was started by the pull trigger
 	syncErr error // the first sync failure, logged once
+	cond    pendingConditions
 
 	// What the recorder failed to keep: samples its subscription dropped
 	// and points the disk refused. A rise raises recorder_behind.
@@ -101,7 +108,7 @@ type Controller struct {
 // being recorded until Start or StartUnlessManual.
 func New(cfg Config, d Deps) *Controller {
 	c := &Controller{cfg: cfg, reg: d.Registry, sub: d.Sub, store: d.Store, emit: d.Emit, publish: d.Publish,
-		forward: d.Forward, log: d.Log, now: d.Now, ack: d.Acknowledge}
+		forward: d.Forward, log: d.Log, now: d.Now, ack: d.Acknowledge, enter: d.EnterConditions}
 	if c.emit == nil {
 		c.emit = func(pipeline.Event) {}
 	}
@@ -151,13 +158,16 @@ func (c *Controller) start(req StartRequest, auto bool) (string, error) {
 	}
 	now := c.now()
 	id := now.UTC().Format("20060102T150405.000Z")
+	cond, pending := c.startConditions(req.Entered, now)
 	rec, err := record.Open(record.Config{Dir: c.cfg.Dir, Run: id, Vehicle: c.cfg.Vehicle, Label: req.Label, Notes: req.Notes,
 		SyncEvery: c.cfg.SyncEvery, RotateBytes: c.cfg.RotateBytes, ConfigYAML: c.cfg.ConfigYAML,
-		Conditions: c.conditions(req.Entered, now), Forward: c.forward}, c.reg)
+		Conditions: cond, Correction: c.enterConditions(req.Entered), Forward: c.forward}, c.reg)
 	if err != nil {
+		c.enterConditions(record.Conditions{})
 		return "", fmt.Errorf("opening run %s: %w", id, err)
 	}
 	c.cur, c.auto = rec, auto
+	c.cond = pendingConditions{on: pending, since: now, entered: req.Entered}
 	c.emit(pipeline.Event{Kind: "run_started", Name: id, Start: now, Tags: map[string]string{"label": req.Label}})
 	return id, nil
 }
@@ -173,7 +183,9 @@ func (c *Controller) Stop() (record.Summary, error) {
 	}
 	rec := c.cur
 	c.cur, c.auto = nil, false
+	c.cond = pendingConditions{}
 	err := rec.Close()
+	c.enterConditions(record.Conditions{})
 	c.lostClosed += rec.Lost()
 	c.writtenClosed += rec.Points()
 	if n := rec.ForwardFailures(); n > 0 {
@@ -239,7 +251,9 @@ func (c *Controller) Run(ctx context.Context) {
 		case <-c.sub.C():
 			drain()
 		case <-tick.C:
-			c.watchLoss(c.now())
+			now := c.now()
+			c.watchLoss(now)
+			c.fillConditions(now)
 			c.sync()
 		}
 	}
