@@ -127,7 +127,9 @@ func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *s
 			}
 		}
 		// The recorder must see every sample: a ring of several seconds.
-		deps := runs.Deps{Registry: reg, Sub: p.Subscribe("recorder", 1<<18), Store: p.Store(), Emit: p.Emit, Log: log}
+		deps := runs.Deps{Registry: reg, Sub: p.Subscribe("recorder", 1<<18), Store: p.Store(), Emit: p.Emit, Log: log,
+			Acknowledge:     func(rule, via, by string) error { return set.Acknowledge(derived.Ack{Rule: rule, Via: via, By: by}) },
+			EnterConditions: enterConditions(set)}
 		if pusher != nil {
 			deps.Forward = pusher
 		}
@@ -136,7 +138,9 @@ func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *s
 			return err
 		}
 		rr = runs.New(rc, deps)
-		mux.Handle("/api/runs/", rr.Handler())
+		api := rr.Handler()
+		mux.Handle("/api/runs/", api)
+		mux.Handle("/api/warnings/", api)
 	}
 	if cfg.StateDir != "" {
 		ob, err := mqttpub.OpenOutbox(filepath.Join(cfg.StateDir, "outbox-"+cfg.Vehicle), 10000)

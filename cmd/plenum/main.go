@@ -76,6 +76,8 @@ func run(args []string, stdout, stderr io.Writer) int {
 		err = cmdRunControl("start", args[1:], stdout)
 	case "run-stop":
 		err = cmdRunControl("stop", args[1:], stdout)
+	case "warning-ack":
+		err = cmdWarningAck(args[1:], stdout)
 	default:
 		err = usageError{fmt.Sprintf("unknown command %q: want demo, run, run-start, run-stop, check, probe, replay, plot or version", args[0])}
 	}
@@ -126,6 +128,7 @@ func cmdDemo(ctx context.Context, args []string, stdout io.Writer, log *slog.Log
 	dur := fs.Duration("for", 0, "stop by itself after this long (0: run until interrupted)")
 	scale := fs.Float64("time-scale", 1, "simulated seconds per real second")
 	recordDir := fs.String("record", "", "record every sample and event in line protocol under this directory")
+	stateDir := fs.String("state-dir", "", "keep the turbo state and the MQTT outbox in this directory across demos (default: a fresh temporary directory, removed at exit)")
 	if err := fs.Parse(args); err != nil {
 		return usageError{err.Error()}
 	}
@@ -140,6 +143,18 @@ func cmdDemo(ctx context.Context, args []string, stdout io.Writer, log *slog.Log
 	}
 	cfg.Sim.TimeScale = *scale
 	cfg.Record.Dir = *recordDir
+	// The demo starts cold: its own turbo state and outbox, never those of
+	// earlier demos or of `run` in the user's cache directory.
+	cfg.StateDir = *stateDir
+	if cfg.StateDir == "" {
+		dir, err := os.MkdirTemp("", "plenum-demo-")
+		if err != nil {
+			return fmt.Errorf("demo state directory: %w", err)
+		}
+		defer os.RemoveAll(dir)
+		cfg.StateDir = dir
+	}
+	fmt.Fprintf(stdout, "state:    %s\n", cfg.StateDir)
 	if *dur > 0 {
 		var cancel context.CancelFunc
 		ctx, cancel = context.WithTimeout(ctx, *dur)

@@ -4,6 +4,7 @@ import (
 	"bytes"
 	"os"
 	"path/filepath"
+	"regexp"
 	"strings"
 	"testing"
 
@@ -84,5 +85,42 @@ func TestProbeSimulatedECU(t *testing.T) {
 	cfg := "vehicle: x\nengine: {displacement_l: 2, volumetric_efficiency: 0.9}\nsimulator: {}\nserial: [{name: m, inputs: []}]\n" + snippet
 	if _, err := config.Parse("snippet.yaml", []byte(cfg)); err != nil {
 		t.Fatalf("probe's snippet does not check: %v\n%s", err, cfg)
+	}
+}
+
+// TestDemoStartsFresh: the demo keeps no state in the user's cache
+// directory (where `run` keeps it by default): it starts cold from a fresh
+// temporary directory, unless -state-dir names one to keep.
+func TestDemoStartsFresh(t *testing.T) {
+	cache := t.TempDir()
+	t.Setenv("XDG_CACHE_HOME", cache)
+	t.Setenv("HOME", cache)
+	demo := func(extra ...string) string {
+		t.Helper()
+		var out, errb bytes.Buffer
+		args := append([]string{"demo", "-for", "1500ms", "-http", "127.0.0.1:0", "-mqtt", "127.0.0.1:0"}, extra...)
+		if code := run(args, &out, &errb); code != 0 {
+			t.Fatalf("demo %v: exit %d: %s", extra, code, errb.String())
+		}
+		return out.String()
+	}
+	out := demo()
+	if entries, _ := os.ReadDir(cache); len(entries) != 0 {
+		t.Errorf("the demo wrote into the user's cache directory: %v", entries)
+	}
+	m := regexp.MustCompile(`state: +(\S+)`).FindStringSubmatch(out)
+	if m == nil {
+		t.Fatalf("the demo does not say where its state is:\n%s", out)
+	}
+	if _, err := os.Stat(m[1]); !os.IsNotExist(err) {
+		t.Errorf("the demo's temporary state %s outlived it (%v)", m[1], err)
+	}
+	keep := filepath.Join(t.TempDir(), "state")
+	out = demo("-state-dir", keep)
+	if !strings.Contains(out, "state:    "+keep) {
+		t.Errorf("-state-dir not used:\n%s", out)
+	}
+	if f, _ := filepath.Glob(filepath.Join(keep, "turbo-*.json")); len(f) != 1 {
+		t.Errorf("no turbo state kept in %s: %v", keep, f)
 	}
 }

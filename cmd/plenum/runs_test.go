@@ -4,9 +4,11 @@ import (
 	"bytes"
 	"context"
 	"encoding/json"
+	"math"
 	"net/http"
 	"os"
 	"path/filepath"
+	"slices"
 	"strings"
 	"testing"
 	"time"
@@ -133,4 +135,113 @@ func TestAutoTriggerRecordsThePulls(t *testing.T) {
 	if d := sum.End.Sub(sum.Start); d > 10*time.Second {
 		t.Fatalf("the triggered run lasted %v: it should hold the pulls, not the whole cycle", d)
 	}
+}
+
+// TestWarningAckCommand: `plenum warning-ack` reaches the daemon's
+// warnings through its HTTP API: an unknown rule and a rule that is not
+// raised are refused with the daemon's words, and a missing -rule is a
+// usage error.
+func TestWarningAckCommand(t *testing.T) {
+	ctx, cancel := context.WithCancel(context.Background())
+	defer cancel()
+	httpAddr, _, done := startDemo(t, ctx, 4, func(c *config.Config) {
+		c.Record.Dir = t.TempDir()
+		c.Record.Manual = true
+		c.Record.ControlToken = "s3cret-token"
+	})
+	t.Setenv("PLENUM_CONTROL_TOKEN", "s3cret-token")
+	cases := []struct {
+		args     []string
+		code     int
+		inStderr string
+	}{
+		{[]string{"warning-ack", "-addr", httpAddr}, 2, "needs -rule"},
+		{[]string{"warning-ack", "-addr", httpAddr, "-rule", "switched_off_warm"}, 1, "no such warning"},
+		{[]string{"warning-ack", "-addr", httpAddr, "-rule", "switched_off_hot", "-by", "tester"}, 1, "warning is not raised"},
+	}
+	for _, c := range cases {
+		var out, errb bytes.Buffer
+		if code := run(c.args, &out, &errb); code != c.code || !strings.Contains(errb.String(), c.inStderr) {
+			t.Errorf("%v: exit %d, stderr %q; want %d, %q", c.args, code, errb.String(), c.code, c.inStderr)
+		}
+	}
+	cancel()
+	<-done
+}
+
+// TestEnteredConditionsCorrectTheRun: conditions entered with run-start
+// are the ones the run's power correction uses, whatever the demo's
+// ambient sensors say, and the summary names them and the standard.
+//
+// SAE J1349 (JUN1990 and later): CF = 1.18·(99/p_d)·√((T+273)/298) − 0.18.
+// Entered 98.2 kPa, 21.5 °C, 0 % humidity (p_d = 98.2 kPa), by hand:
+// 1.18 · (99/98.2 = 1.0081466) · (√(294.5/298) = 0.9941102) − 0.18
+// = 1.1826064 − 0.18 = 1.0026064.
+func TestEnteredConditionsCorrectTheRun(t *testing.T) {
+	recDir := t.TempDir()
+	ctx, cancel := context.WithCancel(context.Background())
+	defer cancel()
+	httpAddr, _, done := startDemo(t, ctx, 4, func(c *config.Config) {
+		c.Record.Dir = recDir
+		c.Record.Manual = true
+		c.Record.ControlToken = "s3cret-token"
+	})
+	t.Setenv("PLENUM_CONTROL_TOKEN", "s3cret-token")
+	var out, errb bytes.Buffer
+	if code := run([]string{"run-start", "-addr", httpAddr, "-pressure-kpa", "98.2", "-temperature-c", "21.5", "-humidity-percent", "0"}, &out, &errb); code != 0 {
+		t.Fatalf("run-start: %d %s", code, errb.String())
+	}
+	var started map[string]string
+	if err := json.Unmarshal(out.Bytes(), &started); err != nil || started["run"] == "" {
+		t.Fatalf("run-start printed %q (%v)", out.String(), err)
+	}
+	runDir := filepath.Join(recDir, started["run"])
+	factors := func() []float64 {
+		files, _ := filepath.Glob(filepath.Join(runDir, "*.lp"))
+		rec, err := record.ReadAll(files)
+		if err != nil {
+			return nil // a line being written: read again
+		}
+		var cf []float64
+		for _, p := range rec.Points {
+			if rec.Channel(p) == "correction_factor" {
+				cf = append(cf, p.Value)
+			}
+		}
+		return cf
+	}
+	deadline := time.Now().Add(20 * time.Second)
+	for len(factors()) < 20 {
+		if time.Now().After(deadline) {
+			t.Fatal("no correction factors recorded within 20 s")
+		}
+		time.Sleep(50 * time.Millisecond)
+	}
+	out.Reset()
+	if code := run([]string{"run-stop", "-addr", httpAddr}, &out, &errb); code != 0 {
+		t.Fatalf("run-stop: %d %s", code, errb.String())
+	}
+	var sum record.Summary
+	if err := json.Unmarshal(out.Bytes(), &sum); err != nil {
+		t.Fatal(err)
+	}
+	if c := sum.Correction; c == nil || c.Standard != "sae_j1349" || c.Entered == nil || c.Entered.PressurePa == nil ||
+		*c.Entered.PressurePa != 98200 || *c.Entered.TemperatureC != 21.5 || *c.Entered.RelativeHumidity != 0 || c.Others != "" {
+		t.Errorf("summary's correction: %s", out.String())
+	}
+	// Samples derived just before the start but drained after it may be
+	// in the run with the sensors' factor; from the first entered one on,
+	// every factor is the entered conditions'.
+	cf := factors()
+	first := slices.IndexFunc(cf, func(v float64) bool { return math.Abs(v-1.0026064) <= 5e-7 })
+	if first < 0 || first > 5 || len(cf)-first < 15 {
+		t.Fatalf("%d correction factors, the entered one from %d on: %v", len(cf), first, cf)
+	}
+	for i, v := range cf[first:] {
+		if math.Abs(v-1.0026064) > 5e-7 {
+			t.Fatalf("correction factor %d of %d is %.7f, want 1.0026064 (the entered conditions)", i, len(cf), v)
+		}
+	}
+	cancel()
+	<-done
 }

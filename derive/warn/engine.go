@@ -157,6 +157,16 @@ func (e *Engine) Rules() int { return len(e.rules) }
 // RuleName returns the name of rule i.
 func (e *Engine) RuleName(i int) string { return e.rules[i].r.Name }
 
+// Rule returns the index of the rule named name, or -1.
+func (e *Engine) Rule(name string) int {
+	for i := range e.rules {
+		if e.rules[i].r.Name == name {
+			return i
+		}
+	}
+	return -1
+}
+
 // Raised reports whether rule i is raised.
 func (e *Engine) Raised(i int) bool { return i >= 0 && i < len(e.rules) && e.rules[i].raised }
 

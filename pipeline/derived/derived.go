@@ -87,6 +87,39 @@ type Set struct {
 
 	ve    *veEstimate
 	guard *turboGuard
+	warn  *warnings
+	power *power
+}
+
+// EnterConditions makes the power correction use conditions entered for a
+// run (read off a weather station) instead of the ambient channels: a
+// field of e that is not NaN wins; a NaN field leaves the ambient channel,
+// or the default, in use. A nil e goes back to the ambient channels. It
+// returns the name of the standard power is corrected to, or "" when this
+// setup derives no power. Safe for concurrent use with the pipeline.
+func (s *Set) EnterConditions(e *derive.Ambient) string {
+	if s.power == nil {
+		return ""
+	}
+	if e != nil {
+		x := *e
+		e = &x
+	}
+	s.power.entered.Store(e)
+	return s.power.std.String()
+}
+
+// Acknowledge acknowledges a raised warning: a latched one (such as
+// switched_off_hot) whose condition has gone clears at the next sample,
+// and a warning_acknowledged event, tagged with a.Via and a.By, records it.
+// It returns ErrNoWarning for a rule this setup does not evaluate and
+// ErrNotRaised for one that is not raised. Safe for concurrent use with
+// the pipeline.
+func (s *Set) Acknowledge(a Ack) error {
+	if s.warn == nil {
+		return fmt.Errorf("%w: %q (this setup evaluates no warnings)", ErrNoWarning, a.Rule)
+	}
+	return s.warn.acknowledge(a)
 }
 
 // VETableHandler returns the handler that writes the measured-VE table as
@@ -221,7 +254,8 @@ func (s *Set) buildDetectors(cfg Config, reg *pipeline.Registry, made map[string
 		if err != nil {
 			return fmt.Errorf("power standard: %w", err)
 		}
-		s.Derivations = append(s.Derivations, &power{std: std, amb: derive.Ambient{Pressure: baro, Temperature: 25, Humidity: 0}})
+		s.power = &power{std: std, amb: derive.Ambient{Pressure: baro, Temperature: 25, Humidity: 0}}
+		s.Derivations = append(s.Derivations, s.power)
 	}
 	if has("compressor_outlet_pressure") && has("charge_temp_pre_cooler") && has("ambient_temp") {
 		s.Derivations = append(s.Derivations, &chargeAir{ref: derive.StandardDay(), baro: baro, filterDrop: cfg.Turbo.FilterDrop})
@@ -252,6 +286,7 @@ func (s *Set) buildDetectors(cfg Config, reg *pipeline.Registry, made map[string
 	}
 	s.LeftOut = leftOut
 	if w != nil {
+		s.warn = w
 		s.Derivations = append(s.Derivations, w)
 		s.Rules = w.rules()
 	}

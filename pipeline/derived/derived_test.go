@@ -359,3 +359,59 @@ func TestDerive(t *testing.T) {
 		})
 	}
 }
+
+// TestEnteredConditionsCorrectPower: conditions entered for a run win over
+// the ambient channels in the power correction, field by field, until they
+// are withdrawn.
+//
+// SAE J1349 (JUN1990 and later, spark ignition): CF = 1.18·(99/p_d)·
+// √((T+273)/298) − 0.18, p_d dry-air pressure in kPa, T in °C. Worked by
+// hand for the entered 98.2 kPa, 21.5 °C, dry air (p_d = 98.2 kPa):
+//
+//	99/98.2            = 1.0081466
+//	(21.5+273)/298     = 0.9882550, √ = 0.9941102
+//	1.18·1.0081466·0.9941102 = 1.1826064
+//	CF = 1.1826064 − 0.18 = 1.0026064
+//
+// With only the temperature entered and the sensor's 100 kPa dry:
+// 1.18·0.99·0.9941102 − 0.18 = 0.9813195; with the sensors alone (100 kPa,
+// 30 °C, dry): 1.18·0.99·√(303/298) − 0.18 = 0.9979596.
+func TestEnteredConditionsCorrectPower(t *testing.T) {
+	s, err := Build(demoConfig(), registry(t, demoChannels...))
+	if err != nil {
+		t.Fatal(err)
+	}
+	d := find(t, s, "power")
+	nan := math.NaN()
+	// dyno torque 200 N·m at 3000 rpm; sensors: 100 kPa, 30 °C, dry.
+	in := []float64{200, 3000, 100000, 30, 0, nan}
+	out := make([]float64, len(d.Outputs()))
+	observed := derive.PowerFromTorque(200, 3000)
+	cases := []struct {
+		name    string
+		entered *derive.Ambient
+		wantCF  float64
+	}{
+		{"sensors", nil, 0.9979596},
+		{"entered", &derive.Ambient{Pressure: 98200, Temperature: 21.5, Humidity: 0}, 1.0026064},
+		{"temperature entered", &derive.Ambient{Pressure: nan, Temperature: 21.5, Humidity: nan}, 0.9813195},
+		{"withdrawn", nil, 0.9979596},
+	}
+	for _, c := range cases {
+		if std := s.EnterConditions(c.entered); std != "sae_j1349" {
+			t.Fatalf("%s: standard %q", c.name, std)
+		}
+		d.Derive(at(0), in, out)
+		if math.Abs(out[2]-c.wantCF) > 5e-7 || math.Abs(out[1]-observed*c.wantCF) > 0.01 {
+			t.Errorf("%s: correction factor %.7f, corrected %.3f W; want %.7f, %.3f W", c.name, out[2], out[1], c.wantCF, observed*c.wantCF)
+		}
+	}
+	// Without a dyno there is no power to correct.
+	s2, err := Build(demoConfig(), registry(t, "engine_speed", "baro_pressure"))
+	if err != nil {
+		t.Fatal(err)
+	}
+	if std := s2.EnterConditions(&derive.Ambient{Pressure: 98200}); std != "" {
+		t.Errorf("no power derived, yet standard %q", std)
+	}
+}

@@ -274,7 +274,10 @@ func TestLagEvents(t *testing.T) {
 		measured bool
 	}{
 		{"in third", 3, 0, "turbo_lag", map[string]string{"gear": "3"}, true},
-		{"gear unknown", math.NaN(), 0, "turbo_lag", map[string]string{"gear": "0"}, true},
+		// No gear channel: the gear is unknown, so the tag is absent, never
+		// a made-up "0".
+		{"gear unknown", math.NaN(), 0, "turbo_lag", map[string]string{}, true},
+		{"in neutral", 0, 0, "turbo_lag", map[string]string{"gear": "0"}, true},
 		{"lifted off", 2, 1.5, "turbo_lag_discarded", map[string]string{"gear": "2", "reason": "throttle lift-off"}, false},
 	}
 	for _, c := range cases {
@@ -284,7 +287,9 @@ func TestLagEvents(t *testing.T) {
 				t.Fatalf("%d events: %+v", len(evs), evs)
 			}
 			e := evs[0]
-			if e.Kind != c.kind || e.Name != "boost_response" || e.Tags["gear"] != c.tags["gear"] || !e.Start.Equal(at(1)) {
+			gear, hasGear := e.Tags["gear"]
+			wantGear, wantHas := c.tags["gear"]
+			if e.Kind != c.kind || e.Name != "boost_response" || gear != wantGear || hasGear != wantHas || !e.Start.Equal(at(1)) {
 				t.Errorf("event %s %s tags %v start %v", e.Kind, e.Name, e.Tags, e.Start)
 			}
 			if !c.measured {
@@ -498,5 +503,72 @@ func TestVETableServedWhileDeriving(t *testing.T) {
 		if !reading && strings.Count(rec.Body.String(), "0.9000") != 13 {
 			t.Errorf("after every engine speed: %q", rec.Body.String())
 		}
+	}
+}
+
+// TestAcknowledgeLatchedWarning: switched_off_hot stays raised after its
+// condition has gone until someone acknowledges it; the acknowledgement is
+// an event saying by what path and by whom, and the warning then clears.
+// Acknowledging an unknown rule or one that is not raised is refused.
+func TestAcknowledgeLatchedWarning(t *testing.T) {
+	s, err := Build(demoConfig(), registry(t, demoChannels...))
+	if err != nil {
+		t.Fatal(err)
+	}
+	d := find(t, s, "warnings")
+	var evs []pipeline.Event
+	d.(pipeline.EventSink).SetEmitter(func(e pipeline.Event) { evs = append(evs, e) })
+	hot := -1
+	for i, in := range d.Inputs() {
+		if in.Name == "turbo_shutdown_hot" {
+			hot = i
+		}
+	}
+	rule := -1
+	for i, c := range d.Outputs() {
+		if c.Name == "warning_switched_off_hot" {
+			rule = i
+		}
+	}
+	if hot < 0 || rule < 0 {
+		t.Fatalf("no turbo_shutdown_hot input (%d) or switched_off_hot output (%d)", hot, rule)
+	}
+	in := make([]float64, len(d.Inputs()))
+	for i := range in {
+		in[i] = math.NaN()
+	}
+	out := make([]float64, len(d.Outputs()))
+	feed := func(sec, v float64) {
+		in[hot] = v
+		d.Derive(at(sec), in, out)
+	}
+	if err := s.Acknowledge(Ack{Rule: "switched_off_hot", Via: "http"}); !errors.Is(err, ErrNotRaised) {
+		t.Errorf("acknowledging before it is raised: %v, want ErrNotRaised", err)
+	}
+	if err := s.Acknowledge(Ack{Rule: "switched_off_warm", Via: "http"}); !errors.Is(err, ErrNoWarning) {
+		t.Errorf("acknowledging an unknown rule: %v, want ErrNoWarning", err)
+	}
+	feed(0, 1)
+	feed(0.2, 1)
+	feed(1, 0)
+	feed(10, 0.1)
+	if out[rule] != 1 {
+		t.Fatalf("switched_off_hot %v after its condition went, want 1 (latched)", out[rule])
+	}
+	if err := s.Acknowledge(Ack{Rule: "switched_off_hot", Via: "mqtt", By: "pit crew"}); err != nil {
+		t.Fatalf("acknowledge: %v", err)
+	}
+	evs = evs[:0]
+	feed(11, 0.1)
+	if out[rule] != 0 {
+		t.Errorf("switched_off_hot %v after the acknowledgement, want 0", out[rule])
+	}
+	if len(evs) != 2 || evs[0].Kind != "warning_acknowledged" || evs[0].Name != "switched_off_hot" ||
+		evs[0].Tags["via"] != "mqtt" || evs[0].Tags["by"] != "pit crew" || !evs[0].End.Equal(at(11)) ||
+		evs[1].Kind != "warning_cleared" {
+		t.Errorf("events %+v", evs)
+	}
+	if err := s.Acknowledge(Ack{Rule: "switched_off_hot", Via: "cli"}); !errors.Is(err, ErrNotRaised) {
+		t.Errorf("acknowledging a cleared warning: %v, want ErrNotRaised", err)
 	}
 }

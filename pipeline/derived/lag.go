@@ -16,6 +16,10 @@ type lagDetector struct {
 	det *lag.Detector
 }
 
+// unknownGear stands for "no gear reading" in the detector: an event whose
+// tip-in had no gear carries no gear tag rather than a made-up value.
+const unknownGear = math.MinInt
+
 // Name names the detector.
 func (d *lagDetector) Name() string { return "turbo_lag" }
 
@@ -30,7 +34,7 @@ func (d *lagDetector) Outputs() []pipeline.Channel { return nil }
 // Derive feeds the detector and emits a turbo_lag (or turbo_lag_discarded)
 // event when a measurement ends.
 func (d *lagDetector) Derive(t time.Time, in, _ []float64) uint64 {
-	gear := 0
+	gear := unknownGear
 	if !math.IsNaN(in[3]) {
 		gear = int(math.Round(in[3]))
 	}
@@ -39,7 +43,10 @@ func (d *lagDetector) Derive(t time.Time, in, _ []float64) uint64 {
 		return 0
 	}
 	kind := "turbo_lag"
-	tags := map[string]string{"gear": strconv.Itoa(ev.Gear)}
+	tags := map[string]string{}
+	if ev.Gear != unknownGear {
+		tags["gear"] = strconv.Itoa(ev.Gear)
+	}
 	if ev.Discarded {
 		kind = "turbo_lag_discarded"
 		tags["reason"] = ev.Reason

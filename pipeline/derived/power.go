@@ -2,6 +2,7 @@ package derived
 
 import (
 	"math"
+	"sync/atomic"
 	"time"
 
 	"github.com/plenum-engine/plenum/derive"
@@ -12,6 +13,9 @@ import (
 type power struct {
 	std derive.Standard
 	amb derive.Ambient // used where ambient channels are missing
+	// entered, when set, are conditions entered for the run: a field that
+	// is not NaN wins over the ambient channel. Set from another goroutine.
+	entered atomic.Pointer[derive.Ambient]
 }
 
 // Name names the derivation.
@@ -34,8 +38,9 @@ func (d *power) Outputs() []pipeline.Channel {
 	return out
 }
 
-// Derive computes power, corrects it for the ambient conditions (measured
-// where there are channels) and computes BSFC above 1 kW.
+// Derive computes power, corrects it for the ambient conditions (entered
+// for the run, else measured where there are channels, else the defaults)
+// and computes BSFC above 1 kW.
 func (d *power) Derive(_ time.Time, in, out []float64) uint64 {
 	a := d.amb
 	if !math.IsNaN(in[2]) {
@@ -46,6 +51,17 @@ func (d *power) Derive(_ time.Time, in, out []float64) uint64 {
 	}
 	if !math.IsNaN(in[4]) {
 		a.Humidity = in[4]
+	}
+	if e := d.entered.Load(); e != nil {
+		if !math.IsNaN(e.Pressure) {
+			a.Pressure = e.Pressure
+		}
+		if !math.IsNaN(e.Temperature) {
+			a.Temperature = e.Temperature
+		}
+		if !math.IsNaN(e.Humidity) {
+			a.Humidity = e.Humidity
+		}
 	}
 	p := derive.PowerFromTorque(in[0], in[1])
 	out[0] = p

@@ -1,9 +1,12 @@
 package derived
 
 import (
+	"errors"
 	"fmt"
 	"math"
 	"slices"
+	"sync"
+	"sync/atomic"
 	"time"
 
 	"github.com/plenum-engine/plenum/derive/warn"
@@ -22,6 +25,69 @@ type warnings struct {
 	active  []float64
 	lastAll time.Time
 	sev     []warn.Severity // each rule's severity, in the engine's order
+
+	// raised mirrors each rule's state for Acknowledge, which runs on
+	// another goroutine than Derive.
+	raised []atomic.Bool
+	// Acknowledgements wait here until the next Derive applies them: the
+	// engine belongs to the ingest goroutine.
+	mu         sync.Mutex
+	pending    []Ack
+	hasPending atomic.Bool
+	pendingBuf []Ack
+}
+
+// Ack is an acknowledgement of a raised warning: the rule, and who gave it
+// by what path, both recorded in the warning_acknowledged event's tags.
+type Ack struct {
+	Rule string // the rule's name
+	Via  string // the path it came by: "http", "mqtt"
+	By   string // who gave it, as they said; may be empty
+}
+
+// ErrNotRaised is returned by Set.Acknowledge for a warning that is not
+// raised: there is nothing to acknowledge.
+var ErrNotRaised = errors.New("warning is not raised")
+
+// ErrNoWarning is returned by Set.Acknowledge for a rule this setup does
+// not evaluate.
+var ErrNoWarning = errors.New("no such warning")
+
+// acknowledge queues a for the next Derive.
+func (w *warnings) acknowledge(a Ack) error {
+	i := w.eng.Rule(a.Rule)
+	if i < 0 {
+		return fmt.Errorf("%w: %q (rules: %s)", ErrNoWarning, a.Rule, w.ruleList())
+	}
+	if !w.raised[i].Load() {
+		return fmt.Errorf("%s: %w", a.Rule, ErrNotRaised)
+	}
+	w.mu.Lock()
+	w.pending = append(w.pending, a)
+	w.hasPending.Store(true)
+	w.mu.Unlock()
+	return nil
+}
+
+func (w *warnings) ruleList() string {
+	names := make([]string, w.eng.Rules())
+	for i := range names {
+		names[i] = w.eng.RuleName(i)
+	}
+	return fmt.Sprint(names)
+}
+
+// takeAcks returns the queued acknowledgements, reusing a buffer.
+func (w *warnings) takeAcks() []Ack {
+	if !w.hasPending.Load() {
+		return nil
+	}
+	w.mu.Lock()
+	w.pendingBuf = append(w.pendingBuf[:0], w.pending...)
+	w.pending = w.pending[:0]
+	w.hasPending.Store(false)
+	w.mu.Unlock()
+	return w.pendingBuf
 }
 
 // WarningRule is a warning rule in use: its name and severity ("info",
@@ -133,6 +199,7 @@ func newWarnings(user []warn.Text, has func(string) bool, lenient bool) (w *warn
 		w.last[i] = math.NaN()
 	}
 	w.active = make([]float64, eng.Rules())
+	w.raised = make([]atomic.Bool, eng.Rules())
 	return w, leftOut, nil
 }
 
@@ -205,20 +272,41 @@ func (w *warnings) Derive(t time.Time, in, out []float64) uint64 {
 		w.trans = w.eng.Update(w.chIdx[i], t, v, w.trans)
 	}
 	w.trans = w.eng.Advance(t, w.trans)
+	var acks []Ack
+	for _, a := range w.takeAcks() {
+		if i := w.eng.Rule(a.Rule); i >= 0 {
+			n := len(w.trans)
+			w.trans = w.eng.Acknowledge(i, t, w.trans)
+			if len(w.trans) > n {
+				acks = append(acks, a)
+			}
+		}
+	}
 	var mask uint64
 	for _, tr := range w.trans {
 		kind := "warning_raised"
 		v := 1.0
+		tags := map[string]string{"severity": tr.Severity.String()}
 		switch tr.Kind {
 		case warn.Cleared:
 			kind, v = "warning_cleared", 0
 		case warn.Acknowledged:
 			kind = "warning_acknowledged"
+			for _, a := range acks {
+				if a.Rule == tr.Name {
+					tags["via"] = a.Via
+					if a.By != "" {
+						tags["by"] = a.By
+					}
+					break
+				}
+			}
 		}
 		w.active[tr.Rule] = v
+		w.raised[tr.Rule].Store(v == 1)
 		mask |= 1 << uint(tr.Rule)
 		w.send(pipeline.Event{Kind: kind, Name: tr.Name, Start: tr.Since, End: tr.Time,
-			Tags: map[string]string{"severity": tr.Severity.String()}, Fields: map[string]float64{"active": v}})
+			Tags: tags, Fields: map[string]float64{"active": v}})
 	}
 	// Publish every rule's state once a second even without transitions, so
 	// that the gauges stay fresh.

@@ -54,6 +54,9 @@ type Config struct {
 	ConfigYAML  []byte        // the configuration the run is made with, kept as config.yaml
 	RotateBytes int64         // default 64 MiB
 	Conditions  Conditions    // ambient conditions at the start, kept in run.json
+	// Correction, when set, says how power was corrected in this run; kept
+	// in run.json and the summary.
+	Correction *Correction
 	// Forward, when set, receives every block of whole lines as it is
 	// written to the run's file, e.g. to push them to a time-series
 	// database. It must copy and must not block.
@@ -107,6 +110,9 @@ type Meta struct {
 	Start   time.Time `json:"start"`
 	// Conditions at the start: measured, entered, or absent.
 	Conditions *Conditions `json:"conditions,omitempty"`
+	// Correction says which standard corrected power and with which
+	// entered conditions.
+	Correction *Correction `json:"power_correction,omitempty"`
 }
 
 // Recorder appends points to the current file of one run. Write and
@@ -196,10 +202,11 @@ func Open(cfg Config, reg *pipeline.Registry) (*Recorder, error) {
 		return nil, fmt.Errorf("record: run %s exists already; earlier runs are never written to", cfg.Run)
 	}
 	m := Meta{ID: cfg.Run, Vehicle: cfg.Vehicle, Label: cfg.Label, Notes: cfg.Notes, Start: time.Now().UTC()}
-	if !cfg.Conditions.Empty() {
+	if !cfg.Conditions.Empty() || cfg.Conditions.Note != "" {
 		c := cfg.Conditions
 		m.Conditions = &c
 	}
+	m.Correction = cfg.Correction
 	meta, _ := json.MarshalIndent(m, "", "  ")
 	if err := writeSynced(filepath.Join(dir, "run.json"), meta); err != nil {
 		return nil, err
@@ -241,6 +248,7 @@ func (r *Recorder) TakeBytes() []byte {
 
 func newRecorder(cfg Config, reg *pipeline.Registry) *Recorder {
 	r := &Recorder{cfg: cfg, reg: reg, chans: reg.Channels(), sum: newSummarizer(cfg.Run, cfg.Vehicle)}
+	r.sum.s.Correction = cfg.Correction
 	r.kept = *r.sum
 	for q := pipeline.OK; q <= pipeline.SensorFault; q++ {
 		r.qtext = append(r.qtext, `,quality="`+q.String()+`" `)

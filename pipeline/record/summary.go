@@ -37,6 +37,9 @@ type Summary struct {
 	// Conditions are the means of the ambient channels over the run, where
 	// the car had those sensors.
 	Conditions *Conditions `json:"conditions,omitempty"`
+	// Correction says which standard corrected power and with which
+	// entered conditions (the run's Config.Correction).
+	Correction *Correction `json:"power_correction,omitempty"`
 }
 
 // Conditions are the ambient conditions of a run: what the power correction
@@ -49,6 +52,9 @@ type Conditions struct {
 	// values at the start), "entered" (given with the start command),
 	// "sensors+entered", or "mean of sensors" in a summary.
 	Source string `json:"source,omitempty"`
+	// Note says why values are missing, e.g. "no ambient sensor
+	// configured" or "sensors not fresh within 30 s".
+	Note string `json:"note,omitempty"`
 }
 
 // Empty reports whether c holds no value.

@@ -6,26 +6,34 @@ import (
 	"encoding/json"
 	"errors"
 	"fmt"
+	"net/http"
 
 	"github.com/plenum-engine/plenum/pipeline/record"
 )
 
-// CommandPayload is the JSON payload of <prefix>/<vehicle>/cmd/run/start
-// and …/cmd/run/stop. Every key is optional; token is required when
-// Config.ControlToken is set.
+// CommandPayload is the one command format of the HTTP API (a JSON body)
+// and of the MQTT command topics (<prefix>/<vehicle>/cmd/run/start,
+// …/cmd/run/stop, …/cmd/warning/acknowledge). Every key is optional but
+// rule, which warning/acknowledge needs; unknown keys are refused. Over
+// MQTT, token is required when Config.ControlToken is set; over HTTP the
+// token goes in the Authorization header.
 type CommandPayload struct {
-	Request    string             `json:"request"` // echoed in the reply
+	Request    string             `json:"request"` // echoed in the reply, errors included
 	Token      string             `json:"token"`
 	Label      string             `json:"label"`
 	Notes      string             `json:"notes"`
 	Conditions *record.Conditions `json:"conditions"` // entered conditions, SI units
+	Rule       string             `json:"rule"`       // warning/acknowledge: the warning rule
+	By         string             `json:"by"`         // warning/acknowledge: who acknowledges
 }
 
-// Reply is published on <prefix>/<vehicle>/reply/run/start|stop.
+// Reply answers a command: published on <prefix>/<vehicle>/reply/<command>
+// and the body of every HTTP command reply (application/json).
 type Reply struct {
 	Request string          `json:"request,omitempty"`
 	OK      bool            `json:"ok"`
 	Run     string          `json:"run,omitempty"`
+	Rule    string          `json:"rule,omitempty"`
 	Error   string          `json:"error,omitempty"`
 	Summary *record.Summary `json:"summary,omitempty"`
 }
@@ -40,41 +48,69 @@ func parseCommand(payload []byte) (CommandPayload, error) {
 	dec := json.NewDecoder(bytes.NewReader(payload))
 	dec.DisallowUnknownFields()
 	if err := dec.Decode(&c); err != nil {
-		return CommandPayload{}, fmt.Errorf("payload is not a JSON command: %w", err)
+		return CommandPayload{Request: requestOf(payload)}, fmt.Errorf("payload is not a JSON command: %w", err)
 	}
 	if dec.More() {
-		return CommandPayload{}, errors.New("payload holds more than one JSON value")
+		return CommandPayload{Request: requestOf(payload)}, errors.New("payload holds more than one JSON value")
 	}
 	if c.Conditions != nil {
 		if err := checkConditions(*c.Conditions); err != nil {
-			return CommandPayload{}, fmt.Errorf("conditions: %w", err)
+			return CommandPayload{Request: c.Request}, fmt.Errorf("conditions: %w", err)
 		}
 	}
 	return c, nil
 }
 
-// Command serves the MQTT command topics run/start and run/stop: suffix is
-// the topic after cmd/, payload a CommandPayload; it returns the JSON
-// Reply to publish.
-func (c *Controller) Command(suffix string, payload []byte) []byte {
-	rep := Reply{}
-	reply := func() []byte {
-		b, _ := json.Marshal(rep) // plain strings and numbers: cannot fail
-		return b
+// requestOf returns the request id of a payload parseCommand refused, when
+// it can be read at all, so that the error reply still names it.
+func requestOf(payload []byte) string {
+	var r struct {
+		Request string `json:"request"`
 	}
+	if json.Unmarshal(payload, &r) == nil {
+		return r.Request
+	}
+	// Several values or trailing garbage: the first value may still say.
+	if json.NewDecoder(bytes.NewReader(payload)).Decode(&r) == nil {
+		return r.Request
+	}
+	return ""
+}
+
+// Command serves the MQTT command topics run/start, run/stop and
+// warning/acknowledge: suffix is the topic after cmd/, payload a
+// CommandPayload; it returns the JSON Reply to publish.
+func (c *Controller) Command(suffix string, payload []byte) []byte {
 	p, err := parseCommand(payload)
 	if err != nil {
-		rep.Error = fmt.Sprintf("cmd/%s: %v", suffix, err)
-		return reply()
+		return jsonReply(Reply{Request: p.Request, Error: fmt.Sprintf("cmd/%s: %v", suffix, err)})
 	}
-	rep.Request = p.Request
 	if tok := c.cfg.ControlToken; tok != "" && subtle.ConstantTimeCompare([]byte(p.Token), []byte(tok)) != 1 {
-		rep.Error = "unauthorized: the token does not match record.control_token"
-		c.log.Warn("mqtt run command refused: bad token", "topic", suffix)
-		return reply()
+		c.log.Warn("mqtt command refused: bad token", "topic", suffix)
+		return jsonReply(Reply{Request: p.Request, Error: "unauthorized: the token does not match record.control_token"})
 	}
-	switch suffix {
+	rep, _ := c.do("mqtt", suffix, p)
+	return jsonReply(rep)
+}
+
+func jsonReply(r Reply) []byte {
+	b, _ := json.Marshal(r) // plain strings and numbers: cannot fail
+	return b
+}
+
+// do carries out an authorised command that came by path via ("http",
+// "mqtt") and returns the reply and its HTTP status.
+func (c *Controller) do(via, cmd string, p CommandPayload) (Reply, int) {
+	rep := Reply{Request: p.Request}
+	fail := func(status int, err error) (Reply, int) {
+		rep.OK, rep.Error = false, err.Error()
+		return rep, status
+	}
+	switch cmd {
 	case "run/start":
+		if p.Rule != "" || p.By != "" {
+			return fail(http.StatusBadRequest, errors.New("run/start takes no rule or by"))
+		}
 		sr := StartRequest{Label: p.Label, Notes: p.Notes}
 		if p.Conditions != nil {
 			sr.Entered = *p.Conditions
@@ -82,23 +118,36 @@ func (c *Controller) Command(suffix string, payload []byte) []byte {
 		}
 		id, err := c.Start(sr)
 		if err != nil {
-			rep.Error = err.Error()
-			return reply()
+			return fail(http.StatusConflict, err)
 		}
-		c.log.Info("run started by MQTT command", "run", id)
+		c.log.Info("run started by command", "run", id, "via", via)
 		rep.OK, rep.Run = true, id
 	case "run/stop":
 		sum, err := c.Stop()
 		if sum.Run == "" {
-			rep.Error = err.Error()
-			return reply()
+			return fail(http.StatusConflict, err)
 		}
 		rep.OK, rep.Run, rep.Summary = err == nil, sum.Run, &sum
 		if err != nil {
 			rep.Error = err.Error()
+			return rep, http.StatusInternalServerError
 		}
+	case "warning/acknowledge":
+		if p.Rule == "" {
+			return fail(http.StatusBadRequest, errors.New("warning/acknowledge needs the rule to acknowledge"))
+		}
+		if c.ack == nil {
+			return fail(http.StatusNotFound, errors.New("this daemon evaluates no warnings"))
+		}
+		rep.Rule = p.Rule
+		if err := c.ack(p.Rule, via, p.By); err != nil {
+			c.log.Info("warning acknowledgement refused", "rule", p.Rule, "via", via, "by", p.By, "err", err)
+			return fail(http.StatusConflict, err)
+		}
+		c.log.Info("warning acknowledged", "rule", p.Rule, "via", via, "by", p.By)
+		rep.OK = true
 	default:
-		rep.Error = fmt.Sprintf("unknown command %q: use run/start or run/stop", suffix)
+		return fail(http.StatusNotFound, fmt.Errorf("unknown command %q: use run/start, run/stop or warning/acknowledge", cmd))
 	}
-	return reply()
+	return rep, http.StatusOK
 }

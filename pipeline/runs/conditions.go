@@ -2,8 +2,9 @@ package runs
 
 import (
 	"fmt"
-	"net/http"
+	"net/url"
 	"strconv"
+	"strings"
 	"time"
 
 	"github.com/plenum-engine/plenum/pipeline/record"
@@ -77,9 +78,9 @@ func checkConditions(c record.Conditions) error {
 
 // parseEntered reads the optional form fields pressure_kpa, temperature_c
 // and humidity_percent: conditions read off a weather station.
-func parseEntered(req *http.Request, c *record.Conditions) error {
+func parseEntered(form url.Values, c *record.Conditions) error {
 	for _, f := range conditionFields(c) {
-		s := req.FormValue(f.form)
+		s := form.Get(f.form)
 		if s == "" {
 			continue
 		}
@@ -91,4 +92,102 @@ func parseEntered(req *http.Request, c *record.Conditions) error {
 		*f.dst = &x
 	}
 	return nil
+}
+
+// conditionsWait is how long a run started before the ambient sensors were
+// fresh (a run that starts with the daemon) waits for them before run.json
+// says which are missing.
+const conditionsWait = 30 * time.Second
+
+// pendingConditions is a run whose run.json still waits for fresh ambient
+// sensors.
+type pendingConditions struct {
+	on      bool
+	since   time.Time
+	entered record.Conditions
+}
+
+// startConditions returns the conditions for run.json at a start, and
+// whether they wait for ambient sensors that are registered but not fresh
+// yet (fillConditions completes them). With no ambient sensor to read, the
+// conditions say so.
+func (c *Controller) startConditions(entered record.Conditions, now time.Time) (record.Conditions, bool) {
+	cond := c.conditions(entered, now)
+	missing, sensors := c.missingAmbient(cond)
+	switch {
+	case sensors == 0 && cond.Empty():
+		cond.Note = "no ambient sensor configured and no conditions entered"
+	case sensors == 0:
+		cond.Note = "no ambient sensor configured for the values not entered"
+	case len(missing) > 0:
+		cond.Note = fmt.Sprintf("waiting up to %d s for fresh readings of %s", int(conditionsWait/time.Second), strings.Join(missing, ", "))
+		return cond, true
+	}
+	return cond, false
+}
+
+// missingAmbient returns the ambient channels that are registered but gave
+// cond no value, and how many ambient channels can be read at all.
+func (c *Controller) missingAmbient(cond record.Conditions) (missing []string, sensors int) {
+	if c.store == nil {
+		return nil, 0
+	}
+	for _, f := range conditionFields(&cond) {
+		if _, ok := c.reg.Lookup(f.channel); !ok {
+			continue
+		}
+		sensors++
+		if *f.dst == nil {
+			missing = append(missing, f.channel)
+		}
+	}
+	return missing, sensors
+}
+
+// fillConditions writes the conditions of a run that waited for its
+// ambient sensors into its run.json once they are all fresh, or, after
+// conditionsWait, what there is and which sensors were not fresh.
+func (c *Controller) fillConditions(now time.Time) {
+	c.mu.Lock()
+	defer c.mu.Unlock()
+	if c.cur == nil || !c.cond.on {
+		return
+	}
+	cond := c.conditions(c.cond.entered, now)
+	missing, _ := c.missingAmbient(cond)
+	if len(missing) > 0 {
+		if now.Sub(c.cond.since) < conditionsWait {
+			return
+		}
+		cond.Note = fmt.Sprintf("%s not fresh within %d s of the start", strings.Join(missing, ", "), int(conditionsWait/time.Second))
+		c.log.Warn("run conditions incomplete: ambient sensors not fresh", "run", c.cur.ID(), "missing", missing)
+	}
+	c.cond.on = false
+	if err := c.cur.SetConditions(cond); err != nil {
+		c.log.Error("cannot write the run's conditions into run.json", "run", c.cur.ID(), "err", err)
+	}
+}
+
+// enterConditions hands entered conditions to the power correction and
+// returns how power is corrected in the run, or nil when no power is
+// derived.
+func (c *Controller) enterConditions(entered record.Conditions) *record.Correction {
+	if c.enter == nil {
+		return nil
+	}
+	entered.Source, entered.Note = "", ""
+	std := c.enter(entered)
+	if std == "" {
+		return nil
+	}
+	corr := &record.Correction{Standard: std, Others: "the ambient channels while fresh, else the configured defaults"}
+	if !entered.Empty() {
+		e := entered
+		e.Source = "entered"
+		corr.Entered = &e
+		if e.PressurePa != nil && e.TemperatureC != nil && e.RelativeHumidity != nil {
+			corr.Others = ""
+		}
+	}
+	return corr
 }

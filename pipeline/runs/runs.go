@@ -89,6 +89,15 @@ type Deps struct {
 	// memory while the disk refuses writes; nil: statfs (on Linux;
 	// elsewhere no guard).
 	DiskSpace func(dir string) (free, total uint64, err error)
+	// Acknowledge acknowledges a raised warning for the warning/acknowledge
+	// command, recording that it came by path via from by; nil: the
+	// command answers that no warnings are evaluated.
+	Acknowledge func(rule, via, by string) error
+	// EnterConditions hands the conditions entered for a run to the power
+	// correction (empty: back to the ambient channels) and returns the
+	// standard power is corrected to, or "" when no power is derived; nil:
+	// entered conditions are only recorded.
+	EnterConditions func(record.Conditions) string
 }
 
 // Controller owns the recorder subscription and the run being recorded.
@@ -106,6 +115,8 @@ type Controller struct {
 	now     func() time.Time
 	create  func(string) (record.File, error)
 	space   func(string) (uint64, uint64, error)
+	ack     func(rule, via, by string) error
+	enter   func(record.Conditions) string
 
 	mu      sync.Mutex // guards everything below
 	publish func([]byte)
@@ -113,6 +124,7 @@ type Controller struct {
 	auto    bool  // the current run was started by the pull trigger
 	syncErr error // the first sync failure of a burst, logged once
 	refLog  bool  // the current outage of the disk was logged
+	cond    pendingConditions
 
 	// What the recorder failed to keep: samples its subscription dropped
 	// and samples the disk refused, which are counted back into the
@@ -145,7 +157,8 @@ type Controller struct {
 // being recorded until Start or StartUnlessManual.
 func New(cfg Config, d Deps) *Controller {
 	c := &Controller{cfg: cfg, reg: d.Registry, sub: d.Sub, store: d.Store, emit: d.Emit, publish: d.Publish,
-		forward: d.Forward, log: d.Log, now: d.Now, create: d.Create, space: d.DiskSpace}
+		forward: d.Forward, log: d.Log, now: d.Now, create: d.Create, space: d.DiskSpace,
+		ack: d.Acknowledge, enter: d.EnterConditions}
 	if c.cfg.MinFreeBytes == 0 {
 		c.cfg.MinFreeBytes = DefaultMinFreeBytes
 	}
@@ -205,15 +218,18 @@ func (c *Controller) start(req StartRequest, auto bool) (string, error) {
 		return "", fmt.Errorf("opening run %s: %w", id, err)
 	}
 	_, total, serr := c.space(c.cfg.Dir)
+	cond, pending := c.startConditions(req.Entered, now)
 	rec, err := record.Open(record.Config{Dir: c.cfg.Dir, Run: id, Vehicle: c.cfg.Vehicle, Label: req.Label, Notes: req.Notes,
 		SyncEvery: c.cfg.SyncEvery, RotateBytes: c.cfg.RotateBytes, ConfigYAML: c.cfg.ConfigYAML,
-		Conditions: c.conditions(req.Entered, now), Forward: c.forward, Create: c.create, Now: c.now,
+		Conditions: cond, Correction: c.enterConditions(req.Entered), Forward: c.forward, Create: c.create, Now: c.now,
 		HoldBytes: holdBytes(total, serr)}, c.reg)
 	if err != nil {
+		c.enterConditions(record.Conditions{})
 		return "", fmt.Errorf("opening run %s: %w", id, err)
 	}
 	c.account() // what the queue dropped before the run is not the run's
 	c.cur, c.auto, c.diskFed, c.refLog = rec, auto, 0, false
+	c.cond = pendingConditions{on: pending, since: now, entered: req.Entered}
 	c.emit(pipeline.Event{Kind: "run_started", Name: id, Start: now, Tags: map[string]string{"label": req.Label}})
 	return id, nil
 }
@@ -230,9 +246,11 @@ func (c *Controller) Stop() (record.Summary, error) {
 	}
 	rec := c.cur
 	c.account() // the queue's drops up to now belong to the run
+	c.cond = pendingConditions{}
 	err := rec.Close()
 	c.account() // what the disk refused at the close
 	c.logResumed()
+	c.enterConditions(record.Conditions{})
 	c.cur, c.auto = nil, false
 	c.diskClosed += rec.DiskLost()
 	c.evLostClosed += rec.LostEvents()
@@ -308,7 +326,9 @@ func (c *Controller) Run(ctx context.Context) error {
 			drain()
 		case <-tick.C:
 			c.sync()
-			c.watchLoss(c.now())
+			now := c.now()
+			c.watchLoss(now)
+			c.fillConditions(now)
 		}
 	}
 }

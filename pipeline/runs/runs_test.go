@@ -305,10 +305,10 @@ func TestHandler(t *testing.T) {
 			{"POST", "/api/runs/start", "s3cret", "", 401, "unauthorized"},
 			{"POST", "/api/runs/stop", "Bearer s3cret", "", 409, "no run is being recorded"},
 			{"POST", "/api/runs/start", "Bearer s3cret", "humidity_percent=140", 400, "humidity_percent"},
-			{"POST", "/api/runs/start", "Bearer s3cret", "label=pull+1&pressure_kpa=99.1", 200, `{"run":"20260501T100001.000Z"}`},
+			{"POST", "/api/runs/start", "Bearer s3cret", "label=pull+1&pressure_kpa=99.1", 200, `{"ok":true,"run":"20260501T100001.000Z"}`},
 			{"GET", "/api/runs/current", "", "", 200, `{"run":"20260501T100001.000Z"}`},
 			{"POST", "/api/runs/start", "Bearer s3cret", "", 409, "already being recorded"},
-			{"POST", "/api/runs/stop", "Bearer s3cret", "", 200, `"run": "20260501T100001.000Z"`},
+			{"POST", "/api/runs/stop", "Bearer s3cret", "", 200, `{"ok":true,"run":"20260501T100001.000Z","summary":{"run":"20260501T100001.000Z"`},
 			{"GET", "/api/runs/current", "", "", 200, `{"run":""}`},
 		}},
 	}
@@ -323,7 +323,7 @@ func TestHandler(t *testing.T) {
 			}
 			w := httptest.NewRecorder()
 			srv.ServeHTTP(w, req)
-			if w.Code != s.want || !strings.Contains(w.Body.String(), s.wantBody) {
+			if w.Code != s.want || !strings.Contains(w.Body.String(), s.wantBody) || w.Header().Get("Content-Type") != "application/json" {
 				t.Errorf("%s step %d (%s %s): %d %q, want %d %q", c.name, i, s.method, s.path, w.Code, w.Body.String(), s.want, s.wantBody)
 			}
 		}
