@@ -86,7 +86,20 @@ func (v Value) AppendText(b []byte) []byte {
 	if !v.OK {
 		return append(b, NoNumber...)
 	}
-	return strconv.AppendFloat(b, v.Number, 'f', v.Decimals, 64)
+	if math.Abs(v.Number) < 1<<53 {
+		return strconv.AppendFloat(b, v.Number, 'f', v.Decimals, 64)
+	}
+	// Every float this large is a whole number, and its exact binary
+	// expansion has digits no measurement has: the shortest digits that
+	// read back to it, then the decimals' zeros.
+	b = strconv.AppendFloat(b, v.Number, 'f', -1, 64)
+	if v.Decimals > 0 {
+		b = append(b, '.')
+		for range v.Decimals {
+			b = append(b, '0')
+		}
+	}
+	return b
 }
 
 // Text returns the number alone, as AppendText writes it.
