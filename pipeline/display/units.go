@@ -62,9 +62,9 @@ type MassFlow uint8
 
 // Mass flow units. The zero value is g/s.
 const (
-	GramsPerSecond    MassFlow = iota // g/s
-	KilogramsPerHour                  // kg/h
-	PoundsPerMinute                   // lb/min (avoirdupois pound)
+	GramsPerSecond   MassFlow = iota // g/s
+	KilogramsPerHour                 // kg/h
+	PoundsPerMinute                  // lb/min (avoirdupois pound)
 )
 
 // Mixture says how mixture strength is shown.
