@@ -192,6 +192,17 @@ func (f Formatter) WithUnits(u Units) Formatter {
 	return f
 }
 
+// Override returns a copy of f with the compact form s (a browser's
+// choices, "pressure=psi,temperature=F") applied on top of f's units; the
+// items s lacks keep f's. A refusal is a *ParseError naming the item.
+func (f Formatter) Override(s string) (Formatter, error) {
+	u := f.units
+	if err := u.Set(s); err != nil {
+		return f, err
+	}
+	return f.WithUnits(u), nil
+}
+
 // Format returns v, a value of ch in ch's canonical unit, as a person reads
 // it in f's units. Pressures the Boost choice would show against the
 // ambient are shown as measured: use FormatAgainst to supply it.

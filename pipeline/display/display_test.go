@@ -333,3 +333,25 @@ func TestFormatDoesNotAllocate(t *testing.T) {
 		t.Errorf("%g allocations per value, want 0", n)
 	}
 }
+
+// A browser's override applies on top of the configured units.
+func TestOverride(t *testing.T) {
+	f, err := New(Config{Units: Units{Pressure: Bar, Temperature: Fahrenheit}, Fuel: "e85"})
+	if err != nil {
+		t.Fatal(err)
+	}
+	g, err := f.Override("pressure=psi,mixture=afr")
+	if err != nil {
+		t.Fatal(err)
+	}
+	if want := (Units{Pressure: PSI, Temperature: Fahrenheit, Mixture: AFR}); g.Units() != want || g.Fuel() != "e85" {
+		t.Errorf("%+v %s, want %+v e85", g.Units(), g.Fuel(), want)
+	}
+	if got := g.Format(chanOf(t, "lambda"), 1).String(); got != "9.8 AFR" {
+		t.Errorf("λ 1 with e85: %q", got)
+	}
+	h, err := f.Override("power=hp")
+	if err == nil || h.Units() != f.Units() {
+		t.Errorf("a refused override: %v, units %+v", err, h.Units())
+	}
+}
