@@ -8,6 +8,7 @@ import (
 	"strings"
 
 	"github.com/plenum-engine/plenum/pipeline"
+	"github.com/plenum-engine/plenum/pipeline/display"
 	"github.com/plenum-engine/plenum/pipeline/plot"
 	"github.com/plenum-engine/plenum/pipeline/replay"
 )
@@ -21,6 +22,8 @@ func cmdPlot(args []string, stdout io.Writer) error {
 	dir := fs.String("dir", "", "the recording directory that holds run ids")
 	out := fs.String("out", "", "output file, .png or .svg")
 	chans := fs.String("channels", "", "also plot these channels against time (comma-separated)")
+	units := fs.String("units", "", "units for people, e.g. pressure=bar,temperature=F,power=hp_mech,mixture=afr (default metric: kPa, °C, kW, λ)")
+	fuel := fs.String("fuel", "gasoline", "the fuel whose stoichiometric ratio mixture=afr uses")
 	if err := fs.Parse(args); err != nil {
 		return usageError{err.Error()}
 	}
@@ -30,7 +33,15 @@ func cmdPlot(args []string, stdout io.Writer) error {
 	if _, ok := plot.FormatOf(*out); !ok {
 		return usageError{"plot -out must end in .png or .svg"}
 	}
-	cfg := plot.Config{Unit: unitLabel}
+	u, err := display.ParseUnits(*units)
+	if err != nil {
+		return usageError{err.Error()}
+	}
+	shown, err := display.New(display.Config{Units: u, Fuel: *fuel})
+	if err != nil {
+		return usageError{err.Error()}
+	}
+	cfg := plot.Config{Unit: unitLabel, Display: plotScale(shown)}
 	if *chans != "" {
 		cfg.Channels = strings.Split(*chans, ",")
 	}
@@ -65,4 +76,20 @@ func unitLabel(ch string) string {
 		return strings.ReplaceAll(string(c.Unit), "_", " ")
 	}
 	return ""
+}
+
+// plotScale shows a catalogued channel on a plot axis as the display layer
+// shows it to a person: its unit symbol and conversion; a channel the
+// catalogue lacks is left to unitLabel. Pressures are drawn as measured
+// (an axis has no barometric pressure to shift by) and labelled with the
+// symbol alone, so that the default boost axis stays "boost (kPa)".
+func plotScale(f display.Formatter) func(string) (plot.Scale, bool) {
+	return func(ch string) (plot.Scale, bool) {
+		c, ok := pipeline.Catalogued(ch)
+		if !ok {
+			return plot.Scale{}, false
+		}
+		s := f.ScaleOf(c)
+		return plot.Scale{Unit: s.Unit, Factor: s.Factor, Offset: s.Offset}, true
+	}
 }

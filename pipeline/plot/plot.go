@@ -33,7 +33,26 @@ type Config struct {
 	// Every unit label of the plot comes from it; the engine-speed panels
 	// show watts as kW and pascals as kPa. Nil: no unit is known.
 	Unit func(channel string) string
+	// Display, when set, says how a person reads a channel: the unit's
+	// label and the conversion from the canonical unit. It takes
+	// precedence over Unit and over the engine-speed panels' own kW and
+	// kPa, on every panel; for a channel it does not know (ok false), Unit
+	// is asked.
+	Display func(channel string) (s Scale, ok bool)
 }
+
+// Scale is how a channel is shown on an axis: shown = canonical × Factor +
+// Offset, in the unit labelled Unit ("" for a plain number).
+type Scale struct {
+	Unit           string
+	Factor, Offset float64
+}
+
+// apply converts one canonical value.
+func (s Scale) apply(v float64) float64 { return v*s.Factor + s.Offset }
+
+// identity shows canonical values as they are.
+var identity = Scale{Factor: 1}
 
 // Format is an image format.
 type Format string
@@ -106,10 +125,36 @@ func shown(unit string) (label string, scale float64) {
 	return unit, 1
 }
 
+// speedScale is how an engine-speed panel shows a channel: by Display,
+// else the canonical unit as shown scales it.
+func (c Config) speedScale(channel string) Scale {
+	if c.Display != nil {
+		if s, ok := c.Display(channel); ok {
+			return s
+		}
+	}
+	label, f := shown(c.unit(channel))
+	return Scale{Unit: label, Factor: f}
+}
+
+// timeScale is how a panel against time shows a channel: by Display, else
+// in the canonical unit.
+func (c Config) timeScale(channel string) Scale {
+	if c.Display != nil {
+		if s, ok := c.Display(channel); ok {
+			return s
+		}
+	}
+	return Scale{Unit: c.unit(channel), Factor: 1}
+}
+
 // axis joins a quantity and a unit label into an axis label.
 func axis(quantity, unit string) string {
-	if unit == "" {
+	if unit == "" || unit == quantity { // "λ (λ)" says λ twice
 		return quantity
+	}
+	if quantity == "λ" && unit == "AFR" { // λ shown as an air-fuel ratio
+		return "air-fuel ratio (AFR)"
 	}
 	return quantity + " (" + unit + ")"
 }
@@ -117,43 +162,9 @@ func axis(quantity, unit string) string {
 // Write draws the panels of runs in format f to w and returns how many
 // panels it drew.
 func Write(w io.Writer, f Format, cfg Config, runs []Series) (panels int, err error) {
-	var plots []*gonum.Plot
-	xLabel, _ := shown(cfg.unit("engine_speed"))
-	for _, pn := range speedPanels {
-		yLabel, scale := shown(cfg.unit(pn.channel))
-		p := gonum.New()
-		p.Title.Text = pn.title
-		p.X.Label.Text = axis("engine speed", xLabel)
-		p.Y.Label.Text = axis(pn.quantity, yLabel)
-		p.Add(plotter.NewGrid())
-		for i, r := range runs {
-			ps := r.pulls[pn.channel]
-			for k, v := range ps {
-				label := r.label
-				if len(ps) > 1 {
-					label = fmt.Sprintf("%s, pull %d", r.label, k+1)
-				}
-				if err := addLine(p, label, v, scale, runColours[i%len(runColours)], pullDashes[k%len(pullDashes)]); err != nil {
-					return 0, err
-				}
-			}
-		}
-		p.Legend.Top, p.Legend.Left = true, true
-		plots = append(plots, p)
-	}
-	for _, ch := range cfg.Channels {
-		p := gonum.New()
-		p.Title.Text = ch
-		p.X.Label.Text = "time (s)"
-		p.Y.Label.Text = axis(ch, cfg.unit(ch))
-		p.Add(plotter.NewGrid())
-		for i, r := range runs {
-			if err := addLine(p, r.label, r.vals["t:"+ch], 1, runColours[i%len(runColours)], nil); err != nil {
-				return 0, err
-			}
-		}
-		p.Legend.Top, p.Legend.Left = true, true
-		plots = append(plots, p)
+	plots, err := build(cfg, runs)
+	if err != nil {
+		return 0, err
 	}
 	rows := (len(plots) + 1) / 2
 	width, height := 28*vg.Centimeter, vg.Length(rows)*9*vg.Centimeter
@@ -189,6 +200,51 @@ func Write(w io.Writer, f Format, cfg Config, runs []Series) (panels int, err er
 	return len(plots), nil
 }
 
+// build makes the panels of runs: the engine-speed panels, then one per
+// channel against time.
+func build(cfg Config, runs []Series) ([]*gonum.Plot, error) {
+	var plots []*gonum.Plot
+	xScale := cfg.speedScale("engine_speed")
+	for _, pn := range speedPanels {
+		yScale := cfg.speedScale(pn.channel)
+		p := gonum.New()
+		p.Title.Text = pn.title
+		p.X.Label.Text = axis("engine speed", xScale.Unit)
+		p.Y.Label.Text = axis(pn.quantity, yScale.Unit)
+		p.Add(plotter.NewGrid())
+		for i, r := range runs {
+			ps := r.pulls[pn.channel]
+			for k, v := range ps {
+				label := r.label
+				if len(ps) > 1 {
+					label = fmt.Sprintf("%s, pull %d", r.label, k+1)
+				}
+				if err := addLine(p, label, v, xScale, yScale, runColours[i%len(runColours)], pullDashes[k%len(pullDashes)]); err != nil {
+					return nil, err
+				}
+			}
+		}
+		p.Legend.Top, p.Legend.Left = true, true
+		plots = append(plots, p)
+	}
+	for _, ch := range cfg.Channels {
+		p := gonum.New()
+		p.Title.Text = ch
+		p.X.Label.Text = "time (s)"
+		yScale := cfg.timeScale(ch)
+		p.Y.Label.Text = axis(ch, yScale.Unit)
+		p.Add(plotter.NewGrid())
+		for i, r := range runs {
+			if err := addLine(p, r.label, r.vals["t:"+ch], identity, yScale, runColours[i%len(runColours)], nil); err != nil {
+				return nil, err
+			}
+		}
+		p.Legend.Top, p.Legend.Left = true, true
+		plots = append(plots, p)
+	}
+	return plots, nil
+}
+
 // Save draws the panels of runs into the file at path, as PNG or SVG by
 // its extension, and returns how many panels it drew.
 func Save(path string, cfg Config, runs []Series) (panels int, err error) {
@@ -211,15 +267,15 @@ func Save(path string, cfg Config, runs []Series) (panels int, err error) {
 	return n, nil
 }
 
-// addLine adds one labelled line of (x, y·scale) points to p; no points,
-// no line.
-func addLine(p *gonum.Plot, label string, xy [][2]float64, scale float64, col color.RGBA, dashes []vg.Length) error {
+// addLine adds one labelled line of (x, y) points, each converted by its
+// scale, to p; no points, no line.
+func addLine(p *gonum.Plot, label string, xy [][2]float64, xs, ys Scale, col color.RGBA, dashes []vg.Length) error {
 	if len(xy) == 0 {
 		return nil
 	}
 	pts := make(plotter.XYs, 0, len(xy))
 	for _, v := range xy {
-		pts = append(pts, plotter.XY{X: v[0], Y: v[1] * scale})
+		pts = append(pts, plotter.XY{X: xs.apply(v[0]), Y: ys.apply(v[1])})
 	}
 	l, err := plotter.NewLine(pts)
 	if err != nil {

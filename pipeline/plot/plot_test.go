@@ -3,6 +3,7 @@ package plot
 import (
 	"bytes"
 	"image/png"
+	"math"
 	"os"
 	"path/filepath"
 	"strings"
@@ -145,5 +146,77 @@ func TestSave(t *testing.T) {
 	}
 	if _, err := Write(new(bytes.Buffer), "gif", cfg, runs); err == nil {
 		t.Fatal("Write in an unknown format succeeded")
+	}
+}
+
+// testDisplay shows a few channels as a person who chose hp, psi, bar, °F
+// and AFR would read them; the others it does not know.
+func testDisplay(ch string) (Scale, bool) {
+	s, ok := map[string]Scale{
+		"engine_speed":        {Unit: "rpm", Factor: 1},
+		"corrected_power":     {Unit: "hp", Factor: 1 / 745.69987158227022},
+		"boost_pressure":      {Unit: "psi", Factor: 1 / 6894.757293168361},
+		"lambda":              {Unit: "AFR", Factor: 14.7},
+		"manifold_pressure":   {Unit: "bar", Factor: 1e-5},
+		"turbo_thermal_state": {Unit: "°F", Factor: 1.8, Offset: 32},
+	}[ch]
+	return s, ok
+}
+
+// With Display, every panel takes its unit and its scaling from it; a
+// channel it does not know falls back to Unit.
+func TestDisplayScalesEveryPanel(t *testing.T) {
+	rec := readGolden(t)
+	chans := []string{"manifold_pressure", "turbo_thermal_state", "lambda"}
+	base := Config{Channels: chans, Unit: testUnits}
+	shown := Config{Channels: chans, Unit: testUnits, Display: testDisplay}
+	var b bytes.Buffer
+	if _, err := Write(&b, SVG, shown, []Series{shown.Align("golden", rec)}); err != nil {
+		t.Fatal(err)
+	}
+	svg := b.String()
+	for _, w := range []string{"engine speed (rpm)", "power (hp)", "torque (N·m)", "boost (psi)", "air-fuel ratio (AFR)",
+		"manifold_pressure (bar)", "turbo_thermal_state (°F)", "lambda (AFR)"} {
+		if !strings.Contains(svg, w) {
+			t.Errorf("the SVG lacks %q", w)
+		}
+	}
+	for _, w := range []string{"(kW)", "(kPa)", "(pascals)", "(celsius)"} {
+		if strings.Contains(svg, w) {
+			t.Errorf("the SVG has %q", w)
+		}
+	}
+	want, err := build(base, []Series{base.Align("golden", rec)})
+	if err != nil {
+		t.Fatal(err)
+	}
+	got, err := build(shown, []Series{shown.Align("golden", rec)})
+	if err != nil {
+		t.Fatal(err)
+	}
+	cases := []struct {
+		panel int
+		conv  func(float64) float64 // from the base plot's values to Display's
+	}{
+		{0, func(kW float64) float64 { return kW * 1000 / 745.69987158227022 }},
+		{1, func(nm float64) float64 { return nm }}, // torque: not in Display
+		{2, func(kPa float64) float64 { return kPa * 1000 / 6894.757293168361 }},
+		{3, func(l float64) float64 { return l * 14.7 }},
+		{4, func(pa float64) float64 { return pa * 1e-5 }},
+		{5, func(c float64) float64 { return c*1.8 + 32 }},
+	}
+	for _, c := range cases {
+		w, g := want[c.panel], got[c.panel]
+		for _, r := range [][2]float64{{c.conv(w.Y.Min), g.Y.Min}, {c.conv(w.Y.Max), g.Y.Max}} {
+			if math.Abs(r[0]-r[1]) > 1e-9*math.Max(1, math.Abs(r[0])) {
+				t.Errorf("panel %q: y range %g–%g, want %g–%g", g.Title.Text, g.Y.Min, g.Y.Max, c.conv(w.Y.Min), c.conv(w.Y.Max))
+			}
+		}
+		if w.Y.Max == w.Y.Min {
+			t.Errorf("panel %q has no data", g.Title.Text)
+		}
+		if g.X.Min != w.X.Min || g.X.Max != w.X.Max {
+			t.Errorf("panel %q: x range changed", g.Title.Text)
+		}
 	}
 }

@@ -1,6 +1,7 @@
 package config
 
 import (
+	"errors"
 	"fmt"
 	"math"
 	"net"
@@ -19,6 +20,7 @@ import (
 	"github.com/plenum-engine/plenum/drivers/obd"
 
 	"github.com/plenum-engine/plenum/pipeline"
+	"github.com/plenum-engine/plenum/pipeline/display"
 )
 
 var nameRE = regexp.MustCompile(`^[a-z][a-z0-9_]*$`)
@@ -396,6 +398,15 @@ func (cfg *Config) check(file string, root *yaml.Node) Errors {
 	}
 	if _, err := derive.ParseStandard(cfg.Power.Standard); err != nil {
 		c.fail(err.Error(), "power", "standard")
+	}
+	for _, kv := range cfg.Display.items() {
+		var u display.Units
+		var pe *display.ParseError
+		if err := u.Set(kv[0] + "=" + kv[1]); errors.As(err, &pe) {
+			c.fail(pe.Reason, "display", kv[0])
+		} else if err != nil {
+			c.fail(err.Error(), "display", kv[0])
+		}
 	}
 	seenRule := map[string]bool{}
 	for i, r := range cfg.Warnings {

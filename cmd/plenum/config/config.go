@@ -17,6 +17,8 @@ import (
 	"time"
 
 	"go.yaml.in/yaml/v3"
+
+	"github.com/plenum-engine/plenum/pipeline/display"
 )
 
 // Config is the whole configuration of one daemon.
@@ -33,6 +35,7 @@ type Config struct {
 	StateDir string        `yaml:"state_dir"` // where the turbo cool-down state survives restarts
 	CAN      []CAN         `yaml:"can"`
 	Record   Record        `yaml:"record"`
+	Display  Display       `yaml:"display"`
 
 	// Raw is the text the configuration was parsed from.
 	Raw []byte `yaml:"-"`
@@ -110,6 +113,46 @@ type CANChannel struct {
 // Power configures power correction.
 type Power struct {
 	Standard string `yaml:"standard"` // sae_j1349 (default), iso_1585 or din_70020
+}
+
+// Display sets the units people read (console, CLI, plots); a browser may
+// override them. Each key takes a value of pipeline/display's compact form
+// of the same key; empty keeps the metric default.
+type Display struct {
+	Pressure    string `yaml:"pressure"`    // kPa (default), bar, psi
+	Boost       string `yaml:"boost"`       // measured (default), gauge, absolute
+	Temperature string `yaml:"temperature"` // C (default), F
+	Power       string `yaml:"power"`       // kW (default), hp_mech, hp_metric
+	Torque      string `yaml:"torque"`      // Nm (default), lbft
+	MassFlow    string `yaml:"mass_flow"`   // g/s (default), kg/h, lb/min
+	Mixture     string `yaml:"mixture"`     // lambda (default), afr
+	Speed       string `yaml:"speed"`       // km/h (default), mph
+	VolumeFlow  string `yaml:"volume_flow"` // L/h (default), gal/h
+}
+
+// items returns the keys set, in pipeline/display's compact form.
+func (d Display) items() [][2]string {
+	var out [][2]string
+	for _, kv := range [][2]string{{"pressure", d.Pressure}, {"boost", d.Boost}, {"temperature", d.Temperature},
+		{"power", d.Power}, {"torque", d.Torque}, {"mass_flow", d.MassFlow}, {"mixture", d.Mixture},
+		{"speed", d.Speed}, {"volume_flow", d.VolumeFlow}} {
+		if kv[1] != "" {
+			out = append(out, kv)
+		}
+	}
+	return out
+}
+
+// Units returns the configured choices as display units (Check refuses
+// what this would refuse).
+func (d Display) Units() (display.Units, error) {
+	var u display.Units
+	for _, kv := range d.items() {
+		if err := u.Set(kv[0] + "=" + kv[1]); err != nil {
+			return display.Units{}, err
+		}
+	}
+	return u, nil
 }
 
 // Turbo configures the turbo detectors. Defaults are common practice, no source.

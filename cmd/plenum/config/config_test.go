@@ -6,6 +6,7 @@ import (
 	"testing"
 
 	"github.com/plenum-engine/plenum/pipeline"
+	"github.com/plenum-engine/plenum/pipeline/display"
 )
 
 func TestLoadGood(t *testing.T) {
@@ -55,6 +56,10 @@ func TestErrorsNameFileLineAndField(t *testing.T) {
 		{"negative free-space guard", "vehicle: x\nengine: {displacement_l: 2, volumetric_efficiency: 0.9}\nrecord:\n  dir: /tmp/r\n  min_free_mb: -1\n",
 			"bad.yaml:5: record.min_free_mb: must be between 0"},
 		{"bad broker", "vehicle: x\nengine: {displacement_l: 2, volumetric_efficiency: 0.9}\nmqtt:\n  broker: http://x\n", "bad.yaml:4: mqtt.broker"},
+		{"display: which horsepower", "vehicle: x\nengine: {displacement_l: 2, volumetric_efficiency: 0.9}\ndisplay:\n  pressure: bar\n  power: hp\n",
+			"bad.yaml:5: display.power: say which horsepower, hp_mech"},
+		{"display: unknown pressure unit", "vehicle: x\nengine: {displacement_l: 2, volumetric_efficiency: 0.9}\ndisplay: {pressure: atm}\n",
+			`bad.yaml:3: display.pressure: "atm" is not a pressure unit this layer offers; choose kPa, bar, psi.`},
 	}
 	for _, c := range cases {
 		t.Run(c.name, func(t *testing.T) {
@@ -190,6 +195,7 @@ func TestMessagesAreSentences(t *testing.T) {
 		"vehicle: x\nengine: {displacement_l: 2, volumetric_efficiency: 0.9}\nserial:\n  - name: m\n    device: /dev/x\n    inputs:\n      - field: a0\n        channel: lambda_error\n        calibration: {unit: kpa, linear: {in_mv: [0, 5000], out: [0, 1]}}\n",
 		"vehicle: x\nengine: {displacement_l: 2, volumetric_efficiency: 0.9}\nserial:\n  - name: m\n    device: /dev/x\n    inputs:\n      - field: a0\n        channel: wideband_voltage\n        calibration: {unit: furlongs, linear: {in_mv: [0, 5000], out: [0, 1]}}\n",
 		"vehicle: x\nengine: {displacement_l: 2, volumetric_efficiency: 0.9}\nwarnings:\n  - {name: x, rule: 'oil_temp >'}\n",
+		"vehicle: x\nengine: {displacement_l: 2, volumetric_efficiency: 0.9}\ndisplay: {power: hp, mixture: phi}\n",
 		"",
 	}
 	for _, y := range bad {
@@ -201,6 +207,31 @@ func TestMessagesAreSentences(t *testing.T) {
 			if !strings.HasSuffix(line, ".") || strings.HasSuffix(line, " .") {
 				t.Errorf("not a complete sentence: %q", line)
 			}
+		}
+	}
+}
+
+// The display section gives the units people read; absent, the metric
+// defaults.
+func TestDisplayUnits(t *testing.T) {
+	cases := []struct {
+		yaml string
+		want display.Units
+	}{
+		{"", display.Units{}},
+		{"display: {pressure: bar, boost: gauge, temperature: F, power: hp_metric, torque: lbft, mass_flow: kg/h, mixture: AFR, speed: mph, volume_flow: gal/h}\n",
+			display.Units{Pressure: display.Bar, Boost: display.Gauge, Temperature: display.Fahrenheit, Power: display.HPMetric, Torque: display.PoundFoot,
+				MassFlow: display.KilogramsPerHour, Mixture: display.AFR, Speed: display.MPH, VolumeFlow: display.GallonsPerHour}},
+		{"display:\n  power: hp_mech\n", display.Units{Power: display.HPMech}},
+	}
+	for _, c := range cases {
+		cfg, err := Parse("good.yaml", []byte("vehicle: x\nengine: {displacement_l: 2, volumetric_efficiency: 0.9}\n"+c.yaml))
+		if err != nil {
+			t.Fatal(err)
+		}
+		u, err := cfg.Display.Units()
+		if err != nil || u != c.want {
+			t.Errorf("%q: %+v, %v; want %+v", c.yaml, u, err, c.want)
 		}
 	}
 }
