@@ -432,13 +432,30 @@ func (p *Publisher) Report() pipeline.HealthReport {
 // connection was made (it makes each connection's "online" message unique,
 // so that the publisher can recognise its own coming back).
 func (p *Publisher) statusPayload(state string, since time.Time) []byte {
-	m := map[string]string{"state": state, "vehicle": p.cfg.Vehicle, "version": p.cfg.Version,
-		"notice": "advisory only, not a safety system"}
+	m := Status{State: state, Vehicle: p.cfg.Vehicle, Version: p.cfg.Version, Notice: "advisory only, not a safety system"}
 	if !since.IsZero() {
-		m["since"] = since.UTC().Format(time.RFC3339Nano)
+		m.Since = since.UTC().Format(time.RFC3339Nano)
 	}
 	b, _ := json.Marshal(m)
 	return b
+}
+
+// Status is the JSON payload of the retained status topic; the last will
+// is the same with State "offline" and no Since. Its fields are in the
+// order of their names.
+type Status struct {
+	Notice  string `json:"notice"`
+	Since   string `json:"since,omitempty"` // RFC 3339: when this connection was made
+	State   string `json:"state"`           // "online" or "offline"
+	Vehicle string `json:"vehicle"`
+	Version string `json:"version"`
+}
+
+// Snapshot is the JSON payload of the snapshot topic: every fresh channel
+// by name, at time T (RFC 3339).
+type Snapshot struct {
+	Channels map[string]Value `json:"channels"`
+	T        string           `json:"t"`
 }
 
 // Value is the JSON payload of a channel topic.
@@ -571,7 +588,7 @@ func (p *Publisher) publishSnapshot() {
 		}
 		vals[chans[i].Name] = valueOf(chans[i], pipeline.Sample{Value: v.Value, Time: v.Time, Quality: v.Quality})
 	}
-	payload, err := json.Marshal(map[string]any{"t": now.UTC().Format(time.RFC3339Nano), "channels": vals})
+	payload, err := json.Marshal(Snapshot{T: now.UTC().Format(time.RFC3339Nano), Channels: vals})
 	if err != nil {
 		p.stats.Failed.Add(1)
 		return
