@@ -396,6 +396,7 @@ func (cfg *Config) check(file string, root *yaml.Node) Errors {
 			}
 		}
 	}
+	checkFollow(c, cfg.Follow)
 	if _, err := derive.ParseStandard(cfg.Power.Standard); err != nil {
 		c.fail(err.Error(), "power", "standard")
 	}
@@ -422,6 +423,58 @@ func (cfg *Config) check(file string, root *yaml.Node) Errors {
 	}
 	sort.SliceStable(c.errs, func(i, j int) bool { return c.errs[i].Line < c.errs[j].Line })
 	return c.errs
+}
+
+// brokerURL tells whether s is an MQTT broker URL Plenum's client speaks;
+// tls is true for the schemes that use TLS.
+func brokerURL(s string) (ok, tls bool) {
+	u, err := url.Parse(s)
+	if err != nil || u.Host == "" {
+		return false, false
+	}
+	switch u.Scheme {
+	case "tcp", "mqtt":
+		return true, false
+	case "ssl", "tls", "mqtts":
+		return true, true
+	}
+	return false, false
+}
+
+// checkFollow checks the follow section: the shared broker other vehicles
+// are followed through.
+func checkFollow(c *checker, f Follow) {
+	if f.Broker == "" {
+		for _, k := range []string{"username", "password_file", "ca_file", "prefix", "stale_after", "max_vehicles", "events_kept"} {
+			if written(c.root, "follow", k) {
+				c.fail("is set, but follow.broker is not: following other vehicles needs the broker they publish to", "follow", k)
+				return
+			}
+		}
+		return
+	}
+	ok, secure := brokerURL(f.Broker)
+	if !ok {
+		c.fail("must be the URL of the broker the other vehicles publish to, such as tcp://broker.workshop.lan:1883 or ssl://broker.workshop.lan:8883", "follow", "broker")
+	}
+	if f.PasswordFile != "" && f.Username == "" {
+		c.fail("needs follow.username: a password logs in a user", "follow", "password_file")
+	}
+	if ok && f.CAFile != "" && !secure {
+		c.fail("is for a broker reached over TLS: write follow.broker as ssl://host:8883", "follow", "ca_file")
+	}
+	if strings.ContainsAny(f.Prefix, "+# ") || strings.HasPrefix(f.Prefix, "/") || strings.HasSuffix(f.Prefix, "/") {
+		c.fail("must be topic segments without '+', '#' or spaces, not beginning or ending with '/'", "follow", "prefix")
+	}
+	if st := time.Duration(f.StaleAfter); st < time.Second || st > time.Hour {
+		c.fail(fmt.Sprintf("is %v, but must be between 1s and 1h: vehicles publish a snapshot every second by default, so less would show live vehicles stale", st), "follow", "stale_after")
+	}
+	if f.MaxVehicles < 0 || f.MaxVehicles > 4096 {
+		c.fail("must be between 0 (default 64) and 4096", "follow", "max_vehicles")
+	}
+	if f.EventsKept < 0 || f.EventsKept > 1000 {
+		c.fail("must be between 0 (default 20) and 1000", "follow", "events_kept")
+	}
 }
 
 func checkAxis(c *checker, axis []float64, path ...any) {

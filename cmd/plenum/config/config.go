@@ -36,6 +36,7 @@ type Config struct {
 	CAN      []CAN         `yaml:"can"`
 	Record   Record        `yaml:"record"`
 	Display  Display       `yaml:"display"`
+	Follow   Follow        `yaml:"follow"`
 
 	// Raw is the text the configuration was parsed from.
 	Raw []byte `yaml:"-"`
@@ -113,6 +114,20 @@ type CANChannel struct {
 // Power configures power correction.
 type Power struct {
 	Standard string `yaml:"standard"` // sae_j1349 (default), iso_1585 or din_70020
+}
+
+// Follow makes the daemon follow other vehicles through a shared broker
+// that they publish to (their mqtt.broker), for the console's wall view:
+// one tile per vehicle. Empty Broker: off.
+type Follow struct {
+	Broker       string   `yaml:"broker"` // tcp://host:1883 or ssl://host:8883
+	Username     string   `yaml:"username"`
+	PasswordFile string   `yaml:"password_file"` // the password is never in the config itself
+	CAFile       string   `yaml:"ca_file"`       // PEM certificates to trust (ssl://)
+	Prefix       string   `yaml:"prefix"`        // default: mqtt.prefix
+	StaleAfter   Duration `yaml:"stale_after"`   // a vehicle silent this long is shown stale; default 5s
+	MaxVehicles  int      `yaml:"max_vehicles"`  // default 64
+	EventsKept   int      `yaml:"events_kept"`   // per vehicle; default 20
 }
 
 // Display sets the units people read (console, CLI, plots); a browser may
@@ -437,6 +452,18 @@ func (c *Config) defaults() {
 	}
 	if c.MQTT.MaxRateHz == 0 {
 		c.MQTT.MaxRateHz = 10
+	}
+	if c.Follow.Prefix == "" {
+		c.Follow.Prefix = c.MQTT.Prefix
+	}
+	if c.Follow.StaleAfter == 0 {
+		c.Follow.StaleAfter = Duration(5 * time.Second)
+	}
+	if c.Follow.MaxVehicles == 0 {
+		c.Follow.MaxVehicles = 64
+	}
+	if c.Follow.EventsKept == 0 {
+		c.Follow.EventsKept = 20
 	}
 	if c.Power.Standard == "" {
 		c.Power.Standard = "sae_j1349"
