@@ -1,7 +1,6 @@
 package main
 
 import (
-	"flag"
 	"fmt"
 	"io"
 	"net/http"
@@ -60,43 +59,88 @@ func controlToken(cfg *config.Config) (string, error) {
 
 // cmdRunControl is `plenum run-start` and `plenum run-stop`: they ask a
 // running daemon's local HTTP API, with the control token from
-// PLENUM_CONTROL_TOKEN or -token-file.
+// PLENUM_CONTROL_TOKEN or -token-file. Only run-start takes a label, notes
+// and conditions.
 func cmdRunControl(verb string, args []string, stdout io.Writer) error {
-	fs := flag.NewFlagSet("run-"+verb, flag.ContinueOnError)
-	addr := fs.String("addr", "127.0.0.1:9108", "the daemon's HTTP address")
+	name := "run-" + verb
+	what := "Starts a run in a running daemon and prints its id."
+	if verb == "stop" {
+		what = "Stops the run of a running daemon and prints the run's summary."
+	}
+	fs := newFlagSet(name, "[flags]", what+"\nThe control token (the daemon's record.control_token_file) comes from\n$PLENUM_CONTROL_TOKEN or -token-file.", stdout)
+	addr := fs.String("addr", "127.0.0.1:9108", "the daemon's HTTP address: host:port or http://host:port")
 	tokenFile := fs.String("token-file", "", "file holding the control token (default: $PLENUM_CONTROL_TOKEN)")
-	label := fs.String("label", "", "run label (run-start)")
-	notes := fs.String("notes", "", "free-form notes (run-start)")
-	pressure := fs.String("pressure-kpa", "", "ambient pressure read off a barometer, kPa (run-start; default: the sensor)")
-	temp := fs.String("temperature-c", "", "ambient temperature, °C (run-start; default: the sensor)")
-	hum := fs.String("humidity-percent", "", "relative humidity, % (run-start; default: the sensor)")
-	if err := fs.Parse(args); err != nil {
-		return usageError{err.Error()}
+	form := url.Values{}
+	if verb == "start" {
+		for _, f := range []struct{ flag, field, usage string }{
+			{"label", "label", "run label"},
+			{"notes", "notes", "free-form notes"},
+			{"pressure-kpa", "pressure_kpa", "ambient pressure read off a barometer, kPa (default: the sensor)"},
+			{"temperature-c", "temperature_c", "ambient temperature, °C (default: the sensor)"},
+			{"humidity-percent", "humidity_percent", "relative humidity, % (default: the sensor)"},
+		} {
+			fs.Func(f.flag, f.usage, func(v string) error { form.Set(f.field, v); return nil })
+		}
+	}
+	if err := parseFlags(fs, args); err != nil {
+		return err
+	}
+	base, err := daemonURL(*addr)
+	if err != nil {
+		return usageError{fmt.Sprintf("%s: %v", name, err)}
 	}
 	token := os.Getenv("PLENUM_CONTROL_TOKEN")
 	if *tokenFile != "" {
-		var err error
-		if token, err = readSecret("run-"+verb+": -token-file", *tokenFile); err != nil {
+		if token, err = readSecret(name+": -token-file", *tokenFile); err != nil {
 			return err
 		}
 	}
-	form := url.Values{"label": {*label}, "notes": {*notes}, "pressure_kpa": {*pressure}, "temperature_c": {*temp}, "humidity_percent": {*hum}}
-	req, err := http.NewRequest(http.MethodPost, "http://"+*addr+"/api/runs/"+verb, strings.NewReader(form.Encode()))
+	if token == "" {
+		return usageError{fmt.Sprintf("%s: no control token: give the token of the daemon's record.control_token_file in $PLENUM_CONTROL_TOKEN or with -token-file FILE", name)}
+	}
+	req, err := http.NewRequest(http.MethodPost, base+"/api/runs/"+verb, strings.NewReader(form.Encode()))
 	if err != nil {
-		return err
+		return fmt.Errorf("%s: %w", name, err)
 	}
 	req.Header.Set("Content-Type", "application/x-www-form-urlencoded")
 	req.Header.Set("Authorization", "Bearer "+token)
 	c := &http.Client{Timeout: 10 * time.Second}
 	resp, err := c.Do(req)
 	if err != nil {
-		return fmt.Errorf("run-%s: %w", verb, err)
+		return fmt.Errorf("%s: %w", name, err)
 	}
 	defer resp.Body.Close()
 	body, _ := io.ReadAll(resp.Body)
-	if resp.StatusCode != http.StatusOK {
-		return fmt.Errorf("run-%s: %s: %s", verb, resp.Status, strings.TrimSpace(string(body)))
+	switch resp.StatusCode {
+	case http.StatusOK:
+		stdout.Write(body)
+		return nil
+	case http.StatusUnauthorized:
+		src := "$PLENUM_CONTROL_TOKEN"
+		if *tokenFile != "" {
+			src = *tokenFile
+		}
+		return fmt.Errorf("%s: the daemon refused the control token from %s (%s): give the token of the daemon's record.control_token_file in $PLENUM_CONTROL_TOKEN or with -token-file FILE", name, src, resp.Status)
 	}
-	stdout.Write(body)
-	return nil
+	return fmt.Errorf("%s: %s: %s", name, resp.Status, strings.TrimSpace(string(body)))
+}
+
+// daemonURL turns -addr into the daemon's base URL: host:port, or an
+// http:// or https:// URL with no path beyond "/".
+func daemonURL(addr string) (string, error) {
+	if !strings.Contains(addr, "://") {
+		addr = "http://" + addr
+	}
+	u, err := url.Parse(addr)
+	switch {
+	case err != nil:
+		return "", fmt.Errorf("-addr %q: want host:port or http://host:port: %w", addr, err)
+	case u.Scheme != "http" && u.Scheme != "https":
+		return "", fmt.Errorf("-addr %q: the daemon speaks http, not %s: want host:port or http://host:port", addr, u.Scheme)
+	case u.Host == "":
+		return "", fmt.Errorf("-addr %q has no host: want host:port or http://host:port", addr)
+	case u.Path != "" && u.Path != "/" || u.RawQuery != "" || u.Fragment != "" || u.User != nil:
+		return "", fmt.Errorf("-addr %q: give only the daemon's address (host:port or http://host:port), not a path or query", addr)
+	}
+	return u.Scheme + "://" + u.Host, nil
 }

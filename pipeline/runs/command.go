@@ -69,13 +69,13 @@ func (c *Controller) Command(suffix string, payload []byte) []byte {
 	}
 	rep.Request = p.Request
 	if tok := c.cfg.ControlToken; tok != "" && subtle.ConstantTimeCompare([]byte(p.Token), []byte(tok)) != 1 {
-		rep.Error = "unauthorized: the token does not match record.control_token"
+		rep.Error = "unauthorized: the token does not match record.control_token_file"
 		c.log.Warn("mqtt run command refused: bad token", "topic", suffix)
 		return reply()
 	}
 	switch suffix {
 	case "run/start":
-		sr := StartRequest{Label: p.Label, Notes: p.Notes}
+		sr := StartRequest{Label: p.Label, Notes: p.Notes, By: "mqtt"}
 		if p.Conditions != nil {
 			sr.Entered = *p.Conditions
 			sr.Entered.Source = ""
@@ -85,10 +85,9 @@ func (c *Controller) Command(suffix string, payload []byte) []byte {
 			rep.Error = err.Error()
 			return reply()
 		}
-		c.log.Info("run started by MQTT command", "run", id)
 		rep.OK, rep.Run = true, id
 	case "run/stop":
-		sum, err := c.Stop()
+		sum, err := c.stop("mqtt")
 		if sum.Run == "" {
 			rep.Error = err.Error()
 			return reply()

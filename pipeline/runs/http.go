@@ -20,11 +20,11 @@ func (c *Controller) Handler() http.Handler {
 		return func(w http.ResponseWriter, req *http.Request) {
 			tok := c.cfg.ControlToken
 			if tok == "" {
-				http.Error(w, "run commands are off: set record.control_token to enable them", http.StatusForbidden)
+				http.Error(w, "run commands are off: set record.control_token_file in the daemon's configuration to enable them", http.StatusForbidden)
 				return
 			}
 			if subtle.ConstantTimeCompare([]byte(req.Header.Get("Authorization")), []byte("Bearer "+tok)) != 1 {
-				http.Error(w, "unauthorized", http.StatusUnauthorized)
+				http.Error(w, "unauthorized: send the token of record.control_token_file as Authorization: Bearer TOKEN (plenum run-start reads it from $PLENUM_CONTROL_TOKEN or -token-file)", http.StatusUnauthorized)
 				return
 			}
 			h(w, req)
@@ -36,6 +36,7 @@ func (c *Controller) Handler() http.Handler {
 			http.Error(w, err.Error(), http.StatusBadRequest)
 			return
 		}
+		sr.By = "http"
 		id, err := c.Start(sr)
 		if err != nil {
 			http.Error(w, err.Error(), http.StatusConflict)
@@ -44,7 +45,7 @@ func (c *Controller) Handler() http.Handler {
 		json.NewEncoder(w).Encode(map[string]string{"run": id})
 	}))
 	mux.HandleFunc("POST /api/runs/stop", authed(func(w http.ResponseWriter, _ *http.Request) {
-		sum, err := c.Stop()
+		sum, err := c.stop("http")
 		if err != nil && sum.Run == "" {
 			http.Error(w, err.Error(), http.StatusConflict)
 			return

@@ -121,6 +121,9 @@ func (c *Controller) SetPublish(f func([]byte)) {
 type StartRequest struct {
 	Label, Notes string
 	Entered      record.Conditions // values entered with the command win over sensors
+	// By says who asked, for the log: "http", "mqtt", "trigger",
+	// "start-up" ("" for a caller that does not say).
+	By string
 }
 
 // StartUnlessManual starts the daemon's one run at once, unless
@@ -129,7 +132,7 @@ func (c *Controller) StartUnlessManual() (string, error) {
 	if c.cfg.Manual {
 		return "", nil
 	}
-	return c.Start(StartRequest{})
+	return c.Start(StartRequest{By: "start-up"})
 }
 
 // Start opens a new run and returns its id. It fails when a run is already
@@ -153,6 +156,7 @@ func (c *Controller) start(req StartRequest, auto bool) (string, error) {
 		return "", fmt.Errorf("opening run %s: %w", id, err)
 	}
 	c.cur, c.auto = rec, auto
+	c.log.Info("run started", "run", id, "by", req.By, "label", req.Label)
 	c.emit(pipeline.Event{Kind: "run_started", Name: id, Start: now, Tags: map[string]string{"label": req.Label}})
 	return id, nil
 }
@@ -160,7 +164,11 @@ func (c *Controller) start(req StartRequest, auto bool) (string, error) {
 // Stop closes the current run, publishes its summary and returns it. With
 // no run being recorded it returns an error and an empty summary; a run
 // that closed with an error returns both.
-func (c *Controller) Stop() (record.Summary, error) {
+func (c *Controller) Stop() (record.Summary, error) { return c.stop("") }
+
+// stop is Stop for the log's "by" (see StartRequest.By; "shutdown" when the
+// daemon stops).
+func (c *Controller) stop(by string) (record.Summary, error) {
 	c.mu.Lock()
 	defer c.mu.Unlock()
 	if c.cur == nil {
@@ -178,6 +186,7 @@ func (c *Controller) Stop() (record.Summary, error) {
 	if c.publish != nil {
 		c.publish(sum.JSON())
 	}
+	c.log.Info("run stopped", "run", rec.ID(), "by", by, "samples", sum.Samples, "duration", sum.End.Sub(sum.Start).Round(time.Millisecond))
 	c.emit(pipeline.Event{Kind: "run_ended", Name: rec.ID(), Start: sum.Start, End: sum.End,
 		Fields: map[string]float64{"samples": float64(sum.Samples), "turbo_lag_events": float64(sum.LagEvents), "warnings_raised": float64(sum.WarningsRaised)}})
 	if err != nil {
@@ -227,7 +236,7 @@ func (c *Controller) Run(ctx context.Context) {
 		select {
 		case <-ctx.Done():
 			drain()
-			if sum, err := c.Stop(); err != nil && sum.Run != "" {
+			if sum, err := c.stop("shutdown"); err != nil && sum.Run != "" {
 				c.log.Error("closing the run", "err", err)
 			}
 			return
@@ -289,17 +298,15 @@ func (t *trigger) feed(buf []pipeline.Sample) {
 		start, end := t.pull.Update(s.Time, t.thr, t.rpm)
 		switch {
 		case start && t.c.Current() == "":
-			if id, err := t.c.start(StartRequest{Label: "pull", Notes: "started by the wide-open-throttle trigger"}, true); err != nil {
+			if _, err := t.c.start(StartRequest{Label: "pull", Notes: "started by the wide-open-throttle trigger", By: "trigger"}, true); err != nil {
 				t.c.log.Error("auto trigger: cannot start a run", "err", err)
-			} else {
-				t.c.log.Info("pull detected: recording", "run", id)
 			}
 		case end:
 			t.c.mu.Lock()
 			auto := t.c.auto && t.c.cur != nil
 			t.c.mu.Unlock()
 			if auto {
-				if _, err := t.c.Stop(); err != nil {
+				if _, err := t.c.stop("trigger"); err != nil {
 					t.c.log.Error("auto trigger: closing the run", "err", err)
 				}
 			}

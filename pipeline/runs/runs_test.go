@@ -3,7 +3,6 @@ package runs
 import (
 	"context"
 	"encoding/json"
-	"io"
 	"log/slog"
 	"net/http/httptest"
 	"os"
@@ -33,6 +32,7 @@ type harness struct {
 	clock     time.Time
 	events    []pipeline.Event
 	published [][]byte
+	logs      logRecorder
 }
 
 func newHarness(t *testing.T, cfg Config) *harness { return newHarnessSized(t, cfg, 1<<12) }
@@ -57,7 +57,7 @@ func newHarnessSized(t *testing.T, cfg Config, ring int) *harness {
 	h.p = pipeline.New(reg, g, pipeline.Options{})
 	h.sub = h.p.Subscribe("recorder", ring)
 	cfg.Dir, cfg.Vehicle = h.dir, "test-car"
-	h.c = New(cfg, Deps{Registry: reg, Sub: h.sub, Store: h.p.Store(), Log: slog.New(slog.NewTextHandler(io.Discard, nil)),
+	h.c = New(cfg, Deps{Registry: reg, Sub: h.sub, Store: h.p.Store(), Log: slog.New(&h.logs),
 		Emit: func(e pipeline.Event) {
 			h.mu.Lock()
 			h.events = append(h.events, e)
