@@ -137,31 +137,43 @@ func runCommand(ctx context.Context, args []string, stdout, stderr io.Writer, lo
 	return 1
 }
 
+// cmdFlags is a command's flag set and where its usage goes when asked
+// for.
+type cmdFlags struct {
+	*flag.FlagSet
+	stdout   io.Writer
+	synopsis string // the arguments after the command
+	what     string // what the command does
+}
+
 // newFlagSet returns the flag set of command name; -h prints synopsis
 // (the arguments after the command), what the command does, and the flags
 // to stdout.
-func newFlagSet(name, synopsis, what string, stdout io.Writer) *flag.FlagSet {
+func newFlagSet(name, synopsis, what string, stdout io.Writer) *cmdFlags {
 	fs := flag.NewFlagSet(name, flag.ContinueOnError)
 	fs.SetOutput(io.Discard)
-	fs.Usage = func() {
-		fmt.Fprintf(stdout, "usage: plenum %s %s\n\n%s\n", name, synopsis, what)
-		n := 0
-		fs.VisitAll(func(*flag.Flag) { n++ })
-		if n > 0 {
-			fmt.Fprintln(stdout, "\nflags:")
-			fs.SetOutput(stdout)
-			fs.PrintDefaults()
-			fs.SetOutput(io.Discard)
-		}
+	fs.Usage = func() {} // a bad flag is reported by run, without the usage
+	return &cmdFlags{FlagSet: fs, stdout: stdout, synopsis: synopsis, what: what}
+}
+
+// printUsage writes the command's usage and flags to its stdout.
+func (fs *cmdFlags) printUsage() {
+	fmt.Fprintf(fs.stdout, "usage: plenum %s %s\n\n%s\n", fs.Name(), fs.synopsis, fs.what)
+	n := 0
+	fs.VisitAll(func(*flag.Flag) { n++ })
+	if n > 0 {
+		fmt.Fprintln(fs.stdout, "\nflags:")
+		fs.SetOutput(fs.stdout)
+		fs.PrintDefaults()
+		fs.SetOutput(io.Discard)
 	}
-	return fs
 }
 
 // parseFlags parses args into fs. -h prints the usage and returns errHelp;
 // a bad flag or an argument that is not a flag is a usageError.
-func parseFlags(fs *flag.FlagSet, args []string) error {
+func parseFlags(fs *cmdFlags, args []string) error {
 	if err := fs.Parse(args); errors.Is(err, flag.ErrHelp) {
-		fs.Usage()
+		fs.printUsage()
 		return errHelp
 	} else if err != nil {
 		return usageError{fmt.Sprintf("%s: %v (plenum %s -h lists the flags)", fs.Name(), err, fs.Name())}
@@ -236,7 +248,11 @@ func cmdDemo(ctx context.Context, args []string, stdout io.Writer, log *slog.Log
 		ctx, cancel = context.WithTimeout(ctx, *dur)
 		defer cancel()
 	}
-	return runDaemon(ctx, cfg, stdout, log)
+	err = runDaemon(ctx, cfg, stdout, log)
+	if le := (*listenError)(nil); errors.As(err, &le) {
+		le.Flag = map[string]string{"http.listen": "-http", "mqtt.listen": "-mqtt"}[le.Key]
+	}
+	return err
 }
 
 func cmdRun(ctx context.Context, args []string, stdout io.Writer, log *slog.Logger) error {
