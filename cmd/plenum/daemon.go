@@ -20,6 +20,7 @@ import (
 	"github.com/plenum-engine/plenum/pipeline"
 	"github.com/plenum-engine/plenum/pipeline/broker"
 	"github.com/plenum-engine/plenum/pipeline/derived"
+	"github.com/plenum-engine/plenum/pipeline/eventlog"
 	"github.com/plenum-engine/plenum/pipeline/mqttpub"
 	"github.com/plenum-engine/plenum/pipeline/promexport"
 	"github.com/plenum-engine/plenum/pipeline/record"
@@ -178,6 +179,9 @@ func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *s
 		return err
 	}
 	evm := promexport.NewEvents(p.SubscribeEvents("event_metrics"))
+	// Warnings raised and cleared are logged from a subscription of their
+	// own: the derivations never wait on the log.
+	evlog := eventlog.New(eventlog.Config{Logger: log}, p.SubscribeEvents("event_log"))
 	h, err := promexport.Handler(col, evm)
 	if err != nil {
 		return err
@@ -229,7 +233,7 @@ func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *s
 				<-ctx.Done()
 			}
 			return nil
-		}}, {"event metrics", evm.Run}},
+		}}, {"event metrics", evm.Run}, {"event log", evlog.Run}},
 	}
 	if pusher != nil {
 		st = append(st, stage{{"push", pusher.Run}})
