@@ -55,22 +55,26 @@ func (h logLines) has(prefix string) bool {
 }
 
 // TestCleanShutdownLogsNoWarning runs the demo daemon, recording, until its
-// publisher is connected and a run is being recorded, then stops it as
-// SIGTERM does: the log has no warning or error, and says the run stopped.
+// publisher is connected, a run is being recorded and the cold engine's
+// warning has been raised and cleared, then stops it as SIGTERM does. The
+// log says, at info level, that the run started and stopped and that the
+// warning was raised and cleared, and has no warning or error.
 func TestCleanShutdownLogsNoWarning(t *testing.T) {
 	cfg, err := config.Parse("demo.yaml", demoConfig)
 	if err != nil {
 		t.Fatal(err)
 	}
 	cfg.HTTP.Listen, cfg.MQTT.Listen = "127.0.0.1:0", "127.0.0.1:0"
-	cfg.StateDir, cfg.Record.Dir = t.TempDir(), t.TempDir()
+	cfg.StateDir, cfg.Record.Dir = t.TempDir(), t.TempDir() // a cold engine
+	cfg.Sim.TimeScale = 20                                     // the rev on a cold engine within about a second
 	logs := newLogLines()
 	ctx, cancel := context.WithCancel(context.Background())
 	defer cancel()
 	done := make(chan error, 1)
 	go func() { done <- runDaemon(ctx, cfg, &syncBuffer{}, slog.New(logs)) }()
 	deadline := time.Now().Add(20 * time.Second)
-	for !(logs.has("INFO mqtt connected") && logs.has("INFO run started") && logs.has("INFO device open")) {
+	for !(logs.has("INFO mqtt connected") && logs.has("INFO run started") && logs.has("INFO device open") &&
+		logs.has("INFO warning cleared rule=cold_engine_high_load")) {
 		select {
 		case err := <-done:
 			t.Fatalf("the daemon stopped early: %v\n%s", err, strings.Join(logs.get(), "\n"))
@@ -90,7 +94,8 @@ func TestCleanShutdownLogsNoWarning(t *testing.T) {
 			t.Errorf("a clean shutdown logged %q", l)
 		}
 	}
-	for _, want := range []string{"INFO shutting down", "INFO run stopped"} {
+	for _, want := range []string{"INFO run started run=", "INFO warning raised rule=cold_engine_high_load severity=warning",
+		"INFO warning cleared rule=cold_engine_high_load", "INFO shutting down", "INFO run stopped run="} {
 		if !logs.has(want) {
 			t.Errorf("the log lacks %q:\n%s", want, strings.Join(lines, "\n"))
 		}
