@@ -66,7 +66,7 @@ func TestCleanShutdownLogsNoWarning(t *testing.T) {
 	}
 	cfg.HTTP.Listen, cfg.MQTT.Listen = "127.0.0.1:0", "127.0.0.1:0"
 	cfg.StateDir, cfg.Record.Dir = t.TempDir(), t.TempDir() // a cold engine
-	cfg.Sim.TimeScale = 20                                     // the rev on a cold engine within about a second
+	cfg.Sim.TimeScale = 20                                  // the rev on a cold engine within about a second
 	logs := newLogLines()
 	ctx, cancel := context.WithCancel(context.Background())
 	defer cancel()
