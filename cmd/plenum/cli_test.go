@@ -28,6 +28,8 @@ func TestUsage(t *testing.T) {
 		{[]string{"--help"}, []string{"usage: plenum COMMAND"}, nil, 0},
 		{[]string{"help"}, []string{"usage: plenum COMMAND", "plenum COMMAND -h"}, nil, 0},
 		{[]string{"help", "demo"}, []string{"usage: plenum demo", "-time-scale", "at most 100"}, nil, 0},
+		{[]string{"help", "run-stop"}, []string{"usage: plenum run-stop"}, nil, 0},
+		{[]string{"help", "help"}, []string{"usage: plenum COMMAND"}, nil, 0},
 		{[]string{"demo", "-h"}, []string{"usage: plenum demo", "-http", "-mqtt", "-for", "-record", "-time-scale"}, nil, 0},
 		{[]string{"run", "-h"}, []string{"usage: plenum run -config FILE", "-config"}, nil, 0},
 		{[]string{"run", "--help"}, []string{"usage: plenum run -config FILE"}, nil, 0},

@@ -91,8 +91,11 @@ func runCommand(ctx context.Context, args []string, stdout, stderr io.Writer, lo
 	var err error
 	switch args[0] {
 	case "-h", "-help", "--help", "help":
-		if args[0] == "help" && len(args) == 2 && args[1] != "help" && !strings.HasPrefix(args[1], "-") {
+		if args[0] == "help" && len(args) == 2 && args[1] != "help" {
 			return runCommand(ctx, []string{args[1], "-h"}, stdout, stderr, log)
+		}
+		if args[0] == "help" && len(args) == 2 {
+			args = args[:1] // help help
 		}
 		if len(args) > 1 {
 			err = usageError{fmt.Sprintf("help takes at most one command, not %q", strings.Join(args[1:], " "))}
