@@ -80,7 +80,7 @@ func TestBadCommandLines(t *testing.T) {
 		args []string
 		want string // in stderr
 	}{
-		{[]string{"version", "extra"}, `unexpected argument "extra"`},
+		{[]string{"version", "extra"}, `version: unexpected argument "extra": version takes none`},
 		{[]string{"run", "plenum.yaml"}, `unexpected argument "plenum.yaml"`},
 		{[]string{"check", "-config", "a.yaml", "b.yaml"}, `unexpected argument "b.yaml"`},
 		{[]string{"check", "a.yaml", "-config", "b.yaml"}, `unexpected argument "a.yaml"`},

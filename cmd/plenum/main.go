@@ -181,7 +181,10 @@ func parseFlags(fs *cmdFlags, args []string) error {
 	} else if err != nil {
 		return usageError{fmt.Sprintf("%s: %v (plenum %s -h lists the flags)", fs.Name(), err, fs.Name())}
 	}
-	if fs.NArg() > 0 {
+	if n := 0; fs.NArg() > 0 {
+		if fs.VisitAll(func(*flag.Flag) { n++ }); n == 0 {
+			return usageError{fmt.Sprintf("%s: unexpected argument %q: %s takes none", fs.Name(), fs.Arg(0), fs.Name())}
+		}
 		return usageError{fmt.Sprintf("%s: unexpected argument %q: %s takes flags only (plenum %s -h lists them)", fs.Name(), fs.Arg(0), fs.Name(), fs.Name())}
 	}
 	return nil
