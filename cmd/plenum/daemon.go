@@ -13,12 +13,14 @@ import (
 	"os"
 	"path/filepath"
 	"strings"
+	"syscall"
 	"time"
 
 	"github.com/plenum-engine/plenum/cmd/plenum/config"
 	"github.com/plenum-engine/plenum/pipeline"
 	"github.com/plenum-engine/plenum/pipeline/broker"
 	"github.com/plenum-engine/plenum/pipeline/derived"
+	"github.com/plenum-engine/plenum/pipeline/eventlog"
 	"github.com/plenum-engine/plenum/pipeline/mqttpub"
 	"github.com/plenum-engine/plenum/pipeline/promexport"
 	"github.com/plenum-engine/plenum/pipeline/record"
@@ -101,7 +103,7 @@ func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *s
 		brk, err = broker.Start(context.WithoutCancel(ctx), broker.Config{Addr: cfg.MQTT.Listen, Anonymous: anon, Users: users, Prefix: cfg.MQTT.Prefix,
 			DaemonClientID: mcfg.ClientID, Logger: quiet(log)})
 		if err != nil {
-			return err
+			return listenProblem(err, "mqtt.listen", cfg.MQTT.Listen)
 		}
 		defer brk.Close()
 		mcfg.Broker = "tcp://" + brk.Addr().String()
@@ -189,6 +191,9 @@ func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *s
 	}
 	col.WithRules(rules...)
 	evm := promexport.NewEvents(p.SubscribeEvents("event_metrics"), rules...)
+	// Warnings raised and cleared are logged from a subscription of their
+	// own: the derivations never wait on the log.
+	evlog := eventlog.New(eventlog.Config{Logger: log}, p.SubscribeEvents("event_log"))
 	h, err := promexport.Handler(col, evm)
 	if err != nil {
 		return err
@@ -206,7 +211,7 @@ func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *s
 	})
 	ln, err := net.Listen("tcp", cfg.HTTP.Listen)
 	if err != nil {
-		return fmt.Errorf("http listen %s: %w", cfg.HTTP.Listen, err)
+		return listenProblem(fmt.Errorf("http listen %s: %w", cfg.HTTP.Listen, err), "http.listen", cfg.HTTP.Listen)
 	}
 	srv := &http.Server{Handler: mux, ReadHeaderTimeout: 5 * time.Second}
 	if rr != nil {
@@ -240,7 +245,7 @@ func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *s
 				<-ctx.Done()
 			}
 			return nil
-		}}, {"event metrics", evm.Run}},
+		}}, {"event metrics", evm.Run}, {"event log", evlog.Run}},
 	}
 	if pusher != nil {
 		st = append(st, stage{{"push", pusher.Run}})
@@ -254,6 +259,35 @@ func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *s
 		drivers = append(drivers, part{s.name, func(ctx context.Context) error { return s.run(ctx, p) }})
 	}
 	return runStages(ctx, log, append(st, drivers)...)
+}
+
+// listenError is a listen address that is already in use: it names the
+// configuration key that changes it, or the command-line flag when the
+// command sets the address from one (demo's -http and -mqtt).
+type listenError struct {
+	Key  string // configuration key: http.listen, mqtt.listen
+	Flag string // the flag that set the address, or ""
+	Addr string
+	Err  error
+}
+
+func (e *listenError) Error() string {
+	how := "set another address in " + e.Key + " in the configuration"
+	if e.Flag != "" {
+		how = "give another address with " + e.Flag
+	}
+	return fmt.Sprintf("%v: another program (or another plenum) is listening on %s; stop it, or %s", e.Err, e.Addr, how)
+}
+
+func (e *listenError) Unwrap() error { return e.Err }
+
+// listenProblem turns err into a *listenError when it says that addr is
+// already in use.
+func listenProblem(err error, key, addr string) error {
+	if errors.Is(err, syscall.EADDRINUSE) {
+		return &listenError{Key: key, Addr: addr, Err: err}
+	}
+	return err
 }
 
 // serveHTTP serves on ln until ctx ends, then shuts the server down,

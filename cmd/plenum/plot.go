@@ -1,7 +1,6 @@
 package main
 
 import (
-	"flag"
 	"fmt"
 	"io"
 	"path/filepath"
@@ -17,15 +16,15 @@ import (
 // lambda against engine speed, and any channels against time, for one run or
 // several overlaid.
 func cmdPlot(args []string, stdout io.Writer) error {
-	fs := flag.NewFlagSet("plot", flag.ContinueOnError)
+	fs := newFlagSet("plot", "-in RUN[,RUN…] -out FILE.png|FILE.svg [flags]", "Draws corrected power and torque, boost and lambda against engine speed, and\nchosen channels against time, for one run or several overlaid.", stdout)
 	in := fs.String("in", "", "comma-separated runs: run directories, ids under -dir, or line-protocol files")
 	dir := fs.String("dir", "", "the recording directory that holds run ids")
 	out := fs.String("out", "", "output file, .png or .svg")
 	chans := fs.String("channels", "", "also plot these channels against time (comma-separated)")
 	units := fs.String("units", "", "units for people, e.g. pressure=bar,temperature=F,power=hp_mech,mixture=afr (default metric: kPa, °C, kW, λ)")
 	fuel := fs.String("fuel", "gasoline", "the fuel whose stoichiometric ratio mixture=afr uses")
-	if err := fs.Parse(args); err != nil {
-		return usageError{err.Error()}
+	if err := parseFlags(fs, args); err != nil {
+		return err
 	}
 	if *in == "" || *out == "" {
 		return usageError{"plot needs -in RUN[,RUN…] and -out FILE.png|FILE.svg"}

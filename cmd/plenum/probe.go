@@ -3,7 +3,6 @@ package main
 import (
 	"context"
 	"errors"
-	"flag"
 	"fmt"
 	"io"
 	"strings"
@@ -18,12 +17,12 @@ import (
 // cmdProbe asks the bus which ECUs answer and what they support. It sends
 // only read requests (services 01 and 09).
 func cmdProbe(ctx context.Context, args []string, stdout io.Writer) error {
-	fs := flag.NewFlagSet("probe", flag.ContinueOnError)
+	fs := newFlagSet("probe", "[-bus can0 | -sim] [-29bit]", "Lists the ECUs that answer on a CAN bus, their VIN and supported PIDs, with\nread-only requests (services 01 and 09), and prints a configuration to start from.", stdout)
 	busName := fs.String("bus", "can0", "SocketCAN interface")
 	useSim := fs.Bool("sim", false, "probe a simulated ECU on a virtual bus instead")
 	format29 := fs.Bool("29bit", false, "use 29-bit identifiers")
-	if err := fs.Parse(args); err != nil {
-		return usageError{err.Error()}
+	if err := parseFlags(fs, args); err != nil {
+		return err
 	}
 	format := obd.ID11
 	if *format29 {

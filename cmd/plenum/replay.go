@@ -1,7 +1,6 @@
 package main
 
 import (
-	"flag"
 	"fmt"
 	"io"
 	"path/filepath"
@@ -15,15 +14,15 @@ import (
 // configuration (by default the one recorded with the run) and writes the
 // result as line protocol, or as CSV with -csv.
 func cmdReplay(args []string, stdout io.Writer) error {
-	fs := flag.NewFlagSet("replay", flag.ContinueOnError)
+	fs := newFlagSet("replay", "-in RUN [flags]", "Feeds a recorded run through the derivations and detectors of a configuration\n(by default the run's own) and writes the result as line protocol or CSV.", stdout)
 	cfgPath := fs.String("config", "", "configuration to replay with (default: the run's own config.yaml)")
 	in := fs.String("in", "", "a run directory, a run id under -dir, or a line-protocol file")
 	dir := fs.String("dir", "", "the recording directory that holds run ids")
 	out := fs.String("out", "", "output file (default: standard output)")
 	asCSV := fs.Bool("csv", false, "write a CSV table (time, channel, value, quality) instead of line protocol")
 	sumPath := fs.String("summary", "", "also write the replayed run's summary (JSON) to this file")
-	if err := fs.Parse(args); err != nil {
-		return usageError{err.Error()}
+	if err := parseFlags(fs, args); err != nil {
+		return err
 	}
 	if *in == "" {
 		return usageError{"replay needs -in RUN"}

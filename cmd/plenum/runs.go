@@ -1,12 +1,12 @@
 package main
 
 import (
+	"context"
 	"encoding/json"
-	"flag"
+	"errors"
 	"fmt"
 	"io"
 	"math"
-	"net/http"
 	"net/url"
 	"os"
 	"os/user"
@@ -84,22 +84,32 @@ func controlToken(cfg *config.Config) (string, error) {
 
 // cmdRunControl is `plenum run-start` and `plenum run-stop`: they ask a
 // running daemon's local HTTP API, with the control token from
-// PLENUM_CONTROL_TOKEN or -token-file. run-start prints {"run": id},
-// run-stop the run's summary.
+// PLENUM_CONTROL_TOKEN or -token-file. Only run-start takes a label, notes
+// and conditions. run-start prints {"run": id}, run-stop the run's summary.
 func cmdRunControl(verb string, args []string, stdout io.Writer) error {
-	fs := flag.NewFlagSet("run-"+verb, flag.ContinueOnError)
-	addr := fs.String("addr", "127.0.0.1:9108", "the daemon's HTTP address")
-	tokenFile := fs.String("token-file", "", "file holding the control token (default: $PLENUM_CONTROL_TOKEN)")
-	label := fs.String("label", "", "run label (run-start)")
-	notes := fs.String("notes", "", "free-form notes (run-start)")
-	pressure := fs.String("pressure-kpa", "", "ambient pressure read off a barometer, kPa (run-start; default: the sensor)")
-	temp := fs.String("temperature-c", "", "ambient temperature, °C (run-start; default: the sensor)")
-	hum := fs.String("humidity-percent", "", "relative humidity, % (run-start; default: the sensor)")
-	if err := fs.Parse(args); err != nil {
-		return usageError{err.Error()}
+	name := "run-" + verb
+	what := "Starts a run in a running daemon and prints its id."
+	if verb == "stop" {
+		what = "Stops the run of a running daemon and prints the run's summary."
 	}
-	form := url.Values{"label": {*label}, "notes": {*notes}, "pressure_kpa": {*pressure}, "temperature_c": {*temp}, "humidity_percent": {*hum}}
-	rep, err := postCommand("run-"+verb, *addr, *tokenFile, "/api/runs/"+verb, form)
+	fs := newFlagSet(name, "[flags]", what+"\nThe control token (the daemon's record.control_token_file) comes from\n$PLENUM_CONTROL_TOKEN or -token-file.", stdout)
+	addr, tokenFile := clientFlags(fs)
+	form := url.Values{}
+	if verb == "start" {
+		for _, f := range []struct{ flag, field, usage string }{
+			{"label", "label", "run label"},
+			{"notes", "notes", "free-form notes"},
+			{"pressure-kpa", "pressure_kpa", "ambient pressure read off a barometer, kPa (default: the sensor)"},
+			{"temperature-c", "temperature_c", "ambient temperature, °C (default: the sensor)"},
+			{"humidity-percent", "humidity_percent", "relative humidity, % (default: the sensor)"},
+		} {
+			fs.Func(f.flag, f.usage, func(v string) error { form.Set(f.field, v); return nil })
+		}
+	}
+	if err := parseFlags(fs, args); err != nil {
+		return err
+	}
+	rep, err := post(name, *addr, *tokenFile, "/api/runs/"+verb, form)
 	if err != nil {
 		return err
 	}
@@ -118,16 +128,15 @@ func cmdRunControl(verb string, args []string, stdout io.Writer) error {
 // switched_off_hot) clears once its condition has gone. The daemon records
 // a warning_acknowledged event saying by whom (-by, default the user name).
 func cmdWarningAck(args []string, stdout io.Writer) error {
-	fs := flag.NewFlagSet("warning-ack", flag.ContinueOnError)
-	addr := fs.String("addr", "127.0.0.1:9108", "the daemon's HTTP address")
-	tokenFile := fs.String("token-file", "", "file holding the control token (default: $PLENUM_CONTROL_TOKEN)")
+	fs := newFlagSet("warning-ack", "-rule NAME [flags]", "Acknowledges a raised warning in a running daemon; a latched one clears once its\ncondition has gone. The control token comes from $PLENUM_CONTROL_TOKEN or -token-file.", stdout)
+	addr, tokenFile := clientFlags(fs)
 	rule := fs.String("rule", "", "the warning rule to acknowledge, e.g. switched_off_hot")
 	by := fs.String("by", "", "who acknowledges, recorded in the event (default: the user name)")
-	if err := fs.Parse(args); err != nil {
-		return usageError{err.Error()}
+	if err := parseFlags(fs, args); err != nil {
+		return err
 	}
-	if *rule == "" || fs.NArg() > 0 {
-		return usageError{"warning-ack needs -rule NAME and nothing else"}
+	if *rule == "" {
+		return usageError{"warning-ack needs -rule NAME: the warning rule to acknowledge"}
 	}
 	who := *by
 	if who == "" {
@@ -135,48 +144,44 @@ func cmdWarningAck(args []string, stdout io.Writer) error {
 			who = u.Username
 		}
 	}
-	if _, err := postCommand("warning-ack", *addr, *tokenFile, "/api/warnings/acknowledge", url.Values{"rule": {*rule}, "by": {who}}); err != nil {
+	if _, err := post("warning-ack", *addr, *tokenFile, "/api/warnings/acknowledge", url.Values{"rule": {*rule}, "by": {who}}); err != nil {
 		return err
 	}
 	fmt.Fprintf(stdout, "%s acknowledged\n", *rule)
 	return nil
 }
 
-// postCommand sends a form-encoded command to a running daemon's HTTP API
-// with the control token and returns its reply; a reply that is not OK is
-// an error carrying the daemon's words.
-func postCommand(name, addr, tokenFile, path string, form url.Values) (runs.Reply, error) {
-	token := os.Getenv("PLENUM_CONTROL_TOKEN")
+// clientFlags adds the flags every client command takes.
+func clientFlags(fs *cmdFlags) (addr, tokenFile *string) {
+	return fs.String("addr", "127.0.0.1:9108", "the daemon's HTTP address: host:port or http://host:port"),
+		fs.String("token-file", "", "file holding the control token (default: $PLENUM_CONTROL_TOKEN)")
+}
+
+// post sends a command to the daemon at addr with the control token from
+// tokenFile or $PLENUM_CONTROL_TOKEN, saying how to give the token when it
+// is missing or refused.
+func post(name, addr, tokenFile, path string, form url.Values) (runs.Reply, error) {
+	base, err := runs.DaemonURL(addr)
+	if err != nil {
+		return runs.Reply{}, usageError{fmt.Sprintf("%s: -addr %v", name, err)}
+	}
+	token, src := os.Getenv("PLENUM_CONTROL_TOKEN"), "$PLENUM_CONTROL_TOKEN"
 	if tokenFile != "" {
-		var err error
 		if token, err = readSecret(name+": -token-file", tokenFile); err != nil {
 			return runs.Reply{}, err
 		}
+		src = tokenFile
 	}
-	for k, v := range form {
-		if len(v) == 1 && v[0] == "" {
-			delete(form, k)
-		}
+	const how = "give the token of the daemon's record.control_token_file in $PLENUM_CONTROL_TOKEN or with -token-file FILE"
+	if token == "" {
+		return runs.Reply{}, usageError{fmt.Sprintf("%s: no control token: %s", name, how)}
 	}
-	req, err := http.NewRequest(http.MethodPost, "http://"+addr+path, strings.NewReader(form.Encode()))
+	rep, err := runs.Client{Base: base, Token: token}.Post(context.Background(), path, form)
+	if errors.Is(err, runs.ErrUnauthorized) {
+		return rep, fmt.Errorf("%s: the daemon refused the control token from %s (401 Unauthorized): %s", name, src, how)
+	}
 	if err != nil {
-		return runs.Reply{}, err
-	}
-	req.Header.Set("Content-Type", "application/x-www-form-urlencoded")
-	req.Header.Set("Authorization", "Bearer "+token)
-	c := &http.Client{Timeout: 10 * time.Second}
-	resp, err := c.Do(req)
-	if err != nil {
-		return runs.Reply{}, fmt.Errorf("%s: %w", name, err)
-	}
-	defer resp.Body.Close()
-	body, _ := io.ReadAll(resp.Body)
-	var rep runs.Reply
-	if err := json.Unmarshal(body, &rep); err != nil {
-		return runs.Reply{}, fmt.Errorf("%s: %s: %s", name, resp.Status, strings.TrimSpace(string(body)))
-	}
-	if resp.StatusCode != http.StatusOK || !rep.OK {
-		return rep, fmt.Errorf("%s: %s: %s", name, resp.Status, rep.Error)
+		return rep, fmt.Errorf("%s: %w", name, err)
 	}
 	return rep, nil
 }

@@ -4,6 +4,7 @@ import (
 	"context"
 	"errors"
 	"log/slog"
+	"net"
 	"sync"
 	"time"
 
@@ -113,13 +114,20 @@ func (b *burstLog) flush() {
 
 // refusalFilter drops the broker library's own line for each connection or
 // publish the access rules refused: those are counted and logged once per
-// burst by burstLog instead.
+// burst by burstLog instead. It also drops the library's warning for a
+// client connection the broker itself closed (a client's DISCONNECT, a
+// takeover, Close at shutdown): "use of closed network connection" is no
+// fault, and a clean shutdown logs no warning.
 type refusalFilter struct{ slog.Handler }
 
 func (f refusalFilter) Handle(ctx context.Context, r slog.Record) error {
 	refused := false
 	r.Attrs(func(a slog.Attr) bool {
 		if err, ok := a.Value.Any().(error); ok && a.Key == "error" {
+			if errors.Is(err, net.ErrClosed) {
+				refused = true
+				return false
+			}
 			var code packets.Code
 			if errors.As(err, &code) {
 				switch code {

@@ -87,7 +87,7 @@ func (c *Controller) Command(suffix string, payload []byte) []byte {
 	}
 	if tok := c.cfg.ControlToken; tok != "" && subtle.ConstantTimeCompare([]byte(p.Token), []byte(tok)) != 1 {
 		c.log.Warn("mqtt command refused: bad token", "topic", suffix)
-		return jsonReply(Reply{Request: p.Request, Error: "unauthorized: the token does not match record.control_token"})
+		return jsonReply(Reply{Request: p.Request, Error: "unauthorized: the token does not match record.control_token_file"})
 	}
 	rep, _ := c.do("mqtt", suffix, p)
 	return jsonReply(rep)
@@ -111,7 +111,7 @@ func (c *Controller) do(via, cmd string, p CommandPayload) (Reply, int) {
 		if p.Rule != "" || p.By != "" {
 			return fail(http.StatusBadRequest, errors.New("run/start takes no rule or by"))
 		}
-		sr := StartRequest{Label: p.Label, Notes: p.Notes}
+		sr := StartRequest{Label: p.Label, Notes: p.Notes, By: via}
 		if p.Conditions != nil {
 			sr.Entered = *p.Conditions
 			sr.Entered.Source = ""
@@ -120,10 +120,9 @@ func (c *Controller) do(via, cmd string, p CommandPayload) (Reply, int) {
 		if err != nil {
 			return fail(http.StatusConflict, err)
 		}
-		c.log.Info("run started by command", "run", id, "via", via)
 		rep.OK, rep.Run = true, id
 	case "run/stop":
-		sum, err := c.Stop()
+		sum, err := c.stop(via)
 		if sum.Run == "" {
 			return fail(http.StatusConflict, err)
 		}

@@ -220,7 +220,7 @@ func TestDiskFullRun(t *testing.T) {
 	if !errors.Is(err, record.ErrDataLost) {
 		t.Fatalf("Stop of a run that lost data: %v", err)
 	}
-	if logs := h.logs.String(); !strings.Contains(logs, "level=ERROR msg=\"the run ended incomplete\"") {
+	if logs := h.logs.String(); !strings.Contains(logs, "ERROR the run ended incomplete") {
 		t.Fatalf("no error logged at the end:\n%s", logs)
 	}
 	samples, gaps := countLines(t, disk.data("0001.lp"))

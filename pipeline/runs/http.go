@@ -51,11 +51,11 @@ func (c *Controller) Handler() http.Handler {
 			}
 			tok := c.cfg.ControlToken
 			if tok == "" {
-				writeJSON(w, http.StatusForbidden, Reply{Request: request(), Error: "commands are off: set record.control_token to enable them"})
+				writeJSON(w, http.StatusForbidden, Reply{Request: request(), Error: "commands are off: set record.control_token_file in the daemon's configuration to enable them"})
 				return
 			}
 			if subtle.ConstantTimeCompare([]byte(req.Header.Get("Authorization")), []byte("Bearer "+tok)) != 1 {
-				writeJSON(w, http.StatusUnauthorized, Reply{Request: request(), Error: "unauthorized"})
+				writeJSON(w, http.StatusUnauthorized, Reply{Request: request(), Error: "unauthorized: send the token of record.control_token_file as Authorization: Bearer TOKEN (plenum run-start reads it from $PLENUM_CONTROL_TOKEN or -token-file)"})
 				return
 			}
 			var p CommandPayload

@@ -40,7 +40,7 @@ func TestOneCommandParser(t *testing.T) {
 		{"form unknown field", "/api/runs/start", "application/x-www-form-urlencoded", "Bearer s3cret", `request=q3&lable=typo`, 400,
 			Reply{Request: "q3", Error: `unknown form field "lable" (known: request, label, notes, rule, by, pressure_kpa, temperature_c, humidity_percent)`}},
 		{"unauthorized keeps the request", "/api/runs/start", "application/json", "Bearer nope", `{"request":"q4"}`, 401,
-			Reply{Request: "q4", Error: "unauthorized"}},
+			Reply{Request: "q4", Error: "unauthorized: send the token of record.control_token_file as Authorization: Bearer TOKEN (plenum run-start reads it from $PLENUM_CONTROL_TOKEN or -token-file)"}},
 		{"token in the body", "/api/runs/start", "application/json", "Bearer s3cret", `{"request":"q5","token":"s3cret"}`, 400,
 			Reply{Request: "q5", Error: "token: over HTTP the token goes in the Authorization header, not the body"}},
 		{"json start", "/api/runs/start", "application/json", "Bearer s3cret",
@@ -102,7 +102,7 @@ func TestCommandAcknowledge(t *testing.T) {
 		name, payload string
 		want          Reply
 	}{
-		{"no token", `{"request":"a","rule":"switched_off_hot"}`, Reply{Request: "a", Error: "unauthorized: the token does not match record.control_token"}},
+		{"no token", `{"request":"a","rule":"switched_off_hot"}`, Reply{Request: "a", Error: "unauthorized: the token does not match record.control_token_file"}},
 		{"unknown key keeps the request", `{"request":"b","token":"tok","rulle":"x"}`, Reply{Request: "b", Error: `cmd/warning/acknowledge: payload is not a JSON command: json: unknown field "rulle"`}},
 		{"two values keep the request", `{"request":"c"} {}`, Reply{Request: "c", Error: "cmd/warning/acknowledge: payload holds more than one JSON value"}},
 		{"acknowledged", `{"request":"d","token":"tok","rule":"switched_off_hot","by":"pit"}`, Reply{Request: "d", OK: true, Rule: "switched_off_hot"}},

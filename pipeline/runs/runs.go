@@ -189,6 +189,9 @@ func (c *Controller) SetPublish(f func([]byte)) {
 type StartRequest struct {
 	Label, Notes string
 	Entered      record.Conditions // values entered with the command win over sensors
+	// By says who asked, for the log: "http", "mqtt", "trigger",
+	// "start-up" ("" for a caller that does not say).
+	By string
 }
 
 // StartUnlessManual starts the daemon's one run at once, unless
@@ -197,7 +200,7 @@ func (c *Controller) StartUnlessManual() (string, error) {
 	if c.cfg.Manual {
 		return "", nil
 	}
-	return c.Start(StartRequest{})
+	return c.Start(StartRequest{By: "start-up"})
 }
 
 // Start opens a new run and returns its id. It fails when a run is already
@@ -230,6 +233,7 @@ func (c *Controller) start(req StartRequest, auto bool) (string, error) {
 	c.account() // what the queue dropped before the run is not the run's
 	c.cur, c.auto, c.diskFed, c.refLog = rec, auto, 0, false
 	c.cond = pendingConditions{on: pending, since: now, entered: req.Entered}
+	c.log.Info("run started", "run", id, "by", req.By, "label", req.Label)
 	c.emit(pipeline.Event{Kind: "run_started", Name: id, Start: now, Tags: map[string]string{"label": req.Label}})
 	return id, nil
 }
@@ -238,7 +242,11 @@ func (c *Controller) start(req StartRequest, auto bool) (string, error) {
 // no run being recorded it returns an error and an empty summary; a run
 // that closed with an error, or lost samples or events (the error wraps
 // record.ErrDataLost), returns both, and the error is logged.
-func (c *Controller) Stop() (record.Summary, error) {
+func (c *Controller) Stop() (record.Summary, error) { return c.stop("") }
+
+// stop is Stop for the log's "by" (see StartRequest.By; "shutdown" when the
+// daemon stops).
+func (c *Controller) stop(by string) (record.Summary, error) {
 	c.mu.Lock()
 	defer c.mu.Unlock()
 	if c.cur == nil {
@@ -264,6 +272,7 @@ func (c *Controller) Stop() (record.Summary, error) {
 	if c.publish != nil {
 		c.publish(sum.JSON())
 	}
+	c.log.Info("run stopped", "run", rec.ID(), "by", by, "samples", sum.Samples, "duration", sum.End.Sub(sum.Start).Round(time.Millisecond))
 	c.emit(pipeline.Event{Kind: "run_ended", Name: rec.ID(), Start: sum.Start, End: sum.End,
 		Fields: map[string]float64{"samples": float64(sum.Samples), "samples_lost": float64(sum.SamplesLost),
 			"events_lost": float64(sum.EventsLost), "recording_gaps": float64(sum.Gaps),
@@ -318,7 +327,7 @@ func (c *Controller) Run(ctx context.Context) error {
 		select {
 		case <-ctx.Done():
 			drain()
-			if sum, err := c.Stop(); err != nil && sum.Run != "" { // logged by Stop
+			if sum, err := c.stop("shutdown"); err != nil && sum.Run != "" { // logged by stop
 				return err
 			}
 			return nil
@@ -412,17 +421,15 @@ func (t *trigger) feed(buf []pipeline.Sample) {
 		start, end := t.pull.Update(s.Time, t.thr, t.rpm)
 		switch {
 		case start && t.c.Current() == "":
-			if id, err := t.c.start(StartRequest{Label: "pull", Notes: "started by the wide-open-throttle trigger"}, true); err != nil {
+			if _, err := t.c.start(StartRequest{Label: "pull", Notes: "started by the wide-open-throttle trigger", By: "trigger"}, true); err != nil {
 				t.c.log.Error("auto trigger: cannot start a run", "err", err)
-			} else {
-				t.c.log.Info("pull detected: recording", "run", id)
 			}
 		case end:
 			t.c.mu.Lock()
 			auto := t.c.auto && t.c.cur != nil
 			t.c.mu.Unlock()
 			if auto {
-				t.c.Stop() // logs what went wrong
+				t.c.stop("trigger") // logs what went wrong
 			}
 		}
 	}

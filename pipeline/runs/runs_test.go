@@ -1,7 +1,6 @@
 package runs
 
 import (
-	"bytes"
 	"context"
 	"encoding/json"
 	"log/slog"
@@ -34,25 +33,7 @@ type harness struct {
 	events    []pipeline.Event
 	published [][]byte
 	free      uint64 // what the free-space guard reads
-	logs      syncBuffer
-}
-
-// syncBuffer is a bytes.Buffer safe for concurrent use, for logs.
-type syncBuffer struct {
-	mu sync.Mutex
-	b  bytes.Buffer
-}
-
-func (b *syncBuffer) Write(p []byte) (int, error) {
-	b.mu.Lock()
-	defer b.mu.Unlock()
-	return b.b.Write(p)
-}
-
-func (b *syncBuffer) String() string {
-	b.mu.Lock()
-	defer b.mu.Unlock()
-	return b.b.String()
+	logs      logRecorder
 }
 
 func newHarness(t *testing.T, cfg Config) *harness { return newHarnessSized(t, cfg, 1<<12) }
@@ -77,7 +58,7 @@ func newHarnessSized(t *testing.T, cfg Config, ring int) *harness {
 	h.p = pipeline.New(reg, g, pipeline.Options{})
 	h.sub = h.p.Subscribe("recorder", ring)
 	cfg.Dir, cfg.Vehicle = h.dir, "test-car"
-	h.c = New(cfg, Deps{Registry: reg, Sub: h.sub, Store: h.p.Store(), Log: slog.New(slog.NewTextHandler(&h.logs, nil)),
+	h.c = New(cfg, Deps{Registry: reg, Sub: h.sub, Store: h.p.Store(), Log: slog.New(&h.logs),
 		DiskSpace: func(string) (uint64, uint64, error) {
 			h.mu.Lock()
 			defer h.mu.Unlock()
