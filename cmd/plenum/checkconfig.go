@@ -31,8 +31,7 @@ func checkConfig(cfg *config.Config) (rep checkReport, err error) {
 	reg := pipeline.NewRegistry()
 	for i, sc := range cfg.Serial {
 		for j, in := range sc.Inputs {
-			ch, _ := pipeline.Standard(in.Channel)
-			if _, err := sensorFor(sc, in, ch); err != nil {
+			if _, err := sc.Sensor(in); err != nil {
 				return rep, cfg.At(fmt.Sprintf("the calibration does not work: %v", err), "serial", i, "inputs", j, "calibration")
 			}
 		}
@@ -50,7 +49,7 @@ func checkConfig(cfg *config.Config) (rep checkReport, err error) {
 		if err != nil {
 			return rep, cfg.At(err.Error(), "can", i)
 		}
-		src, err := obdcan.NewSource(bus.NewNode(), reg, obdConfig(cc))
+		src, err := obdcan.NewSource(bus.NewNode(), reg, cc.OBD())
 		if err == nil {
 			src.Close()
 		}
@@ -89,8 +88,8 @@ func checkConfig(cfg *config.Config) (rep checkReport, err error) {
 		if !present(path, keyName(key)) {
 			return nil
 		}
-		if _, err := readSecret(keyName(key), path); err != nil {
-			return cfg.At(secretProblem(err), key...)
+		if _, err := config.ReadSecret(keyName(key), path); err != nil {
+			return cfg.At(config.SecretProblem(err), key...)
 		}
 		return nil
 	}
@@ -101,7 +100,7 @@ func checkConfig(cfg *config.Config) (rep checkReport, err error) {
 		if !present(cfg.Record.ControlTokenFile, "record.control_token_file") {
 			c.Record.ControlTokenFile = ""
 		}
-		rc, err := runsConfig(&c)
+		rc, err := c.Runs()
 		if err != nil {
 			return rep, err
 		}
@@ -127,7 +126,7 @@ func checkConfig(cfg *config.Config) (rep checkReport, err error) {
 				m.CAFile, m.CertFile, m.KeyFile = "", "", ""
 			}
 		}
-		if mcfg.TLS, err = tlsConfig(m); err != nil {
+		if mcfg.TLS, err = m.TLSConfig(); err != nil {
 			return rep, cfg.At(fmt.Sprintf("the TLS files do not load: %v", err), "mqtt", "ca_file")
 		}
 	}
@@ -173,11 +172,6 @@ func keyName(key []any) string {
 		}
 	}
 	return b.String()
-}
-
-// secretProblem says in a sentence why a secret file could not be read.
-func secretProblem(err error) string {
-	return fmt.Sprintf("the file cannot be read (%v); the daemon reads it at start-up", err)
 }
 
 // logLeftOut names, in one info line each, the built-in warning rules left

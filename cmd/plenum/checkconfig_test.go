@@ -171,7 +171,7 @@ func TestAutoTriggerAlone(t *testing.T) {
 	if err != nil {
 		t.Fatal(err)
 	}
-	rc, err := runsConfig(cfg)
+	rc, err := cfg.Runs()
 	if err != nil {
 		t.Fatal(err)
 	}
@@ -195,7 +195,7 @@ func TestControlTokenFromFile(t *testing.T) {
 	if err != nil {
 		t.Fatal(err)
 	}
-	rc, err := runsConfig(cfg)
+	rc, err := cfg.Runs()
 	if err != nil || rc.ControlToken != "0123456789abcdef0123456789abcdef" {
 		t.Fatalf("token %q, %v", rc.ControlToken, err)
 	}

@@ -2,15 +2,12 @@ package main
 
 import (
 	"context"
-	"crypto/tls"
-	"crypto/x509"
 	"errors"
 	"fmt"
 	"io"
 	"log/slog"
 	"net"
 	"net/http"
-	"os"
 	"path/filepath"
 	"strings"
 	"syscall"
@@ -89,7 +86,7 @@ func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *s
 		anon := cfg.MQTT.Anonymous == nil || *cfg.MQTT.Anonymous
 		var users []broker.User
 		for _, u := range cfg.MQTT.Users {
-			pw, err := readSecret("mqtt user "+u.Name+": password_file", u.PasswordFile)
+			pw, err := config.ReadSecret("mqtt user "+u.Name+": password_file", u.PasswordFile)
 			if err != nil {
 				return err
 			}
@@ -111,10 +108,10 @@ func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *s
 	} else {
 		mcfg.Broker = cfg.MQTT.Broker
 		mcfg.Username = cfg.MQTT.Username
-		if mcfg.Password, err = readSecret("mqtt password_file", cfg.MQTT.PasswordFile); err != nil {
+		if mcfg.Password, err = config.ReadSecret("mqtt password_file", cfg.MQTT.PasswordFile); err != nil {
 			return err
 		}
-		if mcfg.TLS, err = tlsConfig(cfg.MQTT); err != nil {
+		if mcfg.TLS, err = cfg.MQTT.TLSConfig(); err != nil {
 			return err
 		}
 	}
@@ -135,7 +132,7 @@ func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *s
 		if pusher != nil {
 			deps.Forward = pusher
 		}
-		rc, err := runsConfig(cfg)
+		rc, err := cfg.Runs()
 		if err != nil {
 			return err
 		}
@@ -306,20 +303,6 @@ func serveHTTP(ctx context.Context, srv *http.Server, ln net.Listener) error {
 	return nil
 }
 
-// readSecret reads a password or token file (surrounding white space
-// trimmed); an empty path gives an empty secret. Secrets are never kept in
-// the configuration itself.
-func readSecret(field, path string) (string, error) {
-	if path == "" {
-		return "", nil
-	}
-	b, err := os.ReadFile(path)
-	if err != nil {
-		return "", fmt.Errorf("%s: %w", field, err)
-	}
-	return strings.TrimSpace(string(b)), nil
-}
-
 // openPusher opens the push backlog when record.push is configured.
 func openPusher(cfg *config.Config, log *slog.Logger) (*tsdbpush.Pusher, error) {
 	pu := cfg.Record.Push
@@ -332,10 +315,10 @@ func openPusher(cfg *config.Config, log *slog.Logger) (*tsdbpush.Pusher, error) 
 		pc.Dir = filepath.Join(cfg.StateDir, "push-"+cfg.Vehicle)
 	}
 	var err error
-	if pc.Token, err = readSecret("record.push.token_file", pu.TokenFile); err != nil {
+	if pc.Token, err = config.ReadSecret("record.push.token_file", pu.TokenFile); err != nil {
 		return nil, err
 	}
-	if pc.Password, err = readSecret("record.push.password_file", pu.PasswordFile); err != nil {
+	if pc.Password, err = config.ReadSecret("record.push.password_file", pu.PasswordFile); err != nil {
 		return nil, err
 	}
 	p, err := tsdbpush.Open(pc)
@@ -367,30 +350,4 @@ func (f levelFilter) WithAttrs(as []slog.Attr) slog.Handler {
 // WithGroup keeps the filter around the handler with the group.
 func (f levelFilter) WithGroup(name string) slog.Handler {
 	return levelFilter{f.Handler.WithGroup(name), f.min}
-}
-
-func tlsConfig(m config.MQTT) (*tls.Config, error) {
-	if m.CAFile == "" && m.CertFile == "" {
-		return nil, nil
-	}
-	tc := &tls.Config{MinVersion: tls.VersionTLS12}
-	if m.CAFile != "" {
-		pem, err := os.ReadFile(m.CAFile)
-		if err != nil {
-			return nil, fmt.Errorf("mqtt ca_file: %w", err)
-		}
-		pool := x509.NewCertPool()
-		if !pool.AppendCertsFromPEM(pem) {
-			return nil, fmt.Errorf("mqtt ca_file %s: no certificates found", m.CAFile)
-		}
-		tc.RootCAs = pool
-	}
-	if m.CertFile != "" {
-		cert, err := tls.LoadX509KeyPair(m.CertFile, m.KeyFile)
-		if err != nil {
-			return nil, fmt.Errorf("mqtt client certificate: %w", err)
-		}
-		tc.Certificates = []tls.Certificate{cert}
-	}
-	return tc, nil
 }

@@ -15,19 +15,6 @@ import (
 	"github.com/plenum-engine/plenum/pipeline"
 )
 
-// obdConfig converts one CAN section into the OBD source's configuration.
-func obdConfig(cc config.CAN) obdcan.Config {
-	format := obd.ID11
-	if cc.Format == "29bit" {
-		format = obd.ID29
-	}
-	sc := obdcan.Config{Name: cc.Name, Format: format, SinglePID: cc.SinglePID}
-	for _, ch := range cc.Channels {
-		sc.Channels = append(sc.Channels, obdcan.Channel{Name: ch.Name, RateHz: ch.RateHz, Priority: ch.Priority})
-	}
-	return sc
-}
-
 // buildOBDSources registers the polled OBD channels and builds one source
 // per CAN section, each on a bus of its own that closers close. A "sim" bus
 // is a virtual bus at the configured bit rate with a simulated ECU
@@ -45,7 +32,7 @@ func buildOBDSources(cfg *config.Config, reg *pipeline.Registry, eng *sim.Shared
 		if cc.Format == "29bit" {
 			format = obd.ID29
 		}
-		sc := obdConfig(cc)
+		sc := cc.OBD()
 		var (
 			bus      can.Bus
 			closeBus func()

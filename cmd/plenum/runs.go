@@ -10,8 +10,6 @@ import (
 	"net/url"
 	"os"
 	"os/user"
-	"strings"
-	"time"
 
 	"github.com/plenum-engine/plenum/cmd/plenum/config"
 	"github.com/plenum-engine/plenum/derive"
@@ -19,27 +17,6 @@ import (
 	"github.com/plenum-engine/plenum/pipeline/record"
 	"github.com/plenum-engine/plenum/pipeline/runs"
 )
-
-// runsConfig converts the record section into the run controller's Config,
-// reading the control token from record.control_token_file. auto_trigger
-// alone means runs are started by the trigger, not at start-up.
-func runsConfig(cfg *config.Config) (runs.Config, error) {
-	tok, err := controlToken(cfg)
-	if err != nil {
-		return runs.Config{}, err
-	}
-	return runs.Config{
-		Dir:          cfg.Record.Dir,
-		Vehicle:      cfg.Vehicle,
-		SyncEvery:    time.Duration(cfg.Record.SyncEvery),
-		RotateBytes:  int64(cfg.Record.RotateMB) << 20,
-		MinFreeBytes: int64(cfg.Record.MinFreeMB) << 20,
-		ConfigYAML:   cfg.Raw,
-		Manual:       cfg.Record.Manual || cfg.Record.AutoTrigger,
-		AutoTrigger:  cfg.Record.AutoTrigger,
-		ControlToken: tok,
-	}, nil
-}
 
 // enterConditions hands the conditions entered for a run to the power
 // correction, in its units (NaN: not entered).
@@ -56,30 +33,6 @@ func enterConditions(set *derived.Set) func(record.Conditions) string {
 		}
 		return set.EnterConditions(&derive.Ambient{Pressure: v(c.PressurePa), Temperature: v(c.TemperatureC), Humidity: v(c.RelativeHumidity)})
 	}
-}
-
-// minTokenLen is the shortest control token accepted: 16 characters of a
-// generated token (openssl rand -hex 16 gives 32) are beyond guessing.
-const minTokenLen = 16
-
-// controlToken reads the control token from record.control_token_file (a
-// token already in cfg, set by a test, wins). The example's placeholder, an
-// empty file and a token too short to be safe are refused.
-func controlToken(cfg *config.Config) (string, error) {
-	if cfg.Record.ControlToken != "" || cfg.Record.ControlTokenFile == "" {
-		return cfg.Record.ControlToken, nil
-	}
-	tok, err := readSecret("record.control_token_file", cfg.Record.ControlTokenFile)
-	if err != nil {
-		return "", cfg.At(secretProblem(err), "record", "control_token_file")
-	}
-	switch {
-	case strings.Contains(strings.ToLower(tok), "change-me") || strings.Contains(strings.ToLower(tok), "changeme"):
-		return "", cfg.At(fmt.Sprintf("%s holds the example's placeholder token, which anyone can read in the example: write a random one, e.g. openssl rand -hex 16 > %s", cfg.Record.ControlTokenFile, cfg.Record.ControlTokenFile), "record", "control_token_file")
-	case len(tok) < minTokenLen:
-		return "", cfg.At(fmt.Sprintf("%s holds a token of %d characters; a control token needs at least %d, e.g. from openssl rand -hex 16", cfg.Record.ControlTokenFile, len(tok), minTokenLen), "record", "control_token_file")
-	}
-	return tok, nil
 }
 
 // cmdRunControl is `plenum run-start` and `plenum run-stop`: they ask a
@@ -167,7 +120,7 @@ func post(name, addr, tokenFile, path string, form url.Values) (runs.Reply, erro
 	}
 	token, src := os.Getenv("PLENUM_CONTROL_TOKEN"), "$PLENUM_CONTROL_TOKEN"
 	if tokenFile != "" {
-		if token, err = readSecret(name+": -token-file", tokenFile); err != nil {
+		if token, err = config.ReadSecret(name+": -token-file", tokenFile); err != nil {
 			return runs.Reply{}, err
 		}
 		src = tokenFile

@@ -7,7 +7,6 @@ import (
 	"time"
 
 	"github.com/plenum-engine/plenum/cmd/plenum/config"
-	"github.com/plenum-engine/plenum/drivers/calib"
 	"github.com/plenum-engine/plenum/drivers/serial"
 	"github.com/plenum-engine/plenum/drivers/sim"
 	"github.com/plenum-engine/plenum/pipeline"
@@ -97,7 +96,7 @@ func serialDecoder(i int, sc config.Serial, reg *pipeline.Registry) (*serial.Dec
 		if err != nil {
 			return nil, nil, fmt.Errorf("serial[%d].inputs[%d]: %w", i, j, err)
 		}
-		sensor, err := sensorFor(sc, in, ch)
+		sensor, err := sc.Sensor(in)
 		if err != nil {
 			return nil, nil, fmt.Errorf("serial[%d].inputs[%d].calibration: %w", i, j, err)
 		}
@@ -121,56 +120,6 @@ func serialDecoder(i int, sc config.Serial, reg *pipeline.Registry) (*serial.Dec
 		return nil, nil, fmt.Errorf("serial[%d]: %w", i, err)
 	}
 	return dec, h, nil
-}
-
-func sensorFor(sc config.Serial, in config.SerialInput, ch pipeline.Channel) (calib.Sensor, error) {
-	c := in.Calibration
-	s := calib.Sensor{ADCMax: float64(int(1)<<sc.ADCBits - 1), RefMV: sc.ADCRefMV}
-	if c.FaultBelow != nil {
-		s.FaultBelowMV = *c.FaultBelow
-	}
-	if c.FaultAbove != nil {
-		s.FaultAboveMV = *c.FaultAbove
-	}
-	conv := func(v float64) (float64, error) { return config.ToCanonical(c.Unit, ch.Unit, v) }
-	div := calib.Divider{PullupOhm: 0, RefMV: sc.ADCRefMV}
-	switch {
-	case c.Linear != nil:
-		o0, err := conv(c.Linear.Out[0])
-		if err != nil {
-			return s, err
-		}
-		o1, _ := conv(c.Linear.Out[1])
-		s.Curve = calib.Linear{MV0: c.Linear.InMV[0], Out0: o0, MV1: c.Linear.InMV[1], Out1: o1}
-	case c.Table != nil:
-		out := make([]float64, len(c.Table.Out))
-		for i, v := range c.Table.Out {
-			var err error
-			if out[i], err = conv(v); err != nil {
-				return s, err
-			}
-		}
-		t, err := calib.NewTable(c.Table.InMV, out)
-		if err != nil {
-			return s, err
-		}
-		s.Curve = t
-	case c.NTCBeta != nil:
-		div.PullupOhm = c.NTCBeta.PullupOhm
-		s.Curve = calib.NTCBeta{Divider: div, R0Ohm: c.NTCBeta.R0Ohm, T0C: c.NTCBeta.T0C, Beta: c.NTCBeta.Beta}
-	case c.NTCSH != nil:
-		div.PullupOhm = c.NTCSH.PullupOhm
-		s.Curve = calib.NTCSteinhartHart{Divider: div, A: c.NTCSH.A, B: c.NTCSH.B, C: c.NTCSH.C}
-	}
-	if c.Range != nil {
-		lo, err := conv(c.Range[0])
-		if err != nil {
-			return s, err
-		}
-		hi, _ := conv(c.Range[1])
-		s.Min, s.Max = lo, hi
-	}
-	return s, s.Validate()
 }
 
 // stepEngine advances eng in real time (times the simulator's time scale)

@@ -1,0 +1,264 @@
+package config
+
+import (
+	"crypto/tls"
+	"crypto/x509"
+	"fmt"
+	"log/slog"
+	"os"
+	"path/filepath"
+	"strings"
+	"time"
+
+	"github.com/plenum-engine/plenum/derive"
+	"github.com/plenum-engine/plenum/derive/warn"
+	"github.com/plenum-engine/plenum/drivers/calib"
+	"github.com/plenum-engine/plenum/drivers/obd"
+	"github.com/plenum-engine/plenum/drivers/obdcan"
+	"github.com/plenum-engine/plenum/pipeline"
+	"github.com/plenum-engine/plenum/pipeline/derived"
+	"github.com/plenum-engine/plenum/pipeline/fleet"
+	"github.com/plenum-engine/plenum/pipeline/runs"
+	"github.com/plenum-engine/plenum/pipeline/tsdbpush"
+)
+
+// The configuration converted into each part's own Config, in canonical
+// units, with the secrets its files name read. The binary only wires what
+// these return.
+
+// ReadSecret reads a password or token file (surrounding white space
+// trimmed); an empty path gives an empty secret. Secrets are never kept in
+// the configuration itself.
+func ReadSecret(field, path string) (string, error) {
+	if path == "" {
+		return "", nil
+	}
+	b, err := os.ReadFile(path)
+	if err != nil {
+		return "", fmt.Errorf("%s: %w", field, err)
+	}
+	return strings.TrimSpace(string(b)), nil
+}
+
+// SecretProblem says in a sentence why a secret file could not be read.
+func SecretProblem(err error) string {
+	return fmt.Sprintf("the file cannot be read (%v); the daemon reads it at start-up", err)
+}
+
+// Derived converts the engine, power, turbo and warning sections into
+// pipeline/derived's configuration.
+func (c *Config) Derived() derived.Config {
+	e := c.Engine
+	dc := derived.Config{
+		Displacement:  e.DisplacementL / 1000,
+		VE:            e.VE,
+		Baro:          e.BaroKPa * 1000,
+		Wideband:      derive.Wideband{VoltsLow: e.Wideband.VoltsLow, LambdaLow: e.Wideband.LambdaLow, VoltsHigh: e.Wideband.VoltsHigh, LambdaHigh: e.Wideband.LambdaHigh},
+		Fuel:          e.Fuel,
+		PowerStandard: c.Power.Standard,
+		Turbo: derived.Turbo{
+			TargetBoost: c.Turbo.TargetBoostKPa * 1000,
+			FilterDrop:  c.Turbo.FilterDropKPa * 1000,
+			WarmOil:     c.Turbo.WarmOilC,
+			CoolDownTau: time.Duration(c.Turbo.CoolDownTau),
+		},
+	}
+	if t := e.VETable; t != nil {
+		tb := &derive.VETable{Speeds: t.SpeedsRPM, Values: t.Values}
+		for _, p := range t.PressuresKPa {
+			tb.Pressures = append(tb.Pressures, p*1000)
+		}
+		dc.VETable = tb
+	}
+	if c.StateDir != "" {
+		dc.Turbo.StatePath = filepath.Join(c.StateDir, "turbo-"+c.Vehicle+".json")
+	}
+	for _, r := range c.Warnings {
+		dc.Warnings = append(dc.Warnings, warn.Text{Name: r.Name, Rule: r.Rule})
+	}
+	return dc
+}
+
+// Sensor converts an input's calibration into the driver's, in the
+// canonical unit of the catalogue channel it feeds.
+func (s Serial) Sensor(in SerialInput) (calib.Sensor, error) {
+	ch, _ := pipeline.Standard(in.Channel)
+	c := in.Calibration
+	cs := calib.Sensor{ADCMax: float64(int(1)<<s.ADCBits - 1), RefMV: s.ADCRefMV}
+	if c.FaultBelow != nil {
+		cs.FaultBelowMV = *c.FaultBelow
+	}
+	if c.FaultAbove != nil {
+		cs.FaultAboveMV = *c.FaultAbove
+	}
+	conv := func(v float64) (float64, error) { return ToCanonical(c.Unit, ch.Unit, v) }
+	div := calib.Divider{PullupOhm: 0, RefMV: s.ADCRefMV}
+	switch {
+	case c.Linear != nil:
+		o0, err := conv(c.Linear.Out[0])
+		if err != nil {
+			return cs, err
+		}
+		o1, _ := conv(c.Linear.Out[1])
+		cs.Curve = calib.Linear{MV0: c.Linear.InMV[0], Out0: o0, MV1: c.Linear.InMV[1], Out1: o1}
+	case c.Table != nil:
+		out := make([]float64, len(c.Table.Out))
+		for i, v := range c.Table.Out {
+			var err error
+			if out[i], err = conv(v); err != nil {
+				return cs, err
+			}
+		}
+		t, err := calib.NewTable(c.Table.InMV, out)
+		if err != nil {
+			return cs, err
+		}
+		cs.Curve = t
+	case c.NTCBeta != nil:
+		div.PullupOhm = c.NTCBeta.PullupOhm
+		cs.Curve = calib.NTCBeta{Divider: div, R0Ohm: c.NTCBeta.R0Ohm, T0C: c.NTCBeta.T0C, Beta: c.NTCBeta.Beta}
+	case c.NTCSH != nil:
+		div.PullupOhm = c.NTCSH.PullupOhm
+		cs.Curve = calib.NTCSteinhartHart{Divider: div, A: c.NTCSH.A, B: c.NTCSH.B, C: c.NTCSH.C}
+	}
+	if c.Range != nil {
+		lo, err := conv(c.Range[0])
+		if err != nil {
+			return cs, err
+		}
+		hi, _ := conv(c.Range[1])
+		cs.Min, cs.Max = lo, hi
+	}
+	return cs, cs.Validate()
+}
+
+// OBD converts a CAN section into the OBD source's configuration.
+func (cc CAN) OBD() obdcan.Config {
+	format := obd.ID11
+	if cc.Format == "29bit" {
+		format = obd.ID29
+	}
+	sc := obdcan.Config{Name: cc.Name, Format: format, SinglePID: cc.SinglePID}
+	for _, ch := range cc.Channels {
+		sc.Channels = append(sc.Channels, obdcan.Channel{Name: ch.Name, RateHz: ch.RateHz, Priority: ch.Priority})
+	}
+	return sc
+}
+
+// minTokenLen is the shortest control token accepted: 16 characters of a
+// generated token (openssl rand -hex 16 gives 32) are beyond guessing.
+const minTokenLen = 16
+
+// Runs converts the record section into the run controller's Config,
+// reading the control token from record.control_token_file (a token already
+// set, by a test, wins; the example's placeholder, an empty file and a
+// token too short to be safe are refused). auto_trigger alone means runs
+// are started by the trigger, not at start-up.
+func (c *Config) Runs() (runs.Config, error) {
+	tok := c.Record.ControlToken
+	if tok == "" && c.Record.ControlTokenFile != "" {
+		var err error
+		if tok, err = ReadSecret("record.control_token_file", c.Record.ControlTokenFile); err != nil {
+			return runs.Config{}, c.At(SecretProblem(err), "record", "control_token_file")
+		}
+		f := c.Record.ControlTokenFile
+		switch {
+		case strings.Contains(strings.ToLower(tok), "change-me") || strings.Contains(strings.ToLower(tok), "changeme"):
+			return runs.Config{}, c.At(fmt.Sprintf("%s holds the example's placeholder token, which anyone can read in the example: write a random one, e.g. openssl rand -hex 16 > %s", f, f), "record", "control_token_file")
+		case len(tok) < minTokenLen:
+			return runs.Config{}, c.At(fmt.Sprintf("%s holds a token of %d characters; a control token needs at least %d, e.g. from openssl rand -hex 16", f, len(tok), minTokenLen), "record", "control_token_file")
+		}
+	}
+	return runs.Config{
+		Dir:          c.Record.Dir,
+		Vehicle:      c.Vehicle,
+		SyncEvery:    time.Duration(c.Record.SyncEvery),
+		RotateBytes:  int64(c.Record.RotateMB) << 20,
+		MinFreeBytes: int64(c.Record.MinFreeMB) << 20,
+		ConfigYAML:   c.Raw,
+		Manual:       c.Record.Manual || c.Record.AutoTrigger,
+		AutoTrigger:  c.Record.AutoTrigger,
+		ControlToken: tok,
+	}, nil
+}
+
+// Push converts record.push into the pusher's Config, reading its token
+// and password files; ok is false when nothing is pushed.
+func (c *Config) Push(log *slog.Logger) (pc tsdbpush.Config, ok bool, err error) {
+	pu := c.Record.Push
+	if pu.URL == "" || c.Record.Dir == "" {
+		return pc, false, nil
+	}
+	pc = tsdbpush.Config{URL: pu.URL, Username: pu.Username, Dir: pu.Dir, MaxBacklogBytes: int64(pu.MaxBacklogMB) << 20,
+		FlushEvery: time.Duration(pu.FlushEvery), Gzip: pu.Gzip, Logger: log.With("component", "push")}
+	if pc.Dir == "" {
+		pc.Dir = filepath.Join(c.StateDir, "push-"+c.Vehicle)
+	}
+	if pc.Token, err = ReadSecret("record.push.token_file", pu.TokenFile); err != nil {
+		return pc, false, err
+	}
+	if pc.Password, err = ReadSecret("record.push.password_file", pu.PasswordFile); err != nil {
+		return pc, false, err
+	}
+	return pc, true, nil
+}
+
+// TLSConfig loads the external broker's CA and client certificate files;
+// nil when none is configured.
+func (m MQTT) TLSConfig() (*tls.Config, error) {
+	if m.CAFile == "" && m.CertFile == "" {
+		return nil, nil
+	}
+	tc, err := caConfig("mqtt ca_file", m.CAFile)
+	if err != nil {
+		return nil, err
+	}
+	if m.CertFile != "" {
+		cert, err := tls.LoadX509KeyPair(m.CertFile, m.KeyFile)
+		if err != nil {
+			return nil, fmt.Errorf("mqtt client certificate: %w", err)
+		}
+		tc.Certificates = []tls.Certificate{cert}
+	}
+	return tc, nil
+}
+
+// caConfig is a TLS configuration trusting the certificates of the PEM
+// file at path (the system's roots when path is empty).
+func caConfig(field, path string) (*tls.Config, error) {
+	tc := &tls.Config{MinVersion: tls.VersionTLS12}
+	if path == "" {
+		return tc, nil
+	}
+	pem, err := os.ReadFile(path)
+	if err != nil {
+		return nil, fmt.Errorf("%s: %w", field, err)
+	}
+	pool := x509.NewCertPool()
+	if !pool.AppendCertsFromPEM(pem) {
+		return nil, fmt.Errorf("%s %s: no certificates found", field, path)
+	}
+	tc.RootCAs = pool
+	return tc, nil
+}
+
+// Fleet converts the follow section into the follower's Config, reading
+// its password and CA files; ok is false when following is off.
+func (c *Config) Fleet(log *slog.Logger) (fc fleet.Config, ok bool, err error) {
+	f := c.Follow
+	if f.Broker == "" {
+		return fc, false, nil
+	}
+	fc = fleet.Config{Broker: f.Broker, Username: f.Username, Prefix: f.Prefix, Self: c.Vehicle,
+		StaleAfter: time.Duration(f.StaleAfter), MaxVehicles: f.MaxVehicles, EventsKept: f.EventsKept,
+		Logger: log.With("component", "follow")}
+	if fc.Password, err = ReadSecret("follow.password_file", f.PasswordFile); err != nil {
+		return fleet.Config{}, false, err
+	}
+	if f.CAFile != "" {
+		if fc.TLS, err = caConfig("follow.ca_file", f.CAFile); err != nil {
+			return fleet.Config{}, false, err
+		}
+	}
+	return fc, true, nil
+}
