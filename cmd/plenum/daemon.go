@@ -25,195 +25,237 @@ import (
 	"github.com/plenum-engine/plenum/pipeline/tsdbpush"
 )
 
+// daemon is the daemon's parts, built from a configuration but not running.
+type daemon struct {
+	cfg     *config.Config
+	log     *slog.Logger
+	reg     *pipeline.Registry
+	srcs    []source
+	set     *derived.Set
+	p       *pipeline.Pipeline
+	rr      *runs.Controller   // nil without record.dir
+	pub     *mqttpub.Publisher // live values, events and summaries
+	pusher  *tsdbpush.Pusher   // nil without record.push
+	brk     *broker.Broker     // nil with an external broker
+	evm     *promexport.Events
+	evlog   *eventlog.Events
+	mux     *http.ServeMux
+	closers []func() // closed in reverse order
+}
+
+// close closes what build opened, in reverse order.
+func (d *daemon) close() {
+	for i := len(d.closers) - 1; i >= 0; i-- {
+		d.closers[i]()
+	}
+}
+
+// build builds every part the daemon runs from cfg. With open false
+// (`plenum check`) it opens no device, bus, socket or file it would write,
+// and reads every file the configuration names; run builds with open true,
+// so that whatever check accepts, run starts. Errors name file:line and
+// field where the fault has a key. On error nothing is left open.
+func build(ctx context.Context, cfg *config.Config, log *slog.Logger, open bool) (_ *daemon, err error) {
+	d := &daemon{cfg: cfg, log: log, reg: pipeline.NewRegistry(), mux: http.NewServeMux()}
+	defer func() {
+		if err != nil {
+			d.close()
+		}
+	}()
+	if err := d.buildSources(open); err != nil {
+		return nil, err
+	}
+	ds, set, err := buildAll(cfg, d.reg)
+	if err != nil {
+		return nil, err
+	}
+	d.set = set
+	g, err := pipeline.BuildGraph(d.reg, ds)
+	if err != nil {
+		return nil, cfg.At(fmt.Sprintf("the derivations do not fit together: %v", err), "engine")
+	}
+	if bad := pipeline.CheckCatalogued(d.reg); len(bad) > 0 {
+		return nil, cfg.At(fmt.Sprintf("channels without an entry in the channel catalogue, or with another unit: %s", strings.Join(bad, ", ")))
+	}
+	d.p = pipeline.New(d.reg, g, pipeline.Options{})
+	d.p.BindEmitters()
+
+	// Pushing the recorded lines to a time-series database.
+	pc, push, err := cfg.Push(log)
+	if err != nil {
+		return nil, err
+	}
+	if push && open {
+		if d.pusher, err = tsdbpush.Open(pc); err != nil {
+			return nil, fmt.Errorf("record.push: %w", err)
+		}
+		d.closers = append(d.closers, func() { d.pusher.Close() })
+	}
+
+	// MQTT: the embedded broker unless an external one is configured.
+	mcfg := mqttpub.Config{Prefix: cfg.MQTT.Prefix, Vehicle: cfg.Vehicle, MaxRate: cfg.MQTT.MaxRateHz,
+		SnapshotEvery: time.Duration(cfg.MQTT.SnapshotEvery), Version: version, Logger: log, Broker: cfg.MQTT.Broker}
+	if cfg.MQTT.Broker == "embedded" {
+		var users []broker.User
+		for i, u := range cfg.MQTT.Users {
+			pw, err := config.ReadSecret("mqtt user "+u.Name+": password_file", u.PasswordFile)
+			if err != nil {
+				return nil, cfg.At(config.SecretProblem(err), "mqtt", "users", i, "password_file")
+			}
+			users = append(users, broker.User{Name: u.Name, Password: pw, Commands: u.Commands})
+		}
+		// The publisher's client ID is reserved for it: no other client can
+		// knock it off the broker.
+		mcfg.ClientID, mcfg.Broker = "plenum-"+cfg.Vehicle, "tcp://"+cfg.MQTT.Listen
+		if open {
+			// The broker outlives the publisher's last "offline" message: it
+			// is closed after every stage has stopped.
+			d.brk, err = broker.Start(context.WithoutCancel(ctx), broker.Config{Addr: cfg.MQTT.Listen, Prefix: cfg.MQTT.Prefix,
+				Anonymous: cfg.MQTT.Anonymous == nil || *cfg.MQTT.Anonymous, Users: users, DaemonClientID: mcfg.ClientID, Logger: log})
+			if err != nil {
+				return nil, listenProblem(err, "mqtt.listen", cfg.MQTT.Listen)
+			}
+			d.closers = append(d.closers, func() { d.brk.Close() })
+			mcfg.Broker = "tcp://" + d.brk.Addr().String()
+			mcfg.Username, mcfg.Password = d.brk.Credentials()
+		}
+	} else {
+		mcfg.Username = cfg.MQTT.Username
+		if mcfg.Password, err = config.ReadSecret("mqtt password_file", cfg.MQTT.PasswordFile); err != nil {
+			return nil, cfg.At(config.SecretProblem(err), "mqtt", "password_file")
+		}
+		if mcfg.TLS, err = cfg.MQTT.TLSConfig(); err != nil {
+			return nil, cfg.At(fmt.Sprintf("the TLS files do not load: %v", err), "mqtt", "ca_file")
+		}
+	}
+	if cfg.Record.Dir != "" {
+		rc, err := cfg.Runs()
+		if err != nil {
+			return nil, err
+		}
+		if open {
+			if fixed, err := record.Recover(cfg.Record.Dir); err != nil {
+				log.Warn("recovering earlier runs", "err", err)
+			} else {
+				for _, f := range fixed {
+					log.Warn("a run was cut short; its torn tail was cut and it is marked ended_abnormally", "run", f.Run, "cut_bytes", f.CutBytes)
+				}
+			}
+		}
+		// The recorder must see every sample: a ring of several seconds.
+		deps := runs.Deps{Registry: d.reg, Sub: d.p.Subscribe("recorder", 1<<18), Store: d.p.Store(), Emit: d.p.Emit, Log: log,
+			Acknowledge:     func(rule, via, by string) error { return set.Acknowledge(derived.Ack{Rule: rule, Via: via, By: by}) },
+			EnterConditions: enterConditions(set)}
+		if d.pusher != nil {
+			deps.Forward = d.pusher
+		}
+		d.rr = runs.New(rc, deps)
+		d.mux.Handle("/api/runs/", d.rr.Handler())
+		d.mux.Handle("/api/warnings/", d.rr.Handler())
+		if cfg.MQTT.Commands {
+			mcfg.OnCommand = d.rr.Command
+		}
+	}
+	if cfg.StateDir != "" && open {
+		ob, err := mqttpub.OpenOutbox(filepath.Join(cfg.StateDir, "outbox-"+cfg.Vehicle), 10000)
+		if err != nil {
+			log.Warn("mqtt outbox unavailable; events are published without it", "err", err)
+		} else {
+			d.closers = append(d.closers, func() { ob.Close() })
+			mcfg.Outbox = ob
+		}
+	}
+	if d.pub, err = mqttpub.New(mcfg, d.reg, d.p.Subscribe("mqtt", 1<<14)); err != nil {
+		return nil, cfg.At(err.Error(), "mqtt")
+	}
+	d.pub.SetStore(d.p.Store())
+	if d.rr != nil {
+		d.rr.SetPublish(d.pub.PublishSummary)
+	}
+	return d, d.serveMetrics()
+}
+
+// serveMetrics builds the Prometheus collector, every part reporting its
+// health at scrape time, the event metrics and log, and the HTTP pages.
+func (d *daemon) serveMetrics() error {
+	parts := []promexport.Reporter{d.pub}
+	if d.rr != nil {
+		parts = append(parts, d.rr)
+	}
+	if d.pusher != nil {
+		parts = append(parts, d.pusher)
+	}
+	if d.brk != nil {
+		parts = append(parts, d.brk)
+	}
+	for _, s := range d.srcs {
+		if s.health != nil {
+			parts = append(parts, s.health)
+		}
+	}
+	col, err := promexport.New(d.p, time.Now, parts...)
+	if err != nil {
+		return d.cfg.At(fmt.Sprintf("the metrics cannot be served: %v", err))
+	}
+	rules := make([]promexport.Rule, 0, len(d.set.Rules)+1)
+	for _, r := range d.set.Rules {
+		rules = append(rules, promexport.Rule{Name: r.Name, Severity: r.Severity})
+	}
+	if d.rr != nil {
+		rules = append(rules, promexport.Rule{Name: "recorder_behind", Severity: "critical"})
+	}
+	col.WithRules(rules...)
+	d.evm = promexport.NewEvents(d.p.SubscribeEvents("event_metrics"), rules...)
+	// Warnings raised and cleared are logged from a subscription of their
+	// own: the derivations never wait on the log.
+	d.evlog = eventlog.New(eventlog.Config{Logger: d.log}, d.p.SubscribeEvents("event_log"))
+	h, err := promexport.Handler(col, d.evm)
+	if err != nil {
+		return err
+	}
+	d.mux.Handle("/metrics", h)
+	if ve := d.set.VETableHandler(); ve != nil {
+		d.mux.Handle("/ve-table.csv", ve)
+	}
+	d.mux.HandleFunc("/", func(w http.ResponseWriter, r *http.Request) {
+		if r.URL.Path != "/" {
+			http.NotFound(w, r)
+			return
+		}
+		fmt.Fprintf(w, "plenum %s for %s\n/metrics  Prometheus exposition\n\n%s\n", version, d.cfg.Vehicle, Safety)
+	})
+	return nil
+}
+
 // runDaemon builds the daemon's parts from cfg, starts them in stages and
 // runs them until ctx is done or a part fails, then stops them in the
 // reverse order: sources first, so that what they took last is processed,
 // recorded, pushed and published.
 func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *slog.Logger) error {
 	fmt.Fprintln(stdout, Safety)
-	// Every validation of `plenum check` first, opening nothing.
-	if _, err := checkConfig(cfg); err != nil {
-		return err
-	}
-	// Build: nothing runs yet, so a failure leaves nothing to stop.
-	reg := pipeline.NewRegistry()
-	srcs, cleanup, err := buildSources(cfg, reg, log)
+	d, err := build(ctx, cfg, log, true)
 	if err != nil {
 		return err
 	}
-	defer cleanup()
-	ds, set, err := buildAll(cfg, reg)
-	if err != nil {
-		return err
-	}
-	logLeftOut(log, set.LeftOut)
-	if err := set.LoadTurboState(time.Now()); errors.Is(err, derived.ErrStateDir) {
+	defer d.close()
+	logLeftOut(log, d.set.LeftOut)
+	if err := d.set.LoadTurboState(time.Now()); errors.Is(err, derived.ErrStateDir) {
 		log.Warn("turbo state directory; the cool-down state will not survive a restart", "err", err)
 	} else if err != nil {
 		log.Warn("turbo state not restored", "err", err)
 	}
 	defer func() {
-		if err := set.SaveTurboState(); err != nil {
+		if err := d.set.SaveTurboState(); err != nil {
 			log.Warn("turbo state not saved", "err", err)
 		}
 	}()
-	g, err := pipeline.BuildGraph(reg, ds)
-	if err != nil {
-		return fmt.Errorf("derivations: %w", err)
-	}
-	if bad := pipeline.CheckCatalogued(reg); len(bad) > 0 {
-		return fmt.Errorf("channels without an entry in the channel catalogue, or with another unit: %s", strings.Join(bad, ", "))
-	}
-	p := pipeline.New(reg, g, pipeline.Options{})
-	p.BindEmitters()
-
-	// Pushing the recorded lines to a time-series database.
-	pusher, err := openPusher(cfg, log)
-	if err != nil {
-		return err
-	}
-	if pusher != nil {
-		defer pusher.Close()
-	}
-
-	// MQTT: the embedded broker unless an external one is configured.
-	mcfg := mqttpub.Config{
-		Prefix: cfg.MQTT.Prefix, Vehicle: cfg.Vehicle, MaxRate: cfg.MQTT.MaxRateHz,
-		SnapshotEvery: time.Duration(cfg.MQTT.SnapshotEvery), Version: version, Logger: log,
-	}
-	var brk *broker.Broker
-	if cfg.MQTT.Broker == "embedded" {
-		anon := cfg.MQTT.Anonymous == nil || *cfg.MQTT.Anonymous
-		var users []broker.User
-		for _, u := range cfg.MQTT.Users {
-			pw, err := config.ReadSecret("mqtt user "+u.Name+": password_file", u.PasswordFile)
-			if err != nil {
-				return err
-			}
-			users = append(users, broker.User{Name: u.Name, Password: pw, Commands: u.Commands})
-		}
-		// The broker outlives the publisher's last "offline" message: it is
-		// the last stage to stop.
-		// The publisher's client ID is reserved for it: no other client can
-		// knock it off the broker.
-		mcfg.ClientID = "plenum-" + cfg.Vehicle
-		brk, err = broker.Start(context.WithoutCancel(ctx), broker.Config{Addr: cfg.MQTT.Listen, Anonymous: anon, Users: users, Prefix: cfg.MQTT.Prefix,
-			DaemonClientID: mcfg.ClientID, Logger: quiet(log)})
-		if err != nil {
-			return listenProblem(err, "mqtt.listen", cfg.MQTT.Listen)
-		}
-		defer brk.Close()
-		mcfg.Broker = "tcp://" + brk.Addr().String()
-		mcfg.Username, mcfg.Password = brk.Credentials()
-	} else {
-		mcfg.Broker = cfg.MQTT.Broker
-		mcfg.Username = cfg.MQTT.Username
-		if mcfg.Password, err = config.ReadSecret("mqtt password_file", cfg.MQTT.PasswordFile); err != nil {
-			return err
-		}
-		if mcfg.TLS, err = cfg.MQTT.TLSConfig(); err != nil {
-			return err
-		}
-	}
-	mux := http.NewServeMux()
-	var rr *runs.Controller
-	if cfg.Record.Dir != "" {
-		if fixed, err := record.Recover(cfg.Record.Dir); err != nil {
-			log.Warn("recovering earlier runs", "err", err)
-		} else {
-			for _, f := range fixed {
-				log.Warn("a run was cut short; its torn tail was cut and it is marked ended_abnormally", "run", f.Run, "cut_bytes", f.CutBytes)
-			}
-		}
-		// The recorder must see every sample: a ring of several seconds.
-		deps := runs.Deps{Registry: reg, Sub: p.Subscribe("recorder", 1<<18), Store: p.Store(), Emit: p.Emit, Log: log,
-			Acknowledge:     func(rule, via, by string) error { return set.Acknowledge(derived.Ack{Rule: rule, Via: via, By: by}) },
-			EnterConditions: enterConditions(set)}
-		if pusher != nil {
-			deps.Forward = pusher
-		}
-		rc, err := cfg.Runs()
-		if err != nil {
-			return err
-		}
-		rr = runs.New(rc, deps)
-		api := rr.Handler()
-		mux.Handle("/api/runs/", api)
-		mux.Handle("/api/warnings/", api)
-	}
-	if cfg.StateDir != "" {
-		ob, err := mqttpub.OpenOutbox(filepath.Join(cfg.StateDir, "outbox-"+cfg.Vehicle), 10000)
-		if err != nil {
-			log.Warn("mqtt outbox unavailable; events are published without it", "err", err)
-		} else {
-			defer ob.Close()
-			mcfg.Outbox = ob
-		}
-	}
-	if cfg.MQTT.Commands && rr != nil {
-		mcfg.OnCommand = rr.Command
-	}
-	pub, err := mqttpub.New(mcfg, reg, p.Subscribe("mqtt", 1<<14))
-	if err != nil {
-		return err
-	}
-	pub.SetStore(p.Store())
-
-	// Metrics: every source and publisher reports its health at scrape time.
-	parts := []promexport.Reporter{pub}
-	if rr != nil {
-		parts = append(parts, rr)
-	}
-	if pusher != nil {
-		parts = append(parts, pusher)
-	}
-	if brk != nil {
-		parts = append(parts, brk)
-	}
-	for _, s := range srcs {
-		if s.health != nil {
-			parts = append(parts, s.health)
-		}
-	}
-	col, err := promexport.New(p, time.Now, parts...)
-	if err != nil {
-		return err
-	}
-	rules := make([]promexport.Rule, 0, len(set.Rules)+1)
-	for _, r := range set.Rules {
-		rules = append(rules, promexport.Rule{Name: r.Name, Severity: r.Severity})
-	}
-	if rr != nil {
-		rules = append(rules, promexport.Rule{Name: "recorder_behind", Severity: "critical"})
-	}
-	col.WithRules(rules...)
-	evm := promexport.NewEvents(p.SubscribeEvents("event_metrics"), rules...)
-	// Warnings raised and cleared are logged from a subscription of their
-	// own: the derivations never wait on the log.
-	evlog := eventlog.New(eventlog.Config{Logger: log}, p.SubscribeEvents("event_log"))
-	h, err := promexport.Handler(col, evm)
-	if err != nil {
-		return err
-	}
-	mux.Handle("/metrics", h)
-	if ve := set.VETableHandler(); ve != nil {
-		mux.Handle("/ve-table.csv", ve)
-	}
-	mux.HandleFunc("/", func(w http.ResponseWriter, r *http.Request) {
-		if r.URL.Path != "/" {
-			http.NotFound(w, r)
-			return
-		}
-		fmt.Fprintf(w, "plenum %s for %s\n/metrics  Prometheus exposition\n\n%s\n", version, cfg.Vehicle, Safety)
-	})
 	ln, err := net.Listen("tcp", cfg.HTTP.Listen)
 	if err != nil {
 		return listenProblem(fmt.Errorf("http listen %s: %w", cfg.HTTP.Listen, err), "http.listen", cfg.HTTP.Listen)
 	}
-	srv := &http.Server{Handler: mux, ReadHeaderTimeout: 5 * time.Second}
-	if rr != nil {
-		rr.SetPublish(pub.PublishSummary)
-		id, err := rr.StartUnlessManual()
+	srv := &http.Server{Handler: d.mux, ReadHeaderTimeout: 5 * time.Second}
+	if d.rr != nil {
+		id, err := d.rr.StartUnlessManual()
 		if err != nil {
 			ln.Close()
 			return err
@@ -222,10 +264,9 @@ func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *s
 			fmt.Fprintf(stdout, "recording: %s\n", filepath.Join(cfg.Record.Dir, id))
 		}
 	}
-
 	fmt.Fprintf(stdout, "metrics:  http://%s/metrics\n", ln.Addr())
-	if brk != nil {
-		fmt.Fprintf(stdout, "mqtt:     mqtt://%s  (subscribe to %s/%s/#, read-only)\n", brk.Addr(), cfg.MQTT.Prefix, cfg.Vehicle)
+	if d.brk != nil {
+		fmt.Fprintf(stdout, "mqtt:     mqtt://%s  (subscribe to %s/%s/#, read-only)\n", d.brk.Addr(), cfg.MQTT.Prefix, cfg.Vehicle)
 	} else {
 		fmt.Fprintf(stdout, "mqtt:     publishing to %s under %s/%s/\n", cfg.MQTT.Broker, cfg.MQTT.Prefix, cfg.Vehicle)
 	}
@@ -236,24 +277,24 @@ func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *s
 	st := []stage{
 		{{"http", func(ctx context.Context) error { return serveHTTP(ctx, srv, ln) }}},
 		{{"mqtt", func(ctx context.Context) error {
-			if err := pub.Run(ctx); err != nil {
+			if err := d.pub.Run(ctx); err != nil {
 				// Recording and metrics go on without MQTT.
 				log.Error("mqtt publisher stopped; live values and events are not published until a restart", "err", err)
 				<-ctx.Done()
 			}
 			return nil
-		}}, {"event metrics", evm.Run}, {"event log", evlog.Run}},
+		}}, {"event metrics", d.evm.Run}, {"event log", d.evlog.Run}},
 	}
-	if pusher != nil {
-		st = append(st, stage{{"push", pusher.Run}})
+	if d.pusher != nil {
+		st = append(st, stage{{"push", d.pusher.Run}})
 	}
-	if rr != nil {
-		st = append(st, stage{{"recorder", rr.Run}})
+	if d.rr != nil {
+		st = append(st, stage{{"recorder", d.rr.Run}})
 	}
-	st = append(st, stage{{"pipeline", p.Run}})
+	st = append(st, stage{{"pipeline", d.p.Run}})
 	var drivers stage
-	for _, s := range srcs {
-		drivers = append(drivers, part{s.name, func(ctx context.Context) error { return s.run(ctx, p) }})
+	for _, s := range d.srcs {
+		drivers = append(drivers, part{s.name, func(ctx context.Context) error { return s.run(ctx, d.p) }})
 	}
 	return runStages(ctx, log, append(st, drivers)...)
 }
@@ -301,53 +342,4 @@ func serveHTTP(ctx context.Context, srv *http.Server, ln net.Listener) error {
 	defer cancel()
 	srv.Shutdown(sctx)
 	return nil
-}
-
-// openPusher opens the push backlog when record.push is configured.
-func openPusher(cfg *config.Config, log *slog.Logger) (*tsdbpush.Pusher, error) {
-	pu := cfg.Record.Push
-	if pu.URL == "" || cfg.Record.Dir == "" {
-		return nil, nil
-	}
-	pc := tsdbpush.Config{URL: pu.URL, Username: pu.Username, Dir: pu.Dir, MaxBacklogBytes: int64(pu.MaxBacklogMB) << 20,
-		FlushEvery: time.Duration(pu.FlushEvery), Gzip: pu.Gzip, Logger: log.With("component", "push")}
-	if pc.Dir == "" {
-		pc.Dir = filepath.Join(cfg.StateDir, "push-"+cfg.Vehicle)
-	}
-	var err error
-	if pc.Token, err = config.ReadSecret("record.push.token_file", pu.TokenFile); err != nil {
-		return nil, err
-	}
-	if pc.Password, err = config.ReadSecret("record.push.password_file", pu.PasswordFile); err != nil {
-		return nil, err
-	}
-	p, err := tsdbpush.Open(pc)
-	if err != nil {
-		return nil, fmt.Errorf("record.push: %w", err)
-	}
-	return p, nil
-}
-
-// quiet turns the broker's info chatter down to warnings.
-func quiet(log *slog.Logger) *slog.Logger {
-	return slog.New(levelFilter{log.Handler(), slog.LevelWarn})
-}
-
-type levelFilter struct {
-	slog.Handler
-	min slog.Level
-}
-
-func (f levelFilter) Enabled(ctx context.Context, l slog.Level) bool {
-	return l >= f.min && f.Handler.Enabled(ctx, l)
-}
-
-// WithAttrs keeps the filter around the handler with the attributes.
-func (f levelFilter) WithAttrs(as []slog.Attr) slog.Handler {
-	return levelFilter{f.Handler.WithAttrs(as), f.min}
-}
-
-// WithGroup keeps the filter around the handler with the group.
-func (f levelFilter) WithGroup(name string) slog.Handler {
-	return levelFilter{f.Handler.WithGroup(name), f.min}
 }

@@ -216,7 +216,7 @@ func cmdCheck(args []string, stdout io.Writer, log *slog.Logger) error {
 	for _, f := range rep.Absent {
 		fmt.Fprintf(stdout, "note: %s does not exist on this machine; run reads it at start-up.\n", f)
 	}
-	fmt.Fprintf(stdout, "%s: ok (vehicle %s, %d serial source(s))\n", *path, cfg.Vehicle, len(cfg.Serial))
+	fmt.Fprintf(stdout, "%s: ok (vehicle %s, %d serial source(s), %d channels)\n", *path, cfg.Vehicle, len(cfg.Serial), len(rep.Channels))
 	return nil
 }
 

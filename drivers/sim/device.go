@@ -121,3 +121,25 @@ func (l *Lines) Next(st State, ms uint32) []byte {
 	l.buf = serial.AppendFrame(l.buf[:0], l.seq, ms, l.readings)
 	return l.buf
 }
+
+// Run steps the engine model on its own, with no simulated microcontroller
+// (for a simulated ECU alone): every cfg.Period of real time it advances
+// by Period × TimeScale, until ctx ends.
+func (s *Shared) Run(ctx context.Context, cfg DeviceConfig) error {
+	if cfg.Period <= 0 {
+		cfg.Period = 10 * time.Millisecond
+	}
+	if cfg.TimeScale <= 0 {
+		cfg.TimeScale = 1
+	}
+	tick := time.NewTicker(cfg.Period)
+	defer tick.Stop()
+	for {
+		select {
+		case <-ctx.Done():
+			return ctx.Err()
+		case <-tick.C:
+			s.Step(time.Duration(float64(cfg.Period) * cfg.TimeScale))
+		}
+	}
+}

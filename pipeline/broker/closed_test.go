@@ -1,10 +1,12 @@
 package broker
 
 import (
+	"bytes"
 	"errors"
 	"fmt"
 	"log/slog"
 	"net"
+	"strings"
 	"testing"
 
 	"github.com/mochi-mqtt/server/v2/packets"
@@ -52,5 +54,18 @@ func TestFilterDropsOwnClose(t *testing.T) {
 		if got := len(logs.lines) == 1; got != c.pass {
 			t.Errorf("%s (%v): logged %q, want logged %v", c.name, c.err, logs.lines, c.pass)
 		}
+	}
+}
+
+// The library's info chatter stays out of the daemon's log, through With
+// and WithGroup too; its warnings get through.
+func TestLibraryChatterFiltered(t *testing.T) {
+	var buf bytes.Buffer
+	log := slog.New(refusalFilter{slog.NewTextHandler(&buf, nil)})
+	log.With("component", "broker").Info("chatter")
+	log.WithGroup("g").Info("chatter")
+	log.With("component", "broker").Warn("trouble")
+	if out := buf.String(); strings.Contains(out, "chatter") || !strings.Contains(out, "trouble") || !strings.Contains(out, "component=broker") {
+		t.Fatalf("log:\n%s", out)
 	}
 }

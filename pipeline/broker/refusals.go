@@ -117,8 +117,15 @@ func (b *burstLog) flush() {
 // burst by burstLog instead. It also drops the library's warning for a
 // client connection the broker itself closed (a client's DISCONNECT, a
 // takeover, Close at shutdown): "use of closed network connection" is no
-// fault, and a clean shutdown logs no warning.
+// fault, and a clean shutdown logs no warning. The library's info chatter
+// (hooks added, listeners attached, clients connecting) is dropped too: only
+// its warnings and errors reach the daemon's log.
 type refusalFilter struct{ slog.Handler }
+
+// Enabled passes warnings and errors only.
+func (f refusalFilter) Enabled(ctx context.Context, l slog.Level) bool {
+	return l >= slog.LevelWarn && f.Handler.Enabled(ctx, l)
+}
 
 func (f refusalFilter) Handle(ctx context.Context, r slog.Record) error {
 	refused := false
