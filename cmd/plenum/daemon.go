@@ -93,39 +93,24 @@ func build(ctx context.Context, cfg *config.Config, log *slog.Logger, open bool)
 	}
 
 	// MQTT: the embedded broker unless an external one is configured.
-	mcfg := mqttpub.Config{Prefix: cfg.MQTT.Prefix, Vehicle: cfg.Vehicle, MaxRate: cfg.MQTT.MaxRateHz,
-		SnapshotEvery: time.Duration(cfg.MQTT.SnapshotEvery), Version: version, Logger: log, Broker: cfg.MQTT.Broker}
+	mcfg, err := cfg.Publisher(version, log)
+	if err != nil {
+		return nil, err
+	}
 	if cfg.MQTT.Broker == "embedded" {
-		var users []broker.User
-		for i, u := range cfg.MQTT.Users {
-			pw, err := config.ReadSecret("mqtt user "+u.Name+": password_file", u.PasswordFile)
-			if err != nil {
-				return nil, cfg.At(config.SecretProblem(err), "mqtt", "users", i, "password_file")
-			}
-			users = append(users, broker.User{Name: u.Name, Password: pw, Commands: u.Commands})
+		bc, err := cfg.Broker(mcfg.ClientID, log)
+		if err != nil {
+			return nil, err
 		}
-		// The publisher's client ID is reserved for it: no other client can
-		// knock it off the broker.
-		mcfg.ClientID, mcfg.Broker = "plenum-"+cfg.Vehicle, "tcp://"+cfg.MQTT.Listen
 		if open {
 			// The broker outlives the publisher's last "offline" message: it
 			// is closed after every stage has stopped.
-			d.brk, err = broker.Start(context.WithoutCancel(ctx), broker.Config{Addr: cfg.MQTT.Listen, Prefix: cfg.MQTT.Prefix,
-				Anonymous: cfg.MQTT.Anonymous == nil || *cfg.MQTT.Anonymous, Users: users, DaemonClientID: mcfg.ClientID, Logger: log})
-			if err != nil {
+			if d.brk, err = broker.Start(context.WithoutCancel(ctx), bc); err != nil {
 				return nil, listenProblem(err, "mqtt.listen", cfg.MQTT.Listen)
 			}
 			d.closers = append(d.closers, func() { d.brk.Close() })
 			mcfg.Broker = "tcp://" + d.brk.Addr().String()
 			mcfg.Username, mcfg.Password = d.brk.Credentials()
-		}
-	} else {
-		mcfg.Username = cfg.MQTT.Username
-		if mcfg.Password, err = config.ReadSecret("mqtt password_file", cfg.MQTT.PasswordFile); err != nil {
-			return nil, cfg.At(config.SecretProblem(err), "mqtt", "password_file")
-		}
-		if mcfg.TLS, err = cfg.MQTT.TLSConfig(); err != nil {
-			return nil, cfg.At(fmt.Sprintf("the TLS files do not load: %v", err), "mqtt", "ca_file")
 		}
 	}
 	if cfg.Record.Dir != "" {
@@ -145,7 +130,7 @@ func build(ctx context.Context, cfg *config.Config, log *slog.Logger, open bool)
 		// The recorder must see every sample: a ring of several seconds.
 		deps := runs.Deps{Registry: d.reg, Sub: d.p.Subscribe("recorder", 1<<18), Store: d.p.Store(), Emit: d.p.Emit, Log: log,
 			Acknowledge:     func(rule, via, by string) error { return set.Acknowledge(derived.Ack{Rule: rule, Via: via, By: by}) },
-			EnterConditions: enterConditions(set)}
+			EnterConditions: func(c record.Conditions) string { return set.EnterConditions(c.Ambient()) }}
 		if d.pusher != nil {
 			deps.Forward = d.pusher
 		}

@@ -21,7 +21,7 @@ func buildDerived(cfg *config.Config, reg *pipeline.Registry, lenientRules bool)
 	dc.LenientRules = lenientRules
 	set, err := derived.Build(dc, reg)
 	if err != nil {
-		return nil, nil, buildError(cfg, err)
+		return nil, nil, cfg.DerivedError(err)
 	}
 	return set.Derivations, set, nil
 }

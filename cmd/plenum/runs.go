@@ -6,34 +6,13 @@ import (
 	"errors"
 	"fmt"
 	"io"
-	"math"
 	"net/url"
 	"os"
 	"os/user"
 
 	"github.com/plenum-engine/plenum/cmd/plenum/config"
-	"github.com/plenum-engine/plenum/derive"
-	"github.com/plenum-engine/plenum/pipeline/derived"
-	"github.com/plenum-engine/plenum/pipeline/record"
 	"github.com/plenum-engine/plenum/pipeline/runs"
 )
-
-// enterConditions hands the conditions entered for a run to the power
-// correction, in its units (NaN: not entered).
-func enterConditions(set *derived.Set) func(record.Conditions) string {
-	return func(c record.Conditions) string {
-		if c.Empty() {
-			return set.EnterConditions(nil)
-		}
-		v := func(p *float64) float64 {
-			if p == nil {
-				return math.NaN()
-			}
-			return *p
-		}
-		return set.EnterConditions(&derive.Ambient{Pressure: v(c.PressurePa), Temperature: v(c.TemperatureC), Humidity: v(c.RelativeHumidity)})
-	}
-}
 
 // cmdRunControl is `plenum run-start` and `plenum run-stop`: they ask a
 // running daemon's local HTTP API, with the control token from

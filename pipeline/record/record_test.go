@@ -5,6 +5,7 @@ import (
 	"bytes"
 	"encoding/json"
 	"fmt"
+	"math"
 	"os"
 	"os/exec"
 	"path/filepath"
@@ -314,5 +315,17 @@ func TestSummary(t *testing.T) {
 	var m Meta
 	if err := json.Unmarshal(mb, &m); err != nil || m.Conditions == nil || *m.Conditions.TemperatureC != 21.5 || m.Conditions.Source != "entered" {
 		t.Fatalf("run.json %s (%v)", mb, err)
+	}
+}
+
+// Entered conditions become derive's ambient state, NaN where absent.
+func TestConditionsAmbient(t *testing.T) {
+	p := 98200.0
+	a := Conditions{PressurePa: &p}.Ambient()
+	if a == nil || a.Pressure != p || !math.IsNaN(a.Temperature) || !math.IsNaN(a.Humidity) {
+		t.Fatalf("Ambient() = %+v", a)
+	}
+	if (Conditions{Source: "sensors"}).Ambient() != nil {
+		t.Fatal("no values gave an ambient state")
 	}
 }

@@ -5,6 +5,7 @@ import (
 	"math"
 	"time"
 
+	"github.com/plenum-engine/plenum/derive"
 	"github.com/plenum-engine/plenum/pipeline"
 )
 
@@ -198,4 +199,19 @@ func (z *summarizer) event(e pipeline.Event) {
 func (s Summary) JSON() []byte {
 	b, _ := json.MarshalIndent(s, "", "  ")
 	return append(b, '\n')
+}
+
+// Ambient returns the conditions as derive's ambient state (NaN where a
+// value is absent), or nil when none is given.
+func (c Conditions) Ambient() *derive.Ambient {
+	if c.Empty() {
+		return nil
+	}
+	v := func(p *float64) float64 {
+		if p == nil {
+			return math.NaN()
+		}
+		return *p
+	}
+	return &derive.Ambient{Pressure: v(c.PressurePa), Temperature: v(c.TemperatureC), Humidity: v(c.RelativeHumidity)}
 }

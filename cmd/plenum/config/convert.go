@@ -3,7 +3,9 @@ package config
 import (
 	"crypto/tls"
 	"crypto/x509"
+	"errors"
 	"fmt"
+	"io/fs"
 	"log/slog"
 	"os"
 	"path/filepath"
@@ -16,8 +18,10 @@ import (
 	"github.com/plenum-engine/plenum/drivers/obd"
 	"github.com/plenum-engine/plenum/drivers/obdcan"
 	"github.com/plenum-engine/plenum/pipeline"
+	"github.com/plenum-engine/plenum/pipeline/broker"
 	"github.com/plenum-engine/plenum/pipeline/derived"
 	"github.com/plenum-engine/plenum/pipeline/fleet"
+	"github.com/plenum-engine/plenum/pipeline/mqttpub"
 	"github.com/plenum-engine/plenum/pipeline/runs"
 	"github.com/plenum-engine/plenum/pipeline/tsdbpush"
 )
@@ -261,4 +265,96 @@ func (c *Config) Fleet(log *slog.Logger) (fc fleet.Config, ok bool, err error) {
 		}
 	}
 	return fc, true, nil
+}
+
+// Publisher converts the mqtt section into the publisher's Config, for an
+// external broker with its password and TLS files read; for the embedded
+// one the caller adds the broker's address and credentials.
+func (c *Config) Publisher(version string, log *slog.Logger) (mqttpub.Config, error) {
+	m := c.MQTT
+	pc := mqttpub.Config{Prefix: m.Prefix, Vehicle: c.Vehicle, MaxRate: m.MaxRateHz, SnapshotEvery: time.Duration(m.SnapshotEvery),
+		Version: version, Logger: log, Broker: m.Broker, Username: m.Username}
+	if m.Broker == "embedded" {
+		// The publisher's client ID is reserved for it on the embedded
+		// broker: no other client can knock it off.
+		pc.ClientID, pc.Broker, pc.Username = "plenum-"+c.Vehicle, "tcp://"+m.Listen, ""
+		return pc, nil
+	}
+	var err error
+	if pc.Password, err = ReadSecret("mqtt password_file", m.PasswordFile); err != nil {
+		return pc, c.At(SecretProblem(err), "mqtt", "password_file")
+	}
+	if pc.TLS, err = m.TLSConfig(); err != nil {
+		return pc, c.At(fmt.Sprintf("the TLS files do not load: %v", err), "mqtt", "ca_file")
+	}
+	return pc, nil
+}
+
+// Broker converts the mqtt section into the embedded broker's Config, with
+// the users' password files read; daemonID is the publisher's client ID,
+// reserved for it.
+func (c *Config) Broker(daemonID string, log *slog.Logger) (broker.Config, error) {
+	m := c.MQTT
+	bc := broker.Config{Addr: m.Listen, Prefix: m.Prefix, Anonymous: m.Anonymous == nil || *m.Anonymous,
+		DaemonClientID: daemonID, Logger: log}
+	for i, u := range m.Users {
+		pw, err := ReadSecret("mqtt user "+u.Name+": password_file", u.PasswordFile)
+		if err != nil {
+			return bc, c.At(SecretProblem(err), "mqtt", "users", i, "password_file")
+		}
+		bc.Users = append(bc.Users, broker.User{Name: u.Name, Password: pw, Commands: u.Commands})
+	}
+	return bc, nil
+}
+
+// WithoutAbsentFiles returns a copy of c in which every file the
+// configuration names (secrets, certificates) that does not exist on this
+// machine is left out, and those files with their keys: `plenum check` run
+// on another machine than the daemon's reads the files that are there.
+func (c *Config) WithoutAbsentFiles() (*Config, []string) {
+	cp := *c
+	cp.MQTT.Users = append([]MQTTUser(nil), c.MQTT.Users...)
+	var gone []string
+	leave := func(path *string, key string) {
+		if _, err := os.Stat(*path); *path != "" && errors.Is(err, fs.ErrNotExist) {
+			gone = append(gone, fmt.Sprintf("%s (%s)", *path, key))
+			*path = ""
+		}
+	}
+	m := &cp.MQTT
+	cert, key := m.CertFile, m.KeyFile
+	leave(&cp.Record.ControlTokenFile, "record.control_token_file")
+	leave(&cp.Record.Push.TokenFile, "record.push.token_file")
+	leave(&cp.Record.Push.PasswordFile, "record.push.password_file")
+	leave(&m.PasswordFile, "mqtt.password_file")
+	leave(&m.CAFile, "mqtt.ca_file")
+	leave(&m.CertFile, "mqtt.cert_file")
+	leave(&m.KeyFile, "mqtt.key_file")
+	if m.CertFile != cert || m.KeyFile != key {
+		m.CertFile, m.KeyFile = "", "" // a client certificate is loaded as a pair
+	}
+	for i := range m.Users {
+		leave(&m.Users[i].PasswordFile, fmt.Sprintf("mqtt.users[%d].password_file", i))
+	}
+	leave(&cp.Follow.PasswordFile, "follow.password_file")
+	leave(&cp.Follow.CAFile, "follow.ca_file")
+	return &cp, gone
+}
+
+// DerivedError places an error of derived.Build at the configuration key
+// it comes from.
+func (c *Config) DerivedError(err error) error {
+	var rce *derived.RuleChannelError
+	switch msg := err.Error(); {
+	case errors.As(err, &rce):
+		return c.At(rce.Error(), "warnings", rce.Index, "rule")
+	case strings.HasPrefix(msg, "turbo"):
+		return c.At(msg, "turbo")
+	case strings.HasPrefix(msg, "power"):
+		return c.At(msg, "power", "standard")
+	case strings.HasPrefix(msg, "warning"):
+		return c.At(msg, "warnings")
+	default:
+		return c.At(msg, "engine")
+	}
 }
