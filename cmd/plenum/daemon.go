@@ -10,7 +10,6 @@ import (
 	"net/http"
 	"path/filepath"
 	"strings"
-	"syscall"
 	"time"
 
 	"github.com/plenum-engine/plenum/cmd/plenum/config"
@@ -22,6 +21,7 @@ import (
 	"github.com/plenum-engine/plenum/pipeline/promexport"
 	"github.com/plenum-engine/plenum/pipeline/record"
 	"github.com/plenum-engine/plenum/pipeline/runs"
+	"github.com/plenum-engine/plenum/pipeline/stages"
 	"github.com/plenum-engine/plenum/pipeline/tsdbpush"
 )
 
@@ -106,7 +106,7 @@ func build(ctx context.Context, cfg *config.Config, log *slog.Logger, open bool)
 			// The broker outlives the publisher's last "offline" message: it
 			// is closed after every stage has stopped.
 			if d.brk, err = broker.Start(context.WithoutCancel(ctx), bc); err != nil {
-				return nil, listenProblem(err, "mqtt.listen", cfg.MQTT.Listen)
+				return nil, config.ListenProblem(err, "mqtt.listen", cfg.MQTT.Listen)
 			}
 			d.closers = append(d.closers, func() { d.brk.Close() })
 			mcfg.Broker = "tcp://" + d.brk.Addr().String()
@@ -236,7 +236,7 @@ func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *s
 	}()
 	ln, err := net.Listen("tcp", cfg.HTTP.Listen)
 	if err != nil {
-		return listenProblem(fmt.Errorf("http listen %s: %w", cfg.HTTP.Listen, err), "http.listen", cfg.HTTP.Listen)
+		return config.ListenProblem(fmt.Errorf("http listen %s: %w", cfg.HTTP.Listen, err), "http.listen", cfg.HTTP.Listen)
 	}
 	srv := &http.Server{Handler: d.mux, ReadHeaderTimeout: 5 * time.Second}
 	if d.rr != nil {
@@ -259,58 +259,29 @@ func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *s
 	// Start in stages, from the last consumer to the sources; stop in
 	// reverse. The recorder stops before the pusher (its last lines go into
 	// the backlog) and the publisher after both (it publishes the summary).
-	st := []stage{
-		{{"http", func(ctx context.Context) error { return serveHTTP(ctx, srv, ln) }}},
-		{{"mqtt", func(ctx context.Context) error {
+	st := []stages.Stage{
+		{{Name: "http", Run: func(ctx context.Context) error { return serveHTTP(ctx, srv, ln) }}},
+		{{Name: "mqtt", Run: func(ctx context.Context) error {
 			if err := d.pub.Run(ctx); err != nil {
 				// Recording and metrics go on without MQTT.
 				log.Error("mqtt publisher stopped; live values and events are not published until a restart", "err", err)
 				<-ctx.Done()
 			}
 			return nil
-		}}, {"event metrics", d.evm.Run}, {"event log", d.evlog.Run}},
+		}}, {Name: "event metrics", Run: d.evm.Run}, {Name: "event log", Run: d.evlog.Run}},
 	}
 	if d.pusher != nil {
-		st = append(st, stage{{"push", d.pusher.Run}})
+		st = append(st, stages.Stage{{Name: "push", Run: d.pusher.Run}})
 	}
 	if d.rr != nil {
-		st = append(st, stage{{"recorder", d.rr.Run}})
+		st = append(st, stages.Stage{{Name: "recorder", Run: d.rr.Run}})
 	}
-	st = append(st, stage{{"pipeline", d.p.Run}})
-	var drivers stage
+	st = append(st, stages.Stage{{Name: "pipeline", Run: d.p.Run}})
+	var drivers stages.Stage
 	for _, s := range d.srcs {
-		drivers = append(drivers, part{s.name, func(ctx context.Context) error { return s.run(ctx, d.p) }})
+		drivers = append(drivers, stages.Part{Name: s.name, Run: func(ctx context.Context) error { return s.run(ctx, d.p) }})
 	}
-	return runStages(ctx, log, append(st, drivers)...)
-}
-
-// listenError is a listen address that is already in use: it names the
-// configuration key that changes it, or the command-line flag when the
-// command sets the address from one (demo's -http and -mqtt).
-type listenError struct {
-	Key  string // configuration key: http.listen, mqtt.listen
-	Flag string // the flag that set the address, or ""
-	Addr string
-	Err  error
-}
-
-func (e *listenError) Error() string {
-	how := "set another address in " + e.Key + " in the configuration"
-	if e.Flag != "" {
-		how = "give another address with " + e.Flag
-	}
-	return fmt.Sprintf("%v: another program (or another plenum) is listening on %s; stop it, or %s", e.Err, e.Addr, how)
-}
-
-func (e *listenError) Unwrap() error { return e.Err }
-
-// listenProblem turns err into a *listenError when it says that addr is
-// already in use.
-func listenProblem(err error, key, addr string) error {
-	if errors.Is(err, syscall.EADDRINUSE) {
-		return &listenError{Key: key, Addr: addr, Err: err}
-	}
-	return err
+	return stages.Run(ctx, log, shutdownGrace, append(st, drivers)...)
 }
 
 // serveHTTP serves on ln until ctx ends, then shuts the server down,

@@ -1,16 +1,7 @@
 // Command plenum captures an engine's sensors live, derives what the raw
-// signals mean and publishes the result over MQTT and Prometheus.
-//
-// Usage:
-//
-//	plenum demo  [-http ADDR] [-mqtt ADDR] [-for DURATION]   simulated engine, embedded broker
-//	plenum run   -config FILE                                 the daemon, on real hardware
-//	plenum check -config FILE                                 check a configuration (exit 2 if bad)
-//	plenum probe [-bus can0 | -sim] [-29bit]                  list responding ECUs, VIN, supported PIDs
-//	plenum replay -in RUN [-config FILE] [-out FILE] [-csv]    re-derive a recorded run
-//	plenum plot -in RUN[,RUN…] -out FILE.png|FILE.svg [-channels a,b]  draw runs
-//	plenum run-start|run-stop [-addr A] [-label L]           start/stop a run in a running daemon
-//	plenum version
+// signals mean and publishes the result over MQTT and Prometheus; it also
+// checks configurations, probes CAN buses, replays and plots recorded runs
+// and controls a running daemon. plenum -h lists the commands.
 //
 // Plenum is advisory only: it is not a safety system.
 package main
@@ -271,7 +262,7 @@ func cmdDemo(ctx context.Context, args []string, stdout io.Writer, log *slog.Log
 		defer cancel()
 	}
 	err = runDaemon(ctx, cfg, stdout, log)
-	if le := (*listenError)(nil); errors.As(err, &le) {
+	if le := (*config.ListenError)(nil); errors.As(err, &le) {
 		le.Flag = map[string]string{"http.listen": "-http", "mqtt.listen": "-mqtt"}[le.Key]
 	}
 	return err

@@ -10,6 +10,7 @@ import (
 	"os"
 	"path/filepath"
 	"strings"
+	"syscall"
 	"time"
 
 	"github.com/plenum-engine/plenum/derive"
@@ -357,4 +358,35 @@ func (c *Config) DerivedError(err error) error {
 	default:
 		return c.At(msg, "engine")
 	}
+}
+
+// ListenError is a listen address that is already in use: it names the
+// configuration key that changes it, or the command-line flag when the
+// command sets the address from one (demo's -http and -mqtt).
+type ListenError struct {
+	Key  string // configuration key: http.listen, mqtt.listen
+	Flag string // the flag that set the address, or ""
+	Addr string
+	Err  error
+}
+
+// Error says who holds the address and how to choose another.
+func (e *ListenError) Error() string {
+	how := "set another address in " + e.Key + " in the configuration"
+	if e.Flag != "" {
+		how = "give another address with " + e.Flag
+	}
+	return fmt.Sprintf("%v: another program (or another plenum) is listening on %s; stop it, or %s", e.Err, e.Addr, how)
+}
+
+// Unwrap returns the listen error.
+func (e *ListenError) Unwrap() error { return e.Err }
+
+// ListenProblem turns err into a *ListenError when it says that addr is
+// already in use.
+func ListenProblem(err error, key, addr string) error {
+	if errors.Is(err, syscall.EADDRINUSE) {
+		return &ListenError{Key: key, Addr: addr, Err: err}
+	}
+	return err
 }
