@@ -49,23 +49,12 @@ func cmdReplay(args []string, stdout io.Writer) error {
 	}
 	_, err = replay.Run(replay.Config{
 		Pipeline: func(reg *pipeline.Registry) (*pipeline.Pipeline, error) { return offlinePipeline(cfg, reg) },
-		Channel:  recordedChannel,
 		Vehicle:  cfg.Vehicle,
 		CSV:      *asCSV,
 		Out:      *out,
 		Summary:  *sumPath,
 	}, rec, stdout)
 	return err
-}
-
-// recordedChannel describes a recorded channel from the channel catalogue;
-// an OBD channel's sensor label is its name, as the OBD source registers it.
-func recordedChannel(name string) (pipeline.Channel, bool) {
-	ch, ok := pipeline.Catalogued(name)
-	if ok && ch.Origin == pipeline.FromOBD {
-		ch.Sensor = name
-	}
-	return ch, ok
 }
 
 // offlinePipeline builds cfg's derivations and detectors over reg for use

@@ -32,7 +32,7 @@ type Config struct {
 	// Channel describes a recorded channel by name (quantity, unit, range,
 	// sensor); the recorded source is set on it. A name it does not know
 	// (false) is registered bare, its name as its quantity. Nil:
-	// pipeline.Standard.
+	// CataloguedChannel.
 	Channel func(name string) (pipeline.Channel, bool)
 	// Vehicle is the vehicle tag of the output lines and of the summary.
 	Vehicle string
@@ -133,12 +133,23 @@ func Run(cfg Config, rec record.Recording, w io.Writer) (record.Summary, error) 
 	return sum, nil
 }
 
+// CataloguedChannel describes a recorded channel from the channel
+// catalogue; an OBD channel's sensor label is its name, as the OBD source
+// registers it.
+func CataloguedChannel(name string) (pipeline.Channel, bool) {
+	ch, ok := pipeline.Catalogued(name)
+	if ok && ch.Origin == pipeline.FromOBD {
+		ch.Sensor = name
+	}
+	return ch, ok
+}
+
 // register registers the recorded series in a new registry and returns it
 // with the channel ID of each recording key.
 func register(cfg Config, rec record.Recording) (*pipeline.Registry, []pipeline.ChannelID, error) {
 	lookup := cfg.Channel
 	if lookup == nil {
-		lookup = pipeline.Standard
+		lookup = CataloguedChannel
 	}
 	reg := pipeline.NewRegistry()
 	ids := make([]pipeline.ChannelID, len(rec.Keys))

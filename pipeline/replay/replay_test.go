@@ -296,3 +296,23 @@ func TestAsyncWriter(t *testing.T) {
 		t.Fatalf("%d writes reached the failing writer, want 2 (none after the failure)", fw.n)
 	}
 }
+
+// The default channel lookup is the catalogue's, an OBD channel labelled by
+// its name.
+func TestCataloguedChannel(t *testing.T) {
+	for _, tc := range []struct {
+		name, sensor string
+		unit         pipeline.Unit
+		ok           bool
+	}{
+		{"manifold_pressure", "manifold", pipeline.Pascal, true},
+		{"ecu_engine_speed", "ecu_engine_speed", pipeline.RPM, true},
+		{"boost_pressure", "boost", pipeline.Pascal, true},
+		{"no_such_channel", "", "", false},
+	} {
+		c, ok := CataloguedChannel(tc.name)
+		if ok != tc.ok || ok && (c.Sensor != tc.sensor || c.Unit != tc.unit) {
+			t.Errorf("CataloguedChannel(%q) = %+v, %v", tc.name, c, ok)
+		}
+	}
+}
