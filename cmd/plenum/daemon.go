@@ -18,6 +18,7 @@ import (
 	"github.com/plenum-engine/plenum/cmd/plenum/config"
 	"github.com/plenum-engine/plenum/pipeline"
 	"github.com/plenum-engine/plenum/pipeline/broker"
+	"github.com/plenum-engine/plenum/pipeline/console"
 	"github.com/plenum-engine/plenum/pipeline/derived"
 	"github.com/plenum-engine/plenum/pipeline/mqttpub"
 	"github.com/plenum-engine/plenum/pipeline/promexport"
@@ -118,6 +119,7 @@ func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *s
 	}
 	mux := http.NewServeMux()
 	var rr *runs.Controller
+	ccfg := console.Config{Vehicle: cfg.Vehicle, Logger: log}
 	if cfg.Record.Dir != "" {
 		if fixed, err := record.Recover(cfg.Record.Dir); err != nil {
 			log.Warn("recovering earlier runs", "err", err)
@@ -137,6 +139,7 @@ func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *s
 		}
 		rr = runs.New(rc, deps)
 		mux.Handle("/api/runs/", rr.Handler())
+		ccfg.CurrentRun, ccfg.Controls = rr.Current, rc.ControlToken != ""
 	}
 	if cfg.StateDir != "" {
 		ob, err := mqttpub.OpenOutbox(filepath.Join(cfg.StateDir, "outbox-"+cfg.Vehicle), 10000)
@@ -156,8 +159,12 @@ func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *s
 	}
 	pub.SetStore(p.Store())
 
+	// The live console: its stream subscribes to the pipeline.
+	con := console.New(ccfg, p)
+	mux.Handle("/console/", con.Handler())
+
 	// Metrics: every source and publisher reports its health at scrape time.
-	parts := []promexport.Reporter{pub}
+	parts := []promexport.Reporter{pub, con}
 	if rr != nil {
 		parts = append(parts, rr)
 	}
@@ -190,7 +197,7 @@ func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *s
 			http.NotFound(w, r)
 			return
 		}
-		fmt.Fprintf(w, "plenum %s for %s\n/metrics  Prometheus exposition\n\n%s\n", version, cfg.Vehicle, Safety)
+		fmt.Fprintf(w, "plenum %s for %s\n/console/  live console (driver, cell, wall)\n/metrics  Prometheus exposition\n\n%s\n", version, cfg.Vehicle, Safety)
 	})
 	ln, err := net.Listen("tcp", cfg.HTTP.Listen)
 	if err != nil {
@@ -209,6 +216,7 @@ func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *s
 		}
 	}
 
+	fmt.Fprintf(stdout, "console:  http://%s/console/\n", ln.Addr())
 	fmt.Fprintf(stdout, "metrics:  http://%s/metrics\n", ln.Addr())
 	if brk != nil {
 		fmt.Fprintf(stdout, "mqtt:     mqtt://%s  (subscribe to %s/%s/#, read-only)\n", brk.Addr(), cfg.MQTT.Prefix, cfg.Vehicle)
@@ -228,7 +236,7 @@ func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *s
 				<-ctx.Done()
 			}
 			return nil
-		}}, {"event metrics", evm.Run}},
+		}}, {"event metrics", evm.Run}, {"console", con.Run}},
 	}
 	if pusher != nil {
 		st = append(st, stage{{"push", pusher.Run}})
