@@ -38,7 +38,16 @@ const Plenum = (() => {
         this.changed(name, d);
       });
       es.onopen = () => { this.open = true; this.changed("open"); };
-      es.onerror = () => { this.open = es.readyState === EventSource.OPEN; this.changed("error"); };
+      es.onerror = () => {
+        this.open = es.readyState === EventSource.OPEN;
+        // A refused reconnection (the daemon stopping, a proxy's error page)
+        // closes an EventSource for good: start a new one in a moment.
+        if (es.readyState === EventSource.CLOSED && !this.retrying) {
+          this.retrying = true;
+          setTimeout(() => { this.retrying = false; this.start(); }, 2000);
+        }
+        this.changed("error");
+      };
       on("snapshot", (d) => this.onSnapshot(d));
       on("values", (d) => { for (const v of d.v) this.setValue(v, d.t); });
       on("stale", (d) => { for (const id of d.c) { const v = this.values.get(id); if (v) v.s = true; } });
