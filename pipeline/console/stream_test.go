@@ -26,6 +26,7 @@ type rig struct {
 	ids   map[string]pipeline.ChannelID
 	clk   *clock.Manual // nil with the system clock
 	http  *httptest.Server
+	mux   *http.ServeMux
 	stop  context.CancelFunc
 	done  chan struct{}
 	pdone chan struct{}
@@ -70,6 +71,7 @@ func newRig(t testing.TB, cfg Config, manual bool) *rig {
 	go func() { r.srv.Run(ctx); close(r.done) }()
 	mux := http.NewServeMux()
 	mux.Handle("/console/", r.srv.Handler())
+	r.mux = mux
 	r.http = httptest.NewServer(mux)
 	t.Cleanup(func() {
 		r.shutdown()

@@ -63,17 +63,19 @@
   }
 
   const warnList = document.getElementById("warnings");
+  const ackResults = new Map();
   function renderWarnings() {
-    const key = JSON.stringify([...live.warnings.values()]) + Plenum.token();
+    const key = JSON.stringify([...live.warnings.values()]) + Plenum.token() + JSON.stringify([...ackResults]);
     if (warnList.dataset.key === key) return;
     warnList.dataset.key = key;
     warnList.replaceChildren();
     for (const w of live.warnings.values()) {
       const s = severity(w.severity);
-      const res = el("span", { class: "result" });
+      const res = el("span", { class: "result" }, ackResults.get(w.name) || "");
       const ack = el("button", { type: "button", onclick: async () => {
         const r = await Plenum.control(live.snap.controls.ack, { rule: w.name });
-        res.textContent = r.ok ? "acknowledged" : r.text;
+        ackResults.set(w.name, r.ok ? "acknowledged" : r.text);
+        render();
       } }, "Acknowledge");
       warnList.append(el("li", { class: "sev-" + (w.severity || "warning") + (w.acked ? " acked" : ""), "data-rule": w.name },
         el("strong", {}, s.shape + " " + s.word + " "), pretty(w.name), " ", el("span", { class: "detail" }, fieldsText(w)),

@@ -57,12 +57,13 @@
   }
 
   const alarms = document.getElementById("alarms");
+  const ackResults = new Map(); // rule -> what the last acknowledgement got
   function renderAlarms() {
     const ws = [...live.warnings.values()];
     const open = ws.filter((w) => !w.acked);
     alarms.hidden = ws.length === 0;
     alarms.classList.toggle("full", open.length > 0);
-    const key = JSON.stringify(ws) + Plenum.token();
+    const key = JSON.stringify(ws) + Plenum.token() + JSON.stringify([...ackResults]);
     if (alarms.dataset.key === key) return;
     alarms.dataset.key = key;
     alarms.replaceChildren();
@@ -71,10 +72,10 @@
       const ack = el("button", { type: "button", class: "ack", onclick: async () => {
         ack.disabled = true;
         const r = await Plenum.control(live.snap.controls.ack, { rule: w.name });
-        res.textContent = r.ok ? "acknowledged" : r.text;
-        ack.disabled = false;
+        ackResults.set(w.name, r.ok ? "acknowledged" : r.text);
+        render();
       } }, "Acknowledge");
-      const res = el("span", { class: "result" });
+      const res = el("span", { class: "result" }, ackResults.get(w.name) || "");
       alarms.append(el("article", { class: "alarm sev-" + (w.severity || "warning") + (w.acked ? " acked" : ""), "data-rule": w.name },
         el("div", { class: "sev" }, el("span", { class: "shape", "aria-hidden": "true" }, s.shape), " ", s.word, w.acked ? " · acknowledged, still active" : ""),
         el("h2", {}, pretty(w.name)),
