@@ -191,7 +191,7 @@ const Plenum = (() => {
   function connection(live) {
     if (!live.snap) return { cls: "conn-wait", text: "◌ Connecting…" };
     if (live.lost()) return { cls: "conn-lost", text: "✕ Connection lost " + ago(live.silentFor()) + " ago — nothing below is live" };
-    return { cls: "conn-live", text: "● Live" };
+    return { cls: "conn-live", text: "● Connected" };
   }
 
   // The token box: read-only until the user types the control token.

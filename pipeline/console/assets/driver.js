@@ -91,7 +91,7 @@
     const warm = live.value("turbo_warmup_warning");
     if (warm.v && warm.state === "live" && warm.v.v >= 1) parts.push(el("p", { class: "g warm" }, "▲ Warming up: keep the load light until oil is warm"));
     const cool = live.value("cooldown_idle_remaining");
-    if (cool.v && cool.state === "live" && cool.v.v > 0) parts.push(el("p", { class: "g cool" }, "⏲ Idle " + Math.ceil(cool.v.v) + " s more before switching off"));
+    if (cool.v && cool.state === "live" && cool.v.v > 0) parts.push(el("p", { class: "g cool" }, "◔ Idle " + Math.ceil(cool.v.v) + " s more before switching off"));
     const safe = live.value("safe_to_switch_off");
     if (safe.v && safe.state === "live" && safe.v.v >= 1 && !(cool.v && cool.v.v > 0)) parts.push(el("p", { class: "g ok" }, "✓ Safe to switch off"));
     guard.replaceChildren(...parts);
