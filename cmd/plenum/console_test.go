@@ -9,6 +9,7 @@ import (
 	"os/exec"
 	"path/filepath"
 	"strings"
+	"sync"
 	"testing"
 	"time"
 
@@ -142,6 +143,7 @@ func TestDemoConsole(t *testing.T) {
 		defer cancelA()
 		bctx, cancelB := chromedp.NewContext(actx)
 		defer cancelB()
+		var errMu sync.Mutex
 		var errs []string
 		msgs := chromedp.Console(bctx)
 		go func() {
@@ -150,7 +152,9 @@ func TestDemoConsole(t *testing.T) {
 					return
 				}
 				if m.Type == chromedp.ConsoleError || m.IsException() {
+					errMu.Lock()
 					errs = append(errs, m.String())
+					errMu.Unlock()
 				}
 			}
 		}()
@@ -210,6 +214,8 @@ func TestDemoConsole(t *testing.T) {
 			shot("demo" + strings.ReplaceAll(v.path, "/", "-") + "-1920x1080")
 		}
 		cancelB()
+		errMu.Lock()
+		defer errMu.Unlock()
 		for _, e := range errs {
 			t.Errorf("console error: %s", e)
 		}

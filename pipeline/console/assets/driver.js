@@ -92,8 +92,11 @@
     if (warm.v && warm.state === "live" && warm.v.v >= 1) parts.push(el("p", { class: "g warm" }, "▲ Warming up: keep the load light until oil is warm"));
     const cool = live.value("cooldown_idle_remaining");
     if (cool.v && cool.state === "live" && cool.v.v > 0) parts.push(el("p", { class: "g cool" }, "◔ Idle " + Math.ceil(cool.v.v) + " s more before switching off"));
+    // "Safe to switch off" matters only at idle: not while driving.
     const safe = live.value("safe_to_switch_off");
-    if (safe.v && safe.state === "live" && safe.v.v >= 1 && !(cool.v && cool.v.v > 0)) parts.push(el("p", { class: "g ok" }, "✓ Safe to switch off"));
+    const rpm = ["engine_speed", "ecu_engine_speed"].map((n) => live.value(n)).find((r) => r.state === "live");
+    const idle = rpm && rpm.v.v < 1300;
+    if (idle && safe.v && safe.state === "live" && safe.v.v >= 1 && !(cool.v && cool.v.v > 0)) parts.push(el("p", { class: "g ok" }, "✓ Safe to switch off"));
     guard.replaceChildren(...parts);
   }
 
