@@ -53,6 +53,7 @@ type hub struct {
 	runKnown bool
 	stopped  bool
 
+	nclients        atomic.Int32 // len(clients), read by the loop without the lock
 	running         atomic.Bool
 	taken           atomic.Uint64 // samples taken from the subscription (tests wait on it)
 	sent            atomic.Uint64
@@ -210,12 +211,15 @@ func (h *hub) take(now time.Time) {
 // send is at least one interval old.
 func (h *hub) flush(now time.Time) {
 	h.out = h.out[:0]
+	encode := h.nclients.Load() > 0 // with nobody watching, keep the state only
 	for id, p := range h.pending {
 		if !p || now.Sub(h.lastSent[id]) < h.interval {
 			continue
 		}
 		h.pending[id], h.lastSent[id] = false, now
-		h.out = append(h.out, h.value(h.latest[id], false))
+		if encode {
+			h.out = append(h.out, h.value(h.latest[id], false))
+		}
 	}
 	if len(h.out) > 0 {
 		h.broadcast("values", struct {
@@ -319,6 +323,7 @@ func (h *hub) broadcastLocked(event string, v any) {
 
 func (h *hub) dropLocked(c *client) {
 	delete(h.clients, c)
+	h.nclients.Store(int32(len(h.clients)))
 	close(c.gone)
 	h.droppedClients.Add(1)
 	h.droppedMessages.Add(uint64(1 + len(c.q)))
@@ -379,6 +384,7 @@ func (h *hub) join() *client {
 	c := &client{q: make(chan []byte, h.cfg.QueueSize), gone: make(chan struct{})}
 	c.q <- h.frameLocked("snapshot", snap)
 	h.clients[c] = struct{}{}
+	h.nclients.Store(int32(len(h.clients)))
 	return c
 }
 
@@ -386,6 +392,7 @@ func (h *hub) leave(c *client) {
 	h.mu.Lock()
 	if _, ok := h.clients[c]; ok {
 		delete(h.clients, c)
+		h.nclients.Store(int32(len(h.clients)))
 		close(c.gone)
 	}
 	h.mu.Unlock()
@@ -400,6 +407,7 @@ func (h *hub) stop() {
 		delete(h.clients, c)
 		close(c.gone)
 	}
+	h.nclients.Store(0)
 	h.mu.Unlock()
 }
 
