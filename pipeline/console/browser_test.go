@@ -242,9 +242,9 @@ func TestBrowserDriver(t *testing.T) {
 
 	// With the token typed, acknowledging sends it in the header.
 	pg.do(chromedp.Evaluate[chromedp.Void](`sessionStorage.setItem("plenum.control_token", "tok-42"); document.getElementById("alarms").dataset.key = ""`))
-	pg.until("the acknowledge button shows", `document.querySelector('#alarms .ack') !== null`, 2*time.Second)
+	pg.until("the acknowledge button shows", `document.querySelector('#alarms .ack') !== null`, 5*time.Second)
 	pg.do(chromedp.Click(`#alarms .ack`))
-	pg.until("the warning is acknowledged", `document.querySelector('#alarms article.acked') !== null && !document.getElementById("alarms").classList.contains("full")`, 2*time.Second)
+	pg.until("the warning is acknowledged", `document.querySelector('#alarms article.acked') !== null && !document.getElementById("alarms").classList.contains("full")`, 5*time.Second)
 	mu.Lock()
 	if len(auths) != 1 || auths[0] != "Bearer tok-42" {
 		t.Errorf("acknowledge carried %q", auths)
@@ -255,10 +255,10 @@ func TestBrowserDriver(t *testing.T) {
 	}
 	// A wrong token is refused by the API and the page says so.
 	r.p.Emit(pipeline.Event{Kind: "warning_raised", Name: "boost_high", Start: raised, End: raised, Tags: map[string]string{"severity": "warning"}})
-	pg.until("the second warning shows", `document.querySelector('#alarms article[data-rule="boost_high"] .ack') !== null`, time.Second)
+	pg.until("the second warning shows", `document.querySelector('#alarms article[data-rule="boost_high"] .ack') !== null`, 5*time.Second)
 	pg.do(chromedp.Evaluate[chromedp.Void](`sessionStorage.setItem("plenum.control_token", "wrong")`))
 	pg.do(chromedp.Click(`#alarms article[data-rule="boost_high"] .ack`))
-	pg.until("the refusal shows", `document.querySelector('#alarms article[data-rule="boost_high"] .result')?.textContent.startsWith("401")`, 2*time.Second)
+	pg.until("the refusal shows", `document.querySelector('#alarms article[data-rule="boost_high"] .result')?.textContent.startsWith("401")`, 5*time.Second)
 
 	cleared := time.Now()
 	r.p.Emit(pipeline.Event{Kind: "warning_cleared", Name: "oil_temp_high", Start: raised, End: cleared})
@@ -279,16 +279,16 @@ func TestBrowserDriver(t *testing.T) {
 
 	// Values that stop updating show stale, never live-looking.
 	f.halt()
-	pg.until("engine speed shows stale", `document.querySelector('.fig[data-channel="engine_speed"]').dataset.state === "stale"`, 4*time.Second)
+	pg.until("engine speed shows stale", `document.querySelector('.fig[data-channel="engine_speed"]').dataset.state === "stale"`, 6*time.Second)
 	if n := evalAs[string](pg, `document.querySelector('.fig[data-channel="engine_speed"] .note').textContent`); !strings.Contains(n, "STALE") {
 		t.Errorf("stale note %q", n)
 	}
-	pg.until("the cool-down countdown goes with its value", `document.querySelector('#guard .cool') === null`, time.Second)
+	pg.until("the cool-down countdown goes with its value", `document.querySelector('#guard .cool') === null`, 5*time.Second)
 	pg.shot("driver-stale-390x844")
 
 	// The stream stops: the page says the connection is lost.
 	r.shutdown()
-	pg.until("connection lost shows", `document.body.classList.contains("is-lost") && document.querySelector('.fig[data-channel="engine_speed"]').dataset.state === "lost"`, 4*time.Second)
+	pg.until("connection lost shows", `document.body.classList.contains("is-lost") && document.querySelector('.fig[data-channel="engine_speed"]').dataset.state === "lost"`, 6*time.Second)
 	if c := evalAs[string](pg, `document.getElementById("conn").textContent`); !strings.Contains(c, "Connection lost") {
 		t.Errorf("connection badge %q", c)
 	}
@@ -309,14 +309,14 @@ func TestBrowserWallAndCell(t *testing.T) {
 	pg := newPage(t, 1920, 1080)
 	pg.do(chromedp.Navigate(r.http.URL + "/console/wall"))
 	pg.until("the tile is live", `document.querySelector('.tile')?.dataset.state === "live" && document.querySelector('.vname').textContent === "brackenfell-rs" && document.querySelector('.tv[data-state="live"]') !== null`, 10*time.Second)
-	pg.until("the tile lists the warning", `document.querySelector('.twarn').textContent.includes("Coolant high")`, 2*time.Second)
+	pg.until("the tile lists the warning", `document.querySelector('.twarn').textContent.includes("Coolant high")`, 5*time.Second)
 	pg.noHorizontalScroll("wall")
 	pg.shot("wall-1920x1080")
 
 	pg.do(chromedp.Navigate(r.http.URL + "/console/cell"))
 	pg.until("every channel is listed", `document.querySelectorAll('#channels tbody tr').length === `+strconv.Itoa(len(rigChannels)), 10*time.Second)
 	pg.until("engine speed is live", `document.querySelector('tr[data-channel="engine_speed"]')?.dataset.state === "live"`, 5*time.Second)
-	pg.until("the lag event is listed", `document.getElementById("lags").textContent.includes("lag s 0.6200")`, 2*time.Second)
+	pg.until("the lag event is listed", `document.getElementById("lags").textContent.includes("lag s 0.6200")`, 5*time.Second)
 	if !evalAs[bool](pg, `document.getElementById("start").disabled`) {
 		t.Error("run start enabled without a token")
 	}
