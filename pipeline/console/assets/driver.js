@@ -83,6 +83,8 @@
         el("p", { class: "since" }, "since " + new Date(w.start || w.end).toLocaleTimeString()),
         w.acked || !Plenum.token() ? null : ack, res));
     }
+    // The caution stays in sight while a warning covers the screen.
+    if (open.length) alarms.append(el("p", { class: "caution" }, el("strong", {}, "Advisory only — not a safety system."), " Never read this screen while driving on a public road."));
   }
 
   const guard = document.getElementById("guard");
