@@ -15,7 +15,9 @@ import (
 	"github.com/plenum-engine/plenum/cmd/plenum/config"
 	"github.com/plenum-engine/plenum/pipeline"
 	"github.com/plenum-engine/plenum/pipeline/broker"
+	"github.com/plenum-engine/plenum/pipeline/console"
 	"github.com/plenum-engine/plenum/pipeline/derived"
+	"github.com/plenum-engine/plenum/pipeline/display"
 	"github.com/plenum-engine/plenum/pipeline/eventlog"
 	"github.com/plenum-engine/plenum/pipeline/mqttpub"
 	"github.com/plenum-engine/plenum/pipeline/promexport"
@@ -39,6 +41,7 @@ type daemon struct {
 	brk     *broker.Broker     // nil with an external broker
 	evm     *promexport.Events
 	evlog   *eventlog.Events
+	con     *console.Server
 	mux     *http.ServeMux
 	closers []func() // closed in reverse order
 }
@@ -157,13 +160,26 @@ func build(ctx context.Context, cfg *config.Config, log *slog.Logger, open bool)
 	if d.rr != nil {
 		d.rr.SetPublish(d.pub.PublishSummary)
 	}
+	// The live console: its stream subscribes to the pipeline; values are
+	// shown in the configured units for people.
+	units, _ := cfg.Display.Units() // checked with the configuration
+	people, err := display.New(display.Config{Units: units, Fuel: cfg.Engine.Fuel})
+	if err != nil {
+		return nil, cfg.At(err.Error(), "engine", "fuel")
+	}
+	ccfg := console.Config{Vehicle: cfg.Vehicle, Logger: log, Formatter: console.People{Formatter: people}}
+	if d.rr != nil {
+		ccfg.CurrentRun, ccfg.Controls = d.rr.Current, d.rr.Controls()
+	}
+	d.con = console.New(ccfg, d.p)
+	d.mux.Handle("/console/", d.con.Handler())
 	return d, d.serveMetrics()
 }
 
 // serveMetrics builds the Prometheus collector, every part reporting its
 // health at scrape time, the event metrics and log, and the HTTP pages.
 func (d *daemon) serveMetrics() error {
-	parts := []promexport.Reporter{d.pub}
+	parts := []promexport.Reporter{d.pub, d.con}
 	if d.rr != nil {
 		parts = append(parts, d.rr)
 	}
@@ -207,7 +223,7 @@ func (d *daemon) serveMetrics() error {
 			http.NotFound(w, r)
 			return
 		}
-		fmt.Fprintf(w, "plenum %s for %s\n/metrics  Prometheus exposition\n\n%s\n", version, d.cfg.Vehicle, Safety)
+		fmt.Fprintf(w, "plenum %s for %s\n/console/  live console (driver, cell, wall)\n/metrics  Prometheus exposition\n\n%s\n", version, d.cfg.Vehicle, Safety)
 	})
 	return nil
 }
@@ -218,6 +234,9 @@ func (d *daemon) serveMetrics() error {
 // recorded, pushed and published.
 func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *slog.Logger) error {
 	fmt.Fprintln(stdout, Safety)
+	if cfg.StateDir != "" {
+		fmt.Fprintf(stdout, "state:    %s\n", cfg.StateDir)
+	}
 	d, err := build(ctx, cfg, log, true)
 	if err != nil {
 		return err
@@ -249,6 +268,7 @@ func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *s
 			fmt.Fprintf(stdout, "recording: %s\n", filepath.Join(cfg.Record.Dir, id))
 		}
 	}
+	fmt.Fprintf(stdout, "console:  http://%s/console/\n", ln.Addr())
 	fmt.Fprintf(stdout, "metrics:  http://%s/metrics\n", ln.Addr())
 	if d.brk != nil {
 		fmt.Fprintf(stdout, "mqtt:     mqtt://%s  (subscribe to %s/%s/#, read-only)\n", d.brk.Addr(), cfg.MQTT.Prefix, cfg.Vehicle)
@@ -268,7 +288,7 @@ func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *s
 				<-ctx.Done()
 			}
 			return nil
-		}}, {Name: "event metrics", Run: d.evm.Run}, {Name: "event log", Run: d.evlog.Run}},
+		}}, {Name: "event metrics", Run: d.evm.Run}, {Name: "event log", Run: d.evlog.Run}, {Name: "console", Run: d.con.Run}},
 	}
 	if d.pusher != nil {
 		st = append(st, stages.Stage{{Name: "push", Run: d.pusher.Run}})

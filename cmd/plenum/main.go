@@ -255,7 +255,6 @@ func cmdDemo(ctx context.Context, args []string, stdout io.Writer, log *slog.Log
 		defer os.RemoveAll(dir)
 		cfg.StateDir = dir
 	}
-	fmt.Fprintf(stdout, "state:    %s\n", cfg.StateDir)
 	if *dur > 0 {
 		var cancel context.CancelFunc
 		ctx, cancel = context.WithTimeout(ctx, *dur)

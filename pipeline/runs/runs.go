@@ -285,6 +285,10 @@ func (c *Controller) stop(by string) (record.Summary, error) {
 	return sum, nil
 }
 
+// Controls reports whether the commands of the HTTP API are on (a control
+// token is configured).
+func (c *Controller) Controls() bool { return c.cfg.ControlToken != "" }
+
 // Current returns the id of the run being recorded, or "".
 func (c *Controller) Current() string {
 	c.mu.Lock()
