@@ -477,4 +477,3 @@ func TestPages(t *testing.T) {
 		}
 	}
 }
-
