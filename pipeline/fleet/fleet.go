@@ -199,19 +199,7 @@ func New(cfg Config) (*Follower, error) {
 		log = slog.New(slog.DiscardHandler)
 	}
 	f := &Follower{cfg: cfg, clk: clock.Or(cfg.Clock), log: log, vehicles: map[string]*vehicle{}, changed: make(chan struct{})}
-	opts := paho.NewClientOptions().
-		AddBroker(cfg.Broker).
-		SetClientID(cfg.ClientID).
-		SetUsername(cfg.Username).
-		SetPassword(cfg.Password).
-		SetTLSConfig(cfg.TLS).
-		SetProtocolVersion(4).
-		SetCleanSession(true).
-		SetAutoReconnect(true).
-		SetConnectRetry(true).
-		SetConnectRetryInterval(time.Second).
-		SetMaxReconnectInterval(10 * time.Second).
-		SetConnectTimeout(5 * time.Second).
+	opts := mqttpub.ClientOptions(cfg.Broker, cfg.ClientID, cfg.Username, cfg.Password, cfg.TLS).
 		SetOnConnectHandler(f.onConnect).
 		SetConnectionNotificationHandler(f.onNotification).
 		SetConnectionLostHandler(func(_ paho.Client, err error) {

@@ -163,21 +163,7 @@ func New(cfg Config, reg *pipeline.Registry, sub *pipeline.Subscription) (*Publi
 		log = slog.New(slog.DiscardHandler)
 	}
 	p := &Publisher{cfg: cfg, reg: reg, sub: sub, log: log, now: time.Now}
-	opts := paho.NewClientOptions().
-		AddBroker(cfg.Broker).
-		SetClientID(cfg.ClientID).
-		SetUsername(cfg.Username).
-		SetPassword(cfg.Password).
-		SetTLSConfig(cfg.TLS).
-		// 3.1.1 only: without it a refused CONNECT is retried as 3.1 and
-		// the broker's reason is lost behind "unacceptable protocol version".
-		SetProtocolVersion(4).
-		SetCleanSession(true).
-		SetAutoReconnect(true).
-		SetConnectRetry(true).
-		SetConnectRetryInterval(time.Second).
-		SetMaxReconnectInterval(10*time.Second).
-		SetConnectTimeout(5*time.Second).
+	opts := ClientOptions(cfg.Broker, cfg.ClientID, cfg.Username, cfg.Password, cfg.TLS).
 		SetWriteTimeout(5*time.Second).
 		SetBinaryWill(p.Topic("status"), p.statusPayload("offline", time.Time{}), 1, true).
 		SetOnConnectHandler(p.onConnect).
@@ -396,6 +382,26 @@ func (p *Publisher) Topic(suffix string) string {
 
 // Stats returns the publisher's counters.
 func (p *Publisher) Stats() *Stats { return &p.stats }
+
+// ClientOptions are Plenum's MQTT client settings, shared by the publisher
+// and the fleet follower: MQTT 3.1.1 only (without it a refused CONNECT is
+// retried as 3.1 and the broker's reason is lost behind "unacceptable
+// protocol version"), a clean session, and reconnection with backoff.
+func ClientOptions(broker, clientID, username, password string, tc *tls.Config) *paho.ClientOptions {
+	return paho.NewClientOptions().
+		AddBroker(broker).
+		SetClientID(clientID).
+		SetUsername(username).
+		SetPassword(password).
+		SetTLSConfig(tc).
+		SetProtocolVersion(4).
+		SetCleanSession(true).
+		SetAutoReconnect(true).
+		SetConnectRetry(true).
+		SetConnectRetryInterval(time.Second).
+		SetMaxReconnectInterval(10 * time.Second).
+		SetConnectTimeout(5 * time.Second)
+}
 
 // Connected reports whether the client is connected to the broker.
 func (p *Publisher) Connected() bool { return p.client.IsConnectionOpen() }
