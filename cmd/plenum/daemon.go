@@ -280,7 +280,7 @@ func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *s
 	// reverse. The recorder stops before the pusher (its last lines go into
 	// the backlog) and the publisher after both (it publishes the summary).
 	st := []stages.Stage{
-		{{Name: "http", Run: func(ctx context.Context) error { return serveHTTP(ctx, srv, ln) }}},
+		{{Name: "http", Run: func(ctx context.Context) error { return stages.ServeHTTP(ctx, srv, ln) }}},
 		{{Name: "mqtt", Run: func(ctx context.Context) error {
 			if err := d.pub.Run(ctx); err != nil {
 				// Recording and metrics go on without MQTT.
@@ -302,20 +302,4 @@ func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *s
 		drivers = append(drivers, stages.Part{Name: s.name, Run: func(ctx context.Context) error { return s.run(ctx, d.p) }})
 	}
 	return stages.Run(ctx, log, shutdownGrace, append(st, drivers)...)
-}
-
-// serveHTTP serves on ln until ctx ends, then shuts the server down,
-// giving requests in flight a second.
-func serveHTTP(ctx context.Context, srv *http.Server, ln net.Listener) error {
-	errc := make(chan error, 1)
-	go func() { errc <- srv.Serve(ln) }()
-	select {
-	case err := <-errc:
-		return fmt.Errorf("http: %w", err)
-	case <-ctx.Done():
-	}
-	sctx, cancel := context.WithTimeout(context.WithoutCancel(ctx), time.Second)
-	defer cancel()
-	srv.Shutdown(sctx)
-	return nil
 }

@@ -32,7 +32,7 @@ func newSimulated(t testing.TB, cfg *config.Config) *simulated {
 	t.Helper()
 	cfg.CAN = nil
 	reg := pipeline.NewRegistry()
-	dec, _, err := serialDecoder(0, cfg.Serial[0], reg)
+	dec, _, err := cfg.Serial[0].Decoder(0, reg)
 	if err != nil {
 		t.Fatal(err)
 	}

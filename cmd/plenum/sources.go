@@ -11,7 +11,6 @@ import (
 	"github.com/plenum-engine/plenum/drivers/obdcan"
 	"github.com/plenum-engine/plenum/drivers/serial"
 	"github.com/plenum-engine/plenum/drivers/sim"
-	"github.com/plenum-engine/plenum/pipeline"
 	"github.com/plenum-engine/plenum/pipeline/promexport"
 )
 
@@ -49,7 +48,7 @@ func (d *daemon) buildSources(open bool) error {
 				return cfg.At(fmt.Sprintf("the calibration does not work: %v", err), "serial", i, "inputs", j, "calibration")
 			}
 		}
-		dec, h, err := serialDecoder(i, sc, d.reg)
+		dec, h, err := sc.Decoder(i, d.reg)
 		if err != nil {
 			return cfg.At(err.Error(), "serial", i)
 		}
@@ -120,37 +119,4 @@ func (d *daemon) openBus(i int, cc config.CAN, eng *sim.Shared, open bool) (can.
 	}
 	d.closers = append(d.closers, func() { b.Close() })
 	return b, nil
-}
-
-// serialDecoder registers the inputs of cfg.Serial[i] and builds its
-// decoder, counting into the health it returns.
-func serialDecoder(i int, sc config.Serial, reg *pipeline.Registry) (*serial.Decoder, *pipeline.Health, error) {
-	inputs := make([]serial.Input, 0, len(sc.Inputs))
-	for j, in := range sc.Inputs {
-		ch, _ := pipeline.Standard(in.Channel)
-		ch.Source = sc.Name
-		if in.MaxAge > 0 {
-			ch.MaxAge = time.Duration(in.MaxAge)
-		}
-		id, err := reg.Register(ch)
-		if err != nil {
-			return nil, nil, fmt.Errorf("serial[%d].inputs[%d]: %w", i, j, err)
-		}
-		sensor, err := sc.Sensor(in)
-		if err != nil {
-			return nil, nil, fmt.Errorf("serial[%d].inputs[%d].calibration: %w", i, j, err)
-		}
-		inputs = append(inputs, serial.Input{Key: in.Field, Column: in.Column, Channel: id, Sensor: sensor})
-	}
-	h := pipeline.NewHealth("source", sc.Name)
-	format, sep := serial.Framed, byte(',')
-	if sc.Format == "delimited" {
-		format = serial.Delimited
-		sep = map[string]byte{"tab": '\t', "space": ' ', ";": ';', ",": ',', "": ','}[sc.Delimiter]
-	}
-	dec, err := serial.NewDecoder(format, sep, inputs, serial.NewCounters(h))
-	if err != nil {
-		return nil, nil, fmt.Errorf("serial[%d]: %w", i, err)
-	}
-	return dec, h, nil
 }

@@ -9,6 +9,8 @@ import (
 	"errors"
 	"fmt"
 	"log/slog"
+	"net"
+	"net/http"
 	"sync"
 	"time"
 )
@@ -83,4 +85,20 @@ func Run(ctx context.Context, log *slog.Logger, grace time.Duration, stages ...S
 	mu.Lock()
 	defer mu.Unlock()
 	return errors.Join(errs...)
+}
+
+// ServeHTTP serves srv on ln until ctx ends, then shuts the server down,
+// giving requests in flight a second: the Run of an HTTP part.
+func ServeHTTP(ctx context.Context, srv *http.Server, ln net.Listener) error {
+	errc := make(chan error, 1)
+	go func() { errc <- srv.Serve(ln) }()
+	select {
+	case err := <-errc:
+		return fmt.Errorf("http: %w", err)
+	case <-ctx.Done():
+	}
+	sctx, cancel := context.WithTimeout(context.WithoutCancel(ctx), time.Second)
+	defer cancel()
+	srv.Shutdown(sctx)
+	return nil
 }

@@ -4,7 +4,10 @@ import (
 	"bytes"
 	"context"
 	"errors"
+	"io"
 	"log/slog"
+	"net"
+	"net/http"
 	"strings"
 	"sync"
 	"testing"
@@ -72,5 +75,33 @@ func TestRunGoesOnAfterGrace(t *testing.T) {
 	<-stopped
 	if !strings.Contains(log.String(), "parts did not stop in time") || !strings.Contains(log.String(), "stuck") {
 		t.Errorf("no warning naming the stuck part:\n%s", log.String())
+	}
+}
+
+// ServeHTTP serves until its context ends, then shuts the server down.
+func TestServeHTTP(t *testing.T) {
+	ln, err := net.Listen("tcp", "127.0.0.1:0")
+	if err != nil {
+		t.Fatal(err)
+	}
+	srv := &http.Server{Handler: http.HandlerFunc(func(w http.ResponseWriter, _ *http.Request) { io.WriteString(w, "up") })}
+	ctx, cancel := context.WithCancel(context.Background())
+	done := make(chan error, 1)
+	go func() { done <- ServeHTTP(ctx, srv, ln) }()
+	resp, err := http.Get("http://" + ln.Addr().String())
+	if err != nil {
+		t.Fatal(err)
+	}
+	b, _ := io.ReadAll(resp.Body)
+	resp.Body.Close()
+	if string(b) != "up" {
+		t.Fatalf("served %q", b)
+	}
+	cancel()
+	if err := <-done; err != nil {
+		t.Fatalf("ServeHTTP = %v after its context ended", err)
+	}
+	if _, err := http.Get("http://" + ln.Addr().String()); err == nil {
+		t.Fatal("still serving after the shutdown")
 	}
 }

@@ -18,6 +18,7 @@ import (
 	"github.com/plenum-engine/plenum/drivers/calib"
 	"github.com/plenum-engine/plenum/drivers/obd"
 	"github.com/plenum-engine/plenum/drivers/obdcan"
+	"github.com/plenum-engine/plenum/drivers/serial"
 	"github.com/plenum-engine/plenum/pipeline"
 	"github.com/plenum-engine/plenum/pipeline/broker"
 	"github.com/plenum-engine/plenum/pipeline/derived"
@@ -389,4 +390,37 @@ func ListenProblem(err error, key, addr string) error {
 		return &ListenError{Key: key, Addr: addr, Err: err}
 	}
 	return err
+}
+
+// Decoder registers the inputs of serial section i (sc) in reg and builds
+// the section's decoder, counting into the health it returns.
+func (sc Serial) Decoder(i int, reg *pipeline.Registry) (*serial.Decoder, *pipeline.Health, error) {
+	inputs := make([]serial.Input, 0, len(sc.Inputs))
+	for j, in := range sc.Inputs {
+		ch, _ := pipeline.Standard(in.Channel)
+		ch.Source = sc.Name
+		if in.MaxAge > 0 {
+			ch.MaxAge = time.Duration(in.MaxAge)
+		}
+		id, err := reg.Register(ch)
+		if err != nil {
+			return nil, nil, fmt.Errorf("serial[%d].inputs[%d]: %w", i, j, err)
+		}
+		sensor, err := sc.Sensor(in)
+		if err != nil {
+			return nil, nil, fmt.Errorf("serial[%d].inputs[%d].calibration: %w", i, j, err)
+		}
+		inputs = append(inputs, serial.Input{Key: in.Field, Column: in.Column, Channel: id, Sensor: sensor})
+	}
+	h := pipeline.NewHealth("source", sc.Name)
+	format, sep := serial.Framed, byte(',')
+	if sc.Format == "delimited" {
+		format = serial.Delimited
+		sep = map[string]byte{"tab": '\t', "space": ' ', ";": ';', ",": ',', "": ','}[sc.Delimiter]
+	}
+	dec, err := serial.NewDecoder(format, sep, inputs, serial.NewCounters(h))
+	if err != nil {
+		return nil, nil, fmt.Errorf("serial[%d]: %w", i, err)
+	}
+	return dec, h, nil
 }
