@@ -288,8 +288,7 @@ func addPoints(p *gonum.Plot, xy []XY, xs, ys display.Scale, col color.RGBA) {
 	if err != nil {
 		return
 	}
-	faint := col
-	faint.A = 0x60
+	faint := color.NRGBA{R: col.R, G: col.G, B: col.B, A: 0x60}
 	s.GlyphStyle = draw.GlyphStyle{Color: faint, Radius: vg.Points(0.9), Shape: draw.CircleGlyph{}}
 	p.Add(s)
 }

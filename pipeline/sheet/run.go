@@ -274,6 +274,7 @@ type UnknownChannelError struct {
 	Reason string
 }
 
+// Error says which channel and why.
 func (e *UnknownChannelError) Error() string {
 	return fmt.Sprintf("channel %q %s", e.Name, e.Reason)
 }
