@@ -4,11 +4,9 @@ import (
 	"errors"
 	"fmt"
 	"io"
-	"path/filepath"
 	"strings"
 
 	"github.com/plenum-engine/plenum/pipeline/display"
-	"github.com/plenum-engine/plenum/pipeline/replay"
 	"github.com/plenum-engine/plenum/pipeline/sheet"
 )
 
@@ -21,7 +19,7 @@ func cmdSheet(args []string, stdout io.Writer) error {
 	chans := fs.String("channels", "", "also draw these channels against time since tip-in (comma-separated)")
 	units := fs.String("units", "", "units for people, e.g. power=hp_mech,torque=lbft,pressure=bar,mixture=afr (default kW, N·m, kPa, λ)")
 	fuel := fs.String("fuel", "gasoline", "the fuel whose stoichiometric ratio mixture=afr uses")
-	window := fs.Int("smooth", 5, "moving-average window, in engine-speed bins (odd)")
+	window := fs.Int("smooth", 5, "moving-average window, in engine-speed bins (odd; 1: none)")
 	bin := fs.Float64("bin", 50, "engine-speed bin width (rpm)")
 	raw := fs.Bool("raw", false, "also draw the raw samples under the smoothed curves")
 	if err := parseFlags(fs, args); err != nil {
@@ -32,9 +30,6 @@ func cmdSheet(args []string, stdout io.Writer) error {
 	}
 	if _, ok := sheet.FormatOf(*out); !ok {
 		return usageError{"sheet -out must end in .png or .svg"}
-	}
-	if *window < 1 || *bin <= 0 {
-		return usageError{"sheet -smooth must be at least 1 and -bin above 0"}
 	}
 	u, err := display.ParseUnits(*units)
 	if err != nil {
@@ -48,24 +43,15 @@ func cmdSheet(args []string, stdout io.Writer) error {
 	if *chans != "" {
 		cfg.Channels = strings.Split(*chans, ",")
 	}
-	if err := sheet.CheckChannels(cfg.Channels); err != nil {
-		return usageError{"sheet -channels: " + err.Error() + "."}
+	if err := cfg.Check(); err != nil {
+		return usageError{"sheet: " + err.Error() + "."}
 	}
-	var runs []sheet.Run
-	for _, name := range strings.Split(*in, ",") {
-		input, err := replay.Resolve(name, *dir)
-		if err != nil {
-			return err
-		}
-		r, err := sheet.Load(cfg, filepath.Base(name), input.RunDir, input.Files)
-		if err != nil {
-			return err
-		}
-		runs = append(runs, r)
-	}
+	runs, err := cfg.Open(strings.Split(*in, ","), *dir)
 	var unk *sheet.UnknownChannelError
-	if err := cfg.CheckRecorded(runs); errors.As(err, &unk) {
+	if errors.As(err, &unk) {
 		return usageError{"sheet -channels: " + err.Error() + "."}
+	} else if err != nil {
+		return err
 	}
 	if err := sheet.Save(*out, cfg, runs); err != nil {
 		return err

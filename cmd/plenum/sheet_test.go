@@ -38,7 +38,7 @@ func TestSheetGoldenRun(t *testing.T) {
 // 2 with a sentence naming it, and writes no file.
 func TestSheetUnknownChannel(t *testing.T) {
 	cases := []struct{ channels, want string }{
-		{"boost_pressure,warp_drive", `sheet -channels: channel "warp_drive" is not in the channel catalogue`},
+		{"boost_pressure,warp_drive", `sheet: channel "warp_drive" is not in the channel catalogue`},
 		{"ecu_fuel_pressure", `channel "ecu_fuel_pressure" was not recorded during any pull`},
 	}
 	for _, c := range cases {

@@ -151,12 +151,22 @@ func Write(w io.Writer, f Format, cfg Config, runs []Run) error {
 		if 2*i+1 < len(rows) {
 			pair[0][1] = rows[2*i+1]
 		}
-		tiles := draw.Tiles{Rows: 1, Cols: 2, PadX: 12 * vg.Millimeter, PadY: 0, PadTop: 2 * vg.Millimeter, PadBottom: 2 * vg.Millimeter}
+		// Titles are drawn here, level across the row: gonum's own sit at
+		// the top of each aligned canvas, which need not be level.
+		titleSty := style(11)
+		titleSty.XAlign = draw.XCenter
+		titleH := titleSty.Height("Ag") + 2*vg.Millimeter
+		tiles := draw.Tiles{Rows: 1, Cols: 2, PadX: 12 * vg.Millimeter, PadY: 0, PadTop: titleH + 2*vg.Millimeter, PadBottom: 2 * vg.Millimeter}
 		cs := gonum.Align(pair, tiles, row)
 		for j, p := range pair[0] {
-			if p != nil {
-				p.Draw(cs[0][j])
+			if p == nil {
+				continue
 			}
+			title := p.Title.Text
+			p.Title.Text = ""
+			p.Draw(cs[0][j])
+			dc := p.DataCanvas(cs[0][j])
+			row.FillText(titleSty, vg.Point{X: (dc.Min.X + dc.Max.X) / 2, Y: row.Max.Y - vg.Millimeter}, title)
 		}
 	}
 	if _, err := c.WriteTo(w); err != nil {
@@ -369,16 +379,27 @@ func conditionsText(cfg Config, r Run) string {
 		s = strings.Join(parts, ", ")
 	}
 	if c != nil && c.Source != "" {
-		src := c.Source
-		if src == "mean of sensors" || src == "sensors" {
-			src = "from sensors (" + src + ")"
-		}
-		s += ", " + src
+		s += ", " + sourceText(c.Source)
 	}
 	if r.Correction != nil && r.Correction.Entered != nil {
 		s += "; entered for the correction"
 	}
 	return s
+}
+
+// sourceText says where conditions came from, for a person.
+func sourceText(src string) string {
+	switch src {
+	case "sensors":
+		return "measured by the cell's sensors at the start"
+	case "mean of sensors":
+		return "measured by the cell's sensors (mean over the run)"
+	case "entered":
+		return "entered by the operator"
+	case "sensors+entered":
+		return "partly entered by the operator, the rest measured by the cell's sensors"
+	}
+	return src
 }
 
 // formatCh formats a canonical value of a catalogued channel for a person.

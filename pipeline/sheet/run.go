@@ -22,6 +22,7 @@ import (
 	"github.com/plenum-engine/plenum/pipeline"
 	"github.com/plenum-engine/plenum/pipeline/display"
 	"github.com/plenum-engine/plenum/pipeline/record"
+	"github.com/plenum-engine/plenum/pipeline/replay"
 )
 
 // Config configures a sheet. The zero value draws a metric sheet with the
@@ -133,6 +134,35 @@ func Load(cfg Config, name, dir string, files []string) (Run, error) {
 		r.Correction = sum.Correction
 	}
 	return r, nil
+}
+
+// Open loads the runs named (run directories, run ids under dir, or
+// line-protocol files), each labelled by its run.json label, else its id,
+// else the name given, and checks that every channel of c.Channels was
+// recorded during a pull (an *UnknownChannelError if not).
+func (c Config) Open(names []string, dir string) ([]Run, error) {
+	var runs []Run
+	for _, name := range names {
+		input, err := replay.Resolve(name, dir)
+		if err != nil {
+			return nil, err
+		}
+		r, err := Load(c, filepath.Base(name), input.RunDir, input.Files)
+		if err != nil {
+			return nil, err
+		}
+		runs = append(runs, r)
+	}
+	return runs, c.CheckRecorded(runs)
+}
+
+// Check refuses a configuration a person got wrong: a channel the
+// catalogue lacks (an *UnknownChannelError), a negative window or bin.
+func (c Config) Check() error {
+	if c.Window < 0 || c.BinRPM < 0 {
+		return fmt.Errorf("the smoothing window (%d bins) and the bin width (%g rpm) cannot be negative", c.Window, c.BinRPM)
+	}
+	return CheckChannels(c.Channels)
 }
 
 // readJSON decodes a JSON file into v; a missing file leaves v as it is.
