@@ -381,7 +381,7 @@ func conditionsText(cfg Config, r Run) string {
 	if c != nil && c.Source != "" {
 		s += ", " + sourceText(c.Source)
 	}
-	if r.Correction != nil && r.Correction.Entered != nil {
+	if r.Correction != nil && r.Correction.Entered != nil && (c == nil || c.Source != "entered") {
 		s += "; entered for the correction"
 	}
 	return s

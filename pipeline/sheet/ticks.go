@@ -12,19 +12,20 @@ import (
 // minor ticks between them.
 type ticks125 struct{}
 
-// niceStep returns the 1-2-5 step that cuts span into about n parts.
+// niceStep returns the 1-2-5 step that cuts span into nearest n parts.
 func niceStep(span float64, n int) float64 {
 	if span <= 0 || math.IsNaN(span) || math.IsInf(span, 0) {
 		return 1
 	}
-	raw := span / float64(n)
-	mag := math.Pow(10, math.Floor(math.Log10(raw)))
-	for _, m := range []float64{1, 2, 5, 10} {
-		if raw <= m*mag*1.0000001 {
-			return m * mag
+	mag := math.Pow(10, math.Floor(math.Log10(span/float64(n))))
+	best, bestErr := mag, math.Inf(1)
+	for _, m := range []float64{0.5, 1, 2, 5, 10, 20} {
+		step := m * mag
+		if e := math.Abs(span/step - float64(n)); e < bestErr {
+			best, bestErr = step, e
 		}
 	}
-	return 10 * mag
+	return best
 }
 
 // Ticks implements gonum's plot.Ticker.
