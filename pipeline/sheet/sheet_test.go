@@ -2,6 +2,7 @@ package sheet
 
 import (
 	"bytes"
+	"image/png"
 	"math"
 	"regexp"
 	"strings"
@@ -238,5 +239,22 @@ func TestCheckChannels(t *testing.T) {
 	r := cfg.Build(record.Meta{ID: "x"}, synthetic(t, 5000))
 	if err := cfg.CheckRecorded([]Run{r}); err == nil || !strings.Contains(err.Error(), `"oil_temp"`) {
 		t.Errorf("CheckRecorded(oil_temp) = %v", err)
+	}
+}
+
+// The PNG is an A4 landscape page about 1600 pixels wide.
+func TestSheetPNGSize(t *testing.T) {
+	var cfg Config
+	r := cfg.Build(record.Meta{ID: "x", Label: "one"}, synthetic(t, 5000))
+	var buf bytes.Buffer
+	if err := Write(&buf, PNG, cfg, []Run{r}); err != nil {
+		t.Fatal(err)
+	}
+	im, err := png.DecodeConfig(&buf)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if im.Width < 1580 || im.Width > 1620 || math.Abs(float64(im.Height)/float64(im.Width)-210.0/297) > 0.01 {
+		t.Errorf("PNG %d×%d, want about 1600 wide at A4 landscape proportions", im.Width, im.Height)
 	}
 }
