@@ -9,6 +9,8 @@ import (
 	"strconv"
 	"strings"
 	"testing"
+
+	"github.com/plenum-engine/plenum/pipeline/plot"
 )
 
 // valueOf finds the last recorded value of a channel in replay output.
@@ -121,8 +123,8 @@ func TestUnitLabel(t *testing.T) {
 		{"no_such_channel", ""},
 	}
 	for _, c := range cases {
-		if got := unitLabel(c.channel); got != c.want {
-			t.Errorf("unitLabel(%q) = %q, want %q", c.channel, got, c.want)
+		if got := plot.CatalogueUnit(c.channel); got != c.want {
+			t.Errorf("plot.CatalogueUnit(%q) = %q, want %q", c.channel, got, c.want)
 		}
 	}
 }

@@ -31,11 +31,7 @@ func cmdSheet(args []string, stdout io.Writer) error {
 	if _, ok := sheet.FormatOf(*out); !ok {
 		return usageError{"sheet -out must end in .png or .svg"}
 	}
-	u, err := display.ParseUnits(*units)
-	if err != nil {
-		return usageError{err.Error()}
-	}
-	shown, err := display.New(display.Config{Units: u, Fuel: *fuel})
+	shown, err := display.Parse(*units, *fuel)
 	if err != nil {
 		return usageError{err.Error()}
 	}

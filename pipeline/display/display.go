@@ -157,6 +157,16 @@ func New(cfg Config) (Formatter, error) {
 	return Formatter{units: cfg.Units, fuel: f.Name, stoich: f.Stoich}, nil
 }
 
+// Parse returns a Formatter for unit choices in their compact form (""
+// for the metric defaults) and a fuel, as a command line gives them.
+func Parse(compact, fuel string) (Formatter, error) {
+	u, err := ParseUnits(compact)
+	if err != nil {
+		return Formatter{}, err
+	}
+	return New(Config{Units: u, Fuel: fuel})
+}
+
 // Units returns the formatter's unit choices.
 func (f Formatter) Units() Units { return f.units }
 
