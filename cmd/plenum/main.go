@@ -53,6 +53,8 @@ commands:
   probe       list the ECUs that answer on a CAN bus, their VIN and supported PIDs
   replay      re-derive a recorded run
   plot        draw recorded runs
+  runs        list recorded runs: runs -dir DIR
+  show        one run's summary for a person: show RUN
   run-start   start a run in a running daemon
   run-stop    stop the run of a running daemon
   warning-ack acknowledge a raised warning in a running daemon
@@ -63,7 +65,7 @@ plenum COMMAND -h lists a command's flags.
 `
 
 // commands are the names run accepts, for the unknown-command message.
-const commands = "demo, run, run-start, run-stop, warning-ack, check, probe, replay, plot, version or help"
+const commands = "demo, run, run-start, run-stop, warning-ack, check, probe, replay, plot, runs, show, version or help"
 
 func run(args []string, stdout, stderr io.Writer) int {
 	ctx, stop := signal.NotifyContext(context.Background(), os.Interrupt, syscall.SIGTERM)
@@ -112,6 +114,10 @@ func runCommand(ctx context.Context, args []string, stdout, stderr io.Writer, lo
 		err = cmdReplay(args[1:], stdout)
 	case "plot":
 		err = cmdPlot(args[1:], stdout)
+	case "runs":
+		err = cmdRuns(args[1:], stdout)
+	case "show":
+		err = cmdShow(args[1:], stdout)
 	case "run-start":
 		err = cmdRunControl("start", args[1:], stdout)
 	case "run-stop":

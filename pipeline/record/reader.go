@@ -247,3 +247,82 @@ func qualityOf(b []byte) pipeline.Quality {
 	}
 	return pipeline.OK
 }
+
+// ReadEvents reads the events ("plenum_event" points) of line-protocol
+// files in time order: kind, name, start (the recorded time), end (start
+// plus the recorded duration_seconds) and the numeric fields other than
+// the duration. Errors are as for ReadInputs.
+func ReadEvents(files []string) ([]pipeline.Event, error) {
+	var evs []pipeline.Event
+	for _, f := range files {
+		b, err := ReadFile(f)
+		if err != nil {
+			return nil, err
+		}
+		dec := lineprotocol.NewDecoderWithBytes(b)
+		for dec.Next() {
+			m, err := dec.Measurement()
+			if err != nil {
+				return nil, fmt.Errorf("%s: %w", f, err)
+			}
+			if string(m) != "plenum_event" {
+				continue
+			}
+			var e pipeline.Event
+			for {
+				k, v, err := dec.NextTag()
+				if err != nil {
+					return nil, fmt.Errorf("%s: %w", f, err)
+				}
+				if k == nil {
+					break
+				}
+				switch string(k) {
+				case "kind":
+					e.Kind = string(v)
+				case "name":
+					e.Name = string(v)
+				}
+			}
+			dur := 0.0
+			for {
+				k, v, err := dec.NextField()
+				if err != nil {
+					return nil, fmt.Errorf("%s: %w", f, err)
+				}
+				if k == nil {
+					break
+				}
+				if v.Kind() != lineprotocol.Float {
+					continue
+				}
+				if string(k) == "duration_seconds" {
+					dur = v.FloatV()
+					continue
+				}
+				if e.Fields == nil {
+					e.Fields = map[string]float64{}
+				}
+				e.Fields[string(k)] = v.FloatV()
+			}
+			t, err := dec.Time(lineprotocol.Nanosecond, time.Time{})
+			if err != nil {
+				return nil, fmt.Errorf("%s: %w", f, err)
+			}
+			e.Start = t.UTC()
+			if dur > 0 {
+				e.End = e.Start.Add(time.Duration(dur * float64(time.Second)))
+			}
+			evs = append(evs, e)
+		}
+		if err := dec.Err(); err != nil {
+			var de *lineprotocol.DecodeError
+			if errors.As(err, &de) {
+				return nil, fmt.Errorf("%s:%d:%d: %w", f, de.Line, de.Column, de.Err)
+			}
+			return nil, fmt.Errorf("%s: %w", f, err)
+		}
+	}
+	slices.SortStableFunc(evs, func(a, b pipeline.Event) int { return a.Start.Compare(b.Start) })
+	return evs, nil
+}

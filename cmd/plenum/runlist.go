@@ -1,0 +1,94 @@
+package main
+
+import (
+	"io"
+	"time"
+
+	"github.com/plenum-engine/plenum/pipeline/display"
+	"github.com/plenum-engine/plenum/pipeline/runlist"
+)
+
+// unitFlags adds -units and -fuel to fs; the returned function builds the
+// formatter they choose.
+func unitFlags(fs *cmdFlags) func() (display.Formatter, error) {
+	units := fs.String("units", "", "units for people, e.g. pressure=bar,temperature=F,power=hp_mech,mixture=afr (default metric: kPa, °C, kW, λ)")
+	fuel := fs.String("fuel", "gasoline", "the fuel whose stoichiometric ratio mixture=afr uses")
+	return func() (display.Formatter, error) {
+		u, err := display.ParseUnits(*units)
+		if err != nil {
+			return display.Formatter{}, usageError{err.Error()}
+		}
+		f, err := display.New(display.Config{Units: u, Fuel: *fuel})
+		if err != nil {
+			return display.Formatter{}, usageError{err.Error()}
+		}
+		return f, nil
+	}
+}
+
+// cmdRuns lists the recorded runs of a directory.
+func cmdRuns(args []string, stdout io.Writer) error {
+	fs := newFlagSet("runs", "-dir DIR [flags]", "Lists the runs recorded under DIR, oldest first: label, vehicle, start, length,\nhow each ended, peak corrected power and torque, standard and warnings.", stdout)
+	dir := fs.String("dir", "", "the recording directory")
+	var f runlist.Filter
+	fs.StringVar(&f.Label, "label", "", "only runs whose label contains this text (any case)")
+	fs.StringVar(&f.Vehicle, "vehicle", "", "only runs of this vehicle")
+	since := fs.String("since", "", "only runs started at or after this time (2026-12-02, 2026-12-02T05:43 UTC, or RFC 3339)")
+	until := fs.String("until", "", "only runs started before this time")
+	shown := unitFlags(fs)
+	if err := parseFlags(fs, args); err != nil {
+		return err
+	}
+	if *dir == "" {
+		return usageError{"runs needs -dir DIR"}
+	}
+	for _, t := range []struct {
+		s   string
+		at  *time.Time
+		flg string
+	}{{*since, &f.Since, "-since"}, {*until, &f.Until, "-until"}} {
+		if t.s == "" {
+			continue
+		}
+		v, err := runlist.ParseTime(t.s)
+		if err != nil {
+			return usageError{"runs " + t.flg + ": " + err.Error()}
+		}
+		*t.at = v
+	}
+	form, err := shown()
+	if err != nil {
+		return err
+	}
+	runs, err := runlist.List(runlist.Config{Dir: *dir}, f)
+	if err != nil {
+		return err
+	}
+	return runlist.WriteList(stdout, runs, form)
+}
+
+// cmdShow prints one run's summary for a person.
+func cmdShow(args []string, stdout io.Writer) error {
+	fs := newFlagSet("show", "RUN [flags]", "Prints one run's summary: notes, conditions and their source, the correction\nstandard and factor, peaks, turbo-lag measurements and warnings. RUN is a run\ndirectory, or a run id with -dir.", stdout)
+	dir := fs.String("dir", "", "the recording directory that holds run ids")
+	shown := unitFlags(fs)
+	var name string
+	if len(args) > 0 && len(args[0]) > 0 && args[0][0] != '-' {
+		name, args = args[0], args[1:]
+	}
+	if err := parseFlags(fs, args); err != nil {
+		return err
+	}
+	if name == "" {
+		return usageError{"show needs RUN: a run directory, or a run id with -dir"}
+	}
+	form, err := shown()
+	if err != nil {
+		return err
+	}
+	r, err := runlist.Open(runlist.Config{Dir: *dir}, name)
+	if err != nil {
+		return err
+	}
+	return runlist.WriteShow(stdout, r, form)
+}
