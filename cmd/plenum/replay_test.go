@@ -68,7 +68,7 @@ func TestReplayRecomputesAndIsDeterministic(t *testing.T) {
 	}
 	var out, errb bytes.Buffer
 	if code := run([]string{"replay", "-config", demo, "-in", "testdata/short-run.lp", "-csv"}, &out, &errb); code != 0 ||
-		!strings.HasPrefix(out.String(), "time,channel,source,value,quality\n") || !strings.Contains(out.String(), ",air_mass_flow,derived,") {
+		!strings.HasPrefix(out.String(), "time,seconds,") || !strings.Contains(out.String(), ",air_mass_flow (grams per second)") {
 		t.Fatalf("csv replay: %d %s %s", code, errb.String(), out.String())
 	}
 	if code := run([]string{"replay", "-in", "testdata/short-run.lp"}, &out, &errb); code != 2 {

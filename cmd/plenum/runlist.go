@@ -9,9 +9,9 @@ import (
 )
 
 // unitFlags adds -units and -fuel to fs; the returned function builds the
-// formatter they choose.
-func unitFlags(fs *cmdFlags) func() (display.Formatter, error) {
-	units := fs.String("units", "", "units for people, e.g. pressure=bar,temperature=F,power=hp_mech,mixture=afr (default metric: kPa, °C, kW, λ)")
+// formatter they choose; dflt says what is shown without -units.
+func unitFlags(fs *cmdFlags, dflt string) func() (display.Formatter, error) {
+	units := fs.String("units", "", "units for people, e.g. pressure=bar,temperature=F,power=hp_mech,mixture=afr (default "+dflt+")")
 	fuel := fs.String("fuel", "gasoline", "the fuel whose stoichiometric ratio mixture=afr uses")
 	return func() (display.Formatter, error) {
 		u, err := display.ParseUnits(*units)
@@ -26,6 +26,9 @@ func unitFlags(fs *cmdFlags) func() (display.Formatter, error) {
 	}
 }
 
+// metric is the display layer's default, for the usage.
+const metric = "metric: kPa, °C, kW, N·m, λ"
+
 // cmdRuns lists the recorded runs of a directory.
 func cmdRuns(args []string, stdout io.Writer) error {
 	fs := newFlagSet("runs", "-dir DIR [flags]", "Lists the runs recorded under DIR, oldest first: label, vehicle, start, length,\nhow each ended, peak corrected power and torque, standard and warnings.", stdout)
@@ -35,7 +38,7 @@ func cmdRuns(args []string, stdout io.Writer) error {
 	fs.StringVar(&f.Vehicle, "vehicle", "", "only runs of this vehicle")
 	since := fs.String("since", "", "only runs started at or after this time (2026-12-02, 2026-12-02T05:43 UTC, or RFC 3339)")
 	until := fs.String("until", "", "only runs started before this time")
-	shown := unitFlags(fs)
+	shown := unitFlags(fs, metric)
 	if err := parseFlags(fs, args); err != nil {
 		return err
 	}
@@ -71,7 +74,7 @@ func cmdRuns(args []string, stdout io.Writer) error {
 func cmdShow(args []string, stdout io.Writer) error {
 	fs := newFlagSet("show", "RUN [flags]", "Prints one run's summary: notes, conditions and their source, the correction\nstandard and factor, peaks, turbo-lag measurements and warnings. RUN is a run\ndirectory, or a run id with -dir.", stdout)
 	dir := fs.String("dir", "", "the recording directory that holds run ids")
-	shown := unitFlags(fs)
+	shown := unitFlags(fs, metric)
 	var name string
 	if len(args) > 0 && len(args[0]) > 0 && args[0][0] != '-' {
 		name, args = args[0], args[1:]
