@@ -142,7 +142,7 @@ func (r Run) Warnings() int {
 }
 
 // List reads the runs under cfg.Dir that f chooses, oldest first. A
-// subdirectory without run.json is not a run and is skipped; a run whose
+// subdirectory (or link to one) without run.json is not a run and is skipped; a run whose
 // files cannot be read is an error naming it.
 func List(cfg Config, f Filter) ([]Run, error) {
 	if cfg.Dir == "" {
@@ -154,10 +154,10 @@ func List(cfg Config, f Filter) ([]Run, error) {
 	}
 	var runs []Run
 	for _, e := range ents {
-		if !e.IsDir() {
+		dir := filepath.Join(cfg.Dir, e.Name())
+		if st, err := os.Stat(dir); err != nil || !st.IsDir() { // a link to a run counts
 			continue
 		}
-		dir := filepath.Join(cfg.Dir, e.Name())
 		m, err := readMeta(dir)
 		if errors.Is(err, os.ErrNotExist) {
 			continue
