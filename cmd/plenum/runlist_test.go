@@ -37,8 +37,8 @@ func runsDir(t *testing.T) string {
 	}
 	p, temp, rh := 99500.0, 28.0, 0.6
 	m := record.Meta{ID: "20261202T061500.000Z", Vehicle: "brackenfell-rs", Label: "Pull 2, new intake",
-		Notes: "Customer car, 98 RON.\nSecond pull after heat soak.",
-		Start: time.Date(2026, 12, 2, 6, 15, 0, 0, time.UTC),
+		Notes:      "Customer car, 98 RON.\nSecond pull after heat soak.",
+		Start:      time.Date(2026, 12, 2, 6, 15, 0, 0, time.UTC),
 		Conditions: &record.Conditions{PressurePa: &p, TemperatureC: &temp, RelativeHumidity: &rh, Source: "entered"},
 		Correction: &record.Correction{Standard: "sae_j1349", Entered: &record.Conditions{PressurePa: &p, TemperatureC: &temp, RelativeHumidity: &rh},
 			Others: "the ambient channels while fresh, else the configured defaults"}}
