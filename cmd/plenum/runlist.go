@@ -2,7 +2,6 @@ package main
 
 import (
 	"io"
-	"time"
 
 	"github.com/plenum-engine/plenum/pipeline/display"
 	"github.com/plenum-engine/plenum/pipeline/runlist"
@@ -34,30 +33,13 @@ func cmdRuns(args []string, stdout io.Writer) error {
 	fs := newFlagSet("runs", "-dir DIR [flags]", "Lists the runs recorded under DIR, oldest first: label, vehicle, start, length,\nhow each ended, peak corrected power and torque, standard and warnings.", stdout)
 	dir := fs.String("dir", "", "the recording directory")
 	var f runlist.Filter
-	fs.StringVar(&f.Label, "label", "", "only runs whose label contains this text (any case)")
-	fs.StringVar(&f.Vehicle, "vehicle", "", "only runs of this vehicle")
-	since := fs.String("since", "", "only runs started at or after this time (2026-12-02, 2026-12-02T05:43 UTC, or RFC 3339)")
-	until := fs.String("until", "", "only runs started before this time")
+	f.Flags(fs.FlagSet)
 	shown := unitFlags(fs, metric)
 	if err := parseFlags(fs, args); err != nil {
 		return err
 	}
 	if *dir == "" {
 		return usageError{"runs needs -dir DIR"}
-	}
-	for _, t := range []struct {
-		s   string
-		at  *time.Time
-		flg string
-	}{{*since, &f.Since, "-since"}, {*until, &f.Until, "-until"}} {
-		if t.s == "" {
-			continue
-		}
-		v, err := runlist.ParseTime(t.s)
-		if err != nil {
-			return usageError{"runs " + t.flg + ": " + err.Error()}
-		}
-		*t.at = v
 	}
 	form, err := shown()
 	if err != nil {

@@ -8,6 +8,7 @@ package runlist
 import (
 	"encoding/json"
 	"errors"
+	"flag"
 	"fmt"
 	"math"
 	"os"
@@ -312,4 +313,32 @@ func ParseTime(s string) (time.Time, error) {
 		}
 	}
 	return time.Time{}, fmt.Errorf("%q is not a date (2026-12-02), a date and time in UTC (2026-12-02T05:43) or RFC 3339", s)
+}
+
+// Flags registers f's fields as flags of fs: -label, -vehicle, -since and
+// -until (times as ParseTime reads them).
+func (f *Filter) Flags(fs *flag.FlagSet) {
+	fs.StringVar(&f.Label, "label", "", "only runs whose label contains this text (any case)")
+	fs.StringVar(&f.Vehicle, "vehicle", "", "only runs of this vehicle")
+	fs.Var(timeValue{&f.Since}, "since", "only runs started at or after this time (2026-12-02, 2026-12-02T05:43 UTC, or RFC 3339)")
+	fs.Var(timeValue{&f.Until}, "until", "only runs started before this time")
+}
+
+// timeValue is a time flag.
+type timeValue struct{ t *time.Time }
+
+func (v timeValue) String() string {
+	if v.t == nil || v.t.IsZero() {
+		return ""
+	}
+	return v.t.Format(time.RFC3339)
+}
+
+func (v timeValue) Set(s string) error {
+	t, err := ParseTime(s)
+	if err != nil {
+		return err
+	}
+	*v.t = t
+	return nil
 }
