@@ -306,3 +306,31 @@ func FuzzReadSamples(f *testing.F) {
 		}
 	})
 }
+
+// ReadEvents reads events back with their kind, name, time, duration and
+// fields, in time order, and skips samples.
+func TestReadEvents(t *testing.T) {
+	path := filepath.Join(t.TempDir(), "0001.lp")
+	os.WriteFile(path, []byte(
+		"plenum_event,kind=warning_cleared,name=hot,run=r,vehicle=v active=0,duration_seconds=1.5 1800000002000000000\n"+
+			"plenum,channel=engine_speed,run=r,source=mcu,vehicle=v value=3000,quality=\"ok\" 1800000000000000000\n"+
+			"plenum_event,kind=run_started,name=r,run=r,vehicle=v duration_seconds=0 1800000000000000000\n"), 0o644)
+	evs, err := ReadEvents([]string{path})
+	if err != nil {
+		t.Fatal(err)
+	}
+	if len(evs) != 2 {
+		t.Fatalf("%d events, want 2: %+v", len(evs), evs)
+	}
+	a, b := evs[0], evs[1]
+	if a.Kind != "run_started" || a.Name != "r" || !a.End.IsZero() || a.Start.UnixNano() != 1800000000000000000 || len(a.Fields) != 0 {
+		t.Errorf("first event %+v", a)
+	}
+	if b.Kind != "warning_cleared" || b.Name != "hot" || b.End.Sub(b.Start) != 1500*time.Millisecond || b.Fields["active"] != 0 || len(b.Fields) != 1 {
+		t.Errorf("second event %+v", b)
+	}
+	os.WriteFile(path, []byte("plenum_event,kind=x value=\n"), 0o644)
+	if _, err := ReadEvents([]string{path}); err == nil || !strings.HasPrefix(err.Error(), path+":") {
+		t.Errorf("a bad line: %v", err)
+	}
+}
