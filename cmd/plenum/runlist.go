@@ -1,6 +1,7 @@
 package main
 
 import (
+	"fmt"
 	"io"
 
 	"github.com/plenum-engine/plenum/pipeline/display"
@@ -47,7 +48,7 @@ func cmdRuns(args []string, stdout io.Writer) error {
 	}
 	runs, err := runlist.List(runlist.Config{Dir: *dir}, f)
 	if err != nil {
-		return err
+		return fmt.Errorf("runs: %w", err)
 	}
 	return runlist.WriteList(stdout, runs, form)
 }
@@ -73,7 +74,7 @@ func cmdShow(args []string, stdout io.Writer) error {
 	}
 	r, err := runlist.Open(runlist.Config{Dir: *dir}, name)
 	if err != nil {
-		return err
+		return fmt.Errorf("show: %w", err)
 	}
 	return runlist.WriteShow(stdout, r, form)
 }

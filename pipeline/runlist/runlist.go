@@ -143,15 +143,16 @@ func (r Run) Warnings() int {
 }
 
 // List reads the runs under cfg.Dir that f chooses, oldest first. A
-// subdirectory (or link to one) without run.json is not a run and is skipped; a run whose
-// files cannot be read is an error naming it.
+// subdirectory (or a link to one) without run.json is not a run and is
+// skipped; a run whose files cannot be read is an error naming the file.
+// Errors carry no package prefix: the caller's command names itself.
 func List(cfg Config, f Filter) ([]Run, error) {
 	if cfg.Dir == "" {
-		return nil, errors.New("runlist: no recording directory")
+		return nil, errors.New("no recording directory given")
 	}
 	ents, err := os.ReadDir(cfg.Dir)
 	if err != nil {
-		return nil, fmt.Errorf("runlist: %w", err)
+		return nil, err
 	}
 	var runs []Run
 	for _, e := range ents {
@@ -188,7 +189,7 @@ func Open(cfg Config, name string) (Run, error) {
 	m, err := readMeta(dir)
 	if err != nil {
 		if errors.Is(err, os.ErrNotExist) {
-			return Run{}, fmt.Errorf("runlist: %s is not a recorded run (no run.json): %w", name, err)
+			return Run{}, fmt.Errorf("%s is not a recorded run: no run.json in %s", name, dir)
 		}
 		return Run{}, err
 	}
@@ -202,7 +203,7 @@ func readMeta(dir string) (record.Meta, error) {
 		return m, err
 	}
 	if err := json.Unmarshal(b, &m); err != nil {
-		return m, fmt.Errorf("runlist: %s: %w", filepath.Join(dir, "run.json"), err)
+		return m, fmt.Errorf("%s: %w", filepath.Join(dir, "run.json"), err)
 	}
 	if m.ID == "" {
 		m.ID = filepath.Base(dir)
@@ -222,7 +223,7 @@ func read(dir string, m record.Meta) (Run, error) {
 	if b, err := os.ReadFile(filepath.Join(dir, "summary.json")); err == nil {
 		var s record.Summary
 		if err := json.Unmarshal(b, &s); err != nil {
-			return Run{}, fmt.Errorf("runlist: %s: %w", filepath.Join(dir, "summary.json"), err)
+			return Run{}, fmt.Errorf("%s: %w", filepath.Join(dir, "summary.json"), err)
 		}
 		r.Summary = &s
 		r.Start, r.End = s.Start, s.End
@@ -236,10 +237,10 @@ func read(dir string, m record.Meta) (Run, error) {
 	}
 	rec, err := record.ReadAll(files)
 	if err != nil {
-		return Run{}, fmt.Errorf("runlist: %w", err)
+		return Run{}, err
 	}
 	if r.Events, err = record.ReadEvents(files); err != nil {
-		return Run{}, fmt.Errorf("runlist: %w", err)
+		return Run{}, err
 	}
 	r.peaks(rec)
 	return r, nil
@@ -318,10 +319,10 @@ func ParseTime(s string) (time.Time, error) {
 // Flags registers f's fields as flags of fs: -label, -vehicle, -since and
 // -until (times as ParseTime reads them).
 func (f *Filter) Flags(fs *flag.FlagSet) {
-	fs.StringVar(&f.Label, "label", "", "only runs whose label contains this text (any case)")
-	fs.StringVar(&f.Vehicle, "vehicle", "", "only runs of this vehicle")
-	fs.Var(timeValue{&f.Since}, "since", "only runs started at or after this time (2026-12-02, 2026-12-02T05:43 UTC, or RFC 3339)")
-	fs.Var(timeValue{&f.Until}, "until", "only runs started before this time")
+	fs.StringVar(&f.Label, "label", "", "only runs whose label contains this `text` (any case)")
+	fs.StringVar(&f.Vehicle, "vehicle", "", "only runs of this `vehicle`")
+	fs.Var(timeValue{&f.Since}, "since", "only runs started at or after this `time` (2026-12-02, 2026-12-02T05:43 UTC, or RFC 3339)")
+	fs.Var(timeValue{&f.Until}, "until", "only runs started before this `time`")
 }
 
 // timeValue is a time flag.
