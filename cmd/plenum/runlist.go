@@ -3,6 +3,7 @@ package main
 import (
 	"fmt"
 	"io"
+	"strings"
 
 	"github.com/plenum-engine/plenum/pipeline/display"
 	"github.com/plenum-engine/plenum/pipeline/runlist"
@@ -58,9 +59,12 @@ func cmdShow(args []string, stdout io.Writer) error {
 	fs := newFlagSet("show", "RUN [flags]", "Prints one run's summary: notes, conditions and their source, the correction\nstandard and factor, peaks, turbo-lag measurements and warnings. RUN is a run\ndirectory, or a run id with -dir.", stdout)
 	dir := fs.String("dir", "", "the recording directory that holds run ids")
 	shown := unitFlags(fs, metric)
+	// RUN comes before the flags or after them (each of which takes a value).
 	var name string
-	if len(args) > 0 && len(args[0]) > 0 && args[0][0] != '-' {
+	if n := len(args); n > 0 && !strings.HasPrefix(args[0], "-") {
 		name, args = args[0], args[1:]
+	} else if n > 0 && !strings.HasPrefix(args[n-1], "-") && (n == 1 || !strings.HasPrefix(args[n-2], "-") || strings.Contains(args[n-2], "=")) {
+		name, args = args[n-1], args[:n-1]
 	}
 	if err := parseFlags(fs, args); err != nil {
 		return err

@@ -97,14 +97,22 @@ func TestRunsAndShowGolden(t *testing.T) {
 	}
 	for _, args := range [][]string{
 		{"runs"}, {"runs", "-dir", dir, "-since", "yesterday"}, {"runs", "-dir", dir, "-units", "power=bhp"},
-		{"show"}, {"show", "-dir", dir},
+		{"show"}, {"show", "-dir", dir}, {"show", "a", "b"},
 	} {
 		var so, se bytes.Buffer
 		if code := run(args, &so, &se); code != 2 {
 			t.Errorf("%v: exit %d, want 2: %s", args, code, se.String())
 		}
 	}
+	// RUN after the flags reads the same.
 	var so, se bytes.Buffer
+	if code := run([]string{"show", "-units=power=hp_mech,torque=lbft,pressure=psi,temperature=F,mixture=afr", "-dir", dir, "20261202T061500.000Z"}, &so, &se); code != 0 {
+		t.Errorf("show with RUN last: exit %d: %s", code, se.String())
+	} else {
+		golden(t, "show-labelled.golden", so.Bytes())
+	}
+	so.Reset()
+	se.Reset()
 	if code := run([]string{"show", "no-such-run", "-dir", dir}, &so, &se); code != 1 || !strings.Contains(se.String(), "no-such-run") {
 		t.Errorf("show of a missing run: exit %d: %s", code, se.String())
 	}
