@@ -85,6 +85,19 @@ func factor(f display.Formatter, r Run) string {
 	return s
 }
 
+// standardTitles are the correction standards as their documents name
+// them (derive.ParseStandard's names).
+var standardTitles = map[string]string{"sae_j1349": "SAE J1349", "iso_1585": "ISO 1585", "din_70020": "DIN 70020"}
+
+// standard writes r's standard as its document names it; none when the run
+// recorded none.
+func standard(r Run) string {
+	if t, ok := standardTitles[r.Standard()]; ok {
+		return t
+	}
+	return orNone(r.Standard())
+}
+
 // orNone returns s, or none when it is empty.
 func orNone(s string) string {
 	if s == "" {
@@ -101,7 +114,7 @@ func WriteList(w io.Writer, runs []Run, f display.Formatter) error {
 		fmt.Fprintf(tw, "%s\t%s\t%s\t%s\t%s\t%s\t%s\t%s\t%s\t%d\n",
 			r.Meta.ID, orNone(r.Meta.Label), orNone(r.Meta.Vehicle), r.Meta.Start.UTC().Format(startLayout),
 			duration(r.Duration()), r.Ended, peak(f, "corrected_power", r.Power), peak(f, "dyno_torque", r.Torque),
-			orNone(r.Standard()), r.Warnings())
+			standard(r), r.Warnings())
 	}
 	if err := tw.Flush(); err != nil {
 		return err
@@ -160,7 +173,7 @@ func WriteShow(w io.Writer, r Run, f display.Formatter) error {
 	}
 
 	head("Power correction")
-	line("standard", orNone(r.Standard()))
+	line("standard", standard(r))
 	line("factor", factor(f, r))
 	corr := r.Meta.Correction
 	if corr == nil && r.Summary != nil {
