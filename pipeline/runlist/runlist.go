@@ -95,7 +95,7 @@ type Run struct {
 	Summary *record.Summary
 	Ended   Ending
 	// Start and End are the times of the run's first and last sample
-	// (from the summary, else from the recording).
+	// (from the summary, else of the peaks' channels in the recording).
 	Start, End time.Time
 	// Peaks from every usable sample of the recording: corrected power,
 	// corrected torque (measured torque times the latest correction
@@ -235,7 +235,7 @@ func read(dir string, m record.Meta) (Run, error) {
 	if len(files) == 0 {
 		return r, nil
 	}
-	rec, err := record.ReadAll(files)
+	rec, err := record.ReadChannels(files, peakChannels...)
 	if err != nil {
 		return Run{}, err
 	}
@@ -245,6 +245,9 @@ func read(dir string, m record.Meta) (Run, error) {
 	r.peaks(rec)
 	return r, nil
 }
+
+// peakChannels are the channels peaks reads.
+var peakChannels = []string{"engine_speed", "dyno_torque", "corrected_power", "correction_factor"}
 
 // peaks folds the recording into the run's peaks and correction factor,
 // and its start and end when the summary gave none.
@@ -262,6 +265,8 @@ func (r *Run) peaks(rec record.Recording) {
 		}
 	}
 	if len(rec.Points) > 0 && r.Summary == nil {
+		// Without a summary: from the first to the last sample of these
+		// channels.
 		r.Start = time.Unix(0, rec.Points[0].NS).UTC()
 		r.End = time.Unix(0, rec.Points[len(rec.Points)-1].NS).UTC()
 	}
