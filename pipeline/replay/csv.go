@@ -124,8 +124,10 @@ func writeEventsFile(path string, evs []pipeline.Event) error {
 	return nil
 }
 
-// writeEvents writes evs as the events table.
+// writeEvents writes evs as the events table, in the order of their
+// start (a detector emits a measurement after the time it measures from).
 func writeEvents(w io.Writer, evs []pipeline.Event) error {
+	sort.SliceStable(evs, func(i, j int) bool { return evs[i].Start.Before(evs[j].Start) })
 	keys := map[string]bool{}
 	for _, e := range evs {
 		for k := range e.Fields {
