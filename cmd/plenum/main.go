@@ -54,6 +54,8 @@ commands:
   replay      re-derive a recorded run
   plot        draw recorded runs
   sheet       draw the dyno sheet of recorded runs, to print or hand over
+  runs        list recorded runs: runs -dir DIR
+  show        one run's summary for a person: show RUN
   run-start   start a run in a running daemon
   run-stop    stop the run of a running daemon
   warning-ack acknowledge a raised warning in a running daemon
@@ -64,7 +66,7 @@ plenum COMMAND -h lists a command's flags.
 `
 
 // commands are the names run accepts, for the unknown-command message.
-const commands = "demo, run, run-start, run-stop, warning-ack, check, probe, replay, plot, sheet, version or help"
+const commands = "demo, run, run-start, run-stop, warning-ack, check, probe, replay, plot, sheet, runs, show, version or help"
 
 func run(args []string, stdout, stderr io.Writer) int {
 	ctx, stop := signal.NotifyContext(context.Background(), os.Interrupt, syscall.SIGTERM)
@@ -115,6 +117,10 @@ func runCommand(ctx context.Context, args []string, stdout, stderr io.Writer, lo
 		err = cmdPlot(args[1:], stdout)
 	case "sheet":
 		err = cmdSheet(args[1:], stdout)
+	case "runs":
+		err = cmdRuns(args[1:], stdout)
+	case "show":
+		err = cmdShow(args[1:], stdout)
 	case "run-start":
 		err = cmdRunControl("start", args[1:], stdout)
 	case "run-stop":

@@ -19,8 +19,10 @@ func cmdReplay(args []string, stdout io.Writer) error {
 	in := fs.String("in", "", "a run directory, a run id under -dir, or a line-protocol file")
 	dir := fs.String("dir", "", "the recording directory that holds run ids")
 	out := fs.String("out", "", "output file (default: standard output)")
-	asCSV := fs.Bool("csv", false, "write a CSV table (time, channel, value, quality) instead of line protocol")
+	asCSV := fs.Bool("csv", false, "write a wide CSV table (a row per frame time, a column per channel, units in the header) instead of line protocol")
+	events := fs.String("events", "", "also write the replayed events to this CSV file")
 	sumPath := fs.String("summary", "", "also write the replayed run's summary (JSON) to this file")
+	shown := unitFlags(fs, "canonical SI units with every digit")
 	if err := parseFlags(fs, args); err != nil {
 		return err
 	}
@@ -32,10 +34,12 @@ func cmdReplay(args []string, stdout io.Writer) error {
 		return err
 	}
 	var cfg *config.Config
+	used := *cfgPath
 	switch {
 	case *cfgPath != "":
 		cfg, err = config.Load(*cfgPath)
 	case input.RunDir != "":
+		used = "the run's own"
 		cfg, err = config.Load(filepath.Join(input.RunDir, "config.yaml"))
 	default:
 		return usageError{"replay of a bare file needs -config FILE"}
@@ -43,17 +47,23 @@ func cmdReplay(args []string, stdout io.Writer) error {
 	if err != nil {
 		return err
 	}
+	rc := replay.Config{
+		Pipeline: func(reg *pipeline.Registry) (*pipeline.Pipeline, error) { return offlinePipeline(cfg, reg) },
+		Vehicle:  cfg.Vehicle, Run: replay.RunID(input), Of: replay.OriginalID(input), ConfigUsed: used,
+		CSV: *asCSV, Events: *events, Out: *out, Summary: *sumPath,
+	}
+	if fs.Lookup("units").Value.String() != "" {
+		f, err := shown()
+		if err != nil {
+			return err
+		}
+		rc.Display = &f
+	}
 	rec, err := input.ReadInputs()
 	if err != nil {
 		return err
 	}
-	_, err = replay.Run(replay.Config{
-		Pipeline: func(reg *pipeline.Registry) (*pipeline.Pipeline, error) { return offlinePipeline(cfg, reg) },
-		Vehicle:  cfg.Vehicle,
-		CSV:      *asCSV,
-		Out:      *out,
-		Summary:  *sumPath,
-	}, rec, stdout)
+	_, err = replay.Run(rc, rec, stdout)
 	return err
 }
 

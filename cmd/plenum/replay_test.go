@@ -70,7 +70,7 @@ func TestReplayRecomputesAndIsDeterministic(t *testing.T) {
 	}
 	var out, errb bytes.Buffer
 	if code := run([]string{"replay", "-config", demo, "-in", "testdata/short-run.lp", "-csv"}, &out, &errb); code != 0 ||
-		!strings.HasPrefix(out.String(), "time,channel,source,value,quality\n") || !strings.Contains(out.String(), ",air_mass_flow,derived,") {
+		!strings.HasPrefix(out.String(), "time,seconds,") || !strings.Contains(out.String(), ",air_mass_flow (grams per second)") {
 		t.Fatalf("csv replay: %d %s %s", code, errb.String(), out.String())
 	}
 	if code := run([]string{"replay", "-in", "testdata/short-run.lp"}, &out, &errb); code != 2 {
@@ -126,5 +126,30 @@ func TestUnitLabel(t *testing.T) {
 		if got := plot.CatalogueUnit(c.channel); got != c.want {
 			t.Errorf("plot.CatalogueUnit(%q) = %q, want %q", c.channel, got, c.want)
 		}
+	}
+}
+
+// Replay with a configuration of its own: the output is tagged with the
+// recorded run's id, the summary names the configuration's path, and the
+// events go to their own CSV.
+func TestReplayTagsAndEvents(t *testing.T) {
+	dir := t.TempDir()
+	demo := filepath.Join(dir, "demo.yaml")
+	os.WriteFile(demo, demoConfig, 0o644)
+	sum, events := filepath.Join(dir, "summary.json"), filepath.Join(dir, "events.csv")
+	var out, errb bytes.Buffer
+	if code := run([]string{"replay", "-config", demo, "-in", "testdata/short-run.lp", "-summary", sum, "-events", events}, &out, &errb); code != 0 {
+		t.Fatalf("replay exited %d: %s", code, errb.String())
+	}
+	if !strings.Contains(out.String(), ",run=short-run-replay,") || strings.Contains(out.String(), ",run=replay,") {
+		t.Errorf("replay output not tagged run=short-run-replay:\n%.300s", out.String())
+	}
+	s, err := os.ReadFile(sum)
+	if err != nil || !bytes.Contains(s, []byte(`"replay_of": "short-run"`)) || !bytes.Contains(s, []byte(`"replay_config": "`+demo+`"`)) {
+		t.Errorf("summary %s (%v) does not name the run and the configuration %s", s, err, demo)
+	}
+	ev, err := os.ReadFile(events)
+	if err != nil || !bytes.HasPrefix(ev, []byte("time,kind,name,duration_seconds")) {
+		t.Errorf("events csv %q (%v)", ev, err)
 	}
 }

@@ -51,23 +51,92 @@ func (r Recording) Channel(p Point) string { return r.Keys[p.Key].Channel }
 // "derived"), which a replay recomputes, nor events.
 //
 // A malformed line is named in the error as file:line:column.
-func ReadInputs(files []string) (Recording, error) { return readSamples(files, false) }
+func ReadInputs(files []string) (Recording, error) { return readSamples(files, false, nil) }
 
 // ReadAll reads every sample of line-protocol files, derived ones included,
 // in time order. Errors are as for ReadInputs.
-func ReadAll(files []string) (Recording, error) { return readSamples(files, true) }
+func ReadAll(files []string) (Recording, error) { return readSamples(files, true, nil) }
+
+// ReadChannels reads the samples of the named channels only, derived ones
+// included, in time order: lines of other channels are passed over before
+// they are decoded, so that a long run's few channels read quickly.
+// Errors are as for ReadInputs.
+func ReadChannels(files []string, names ...string) (Recording, error) {
+	want := make([][]byte, len(names))
+	for i, n := range names {
+		want[i] = []byte("plenum,channel=" + n + ",")
+	}
+	rec, err := readSamples(files, true, func(line []byte) bool {
+		if !bytes.HasPrefix(line, []byte("plenum,")) {
+			return false
+		}
+		if !bytes.HasPrefix(line, []byte("plenum,channel=")) {
+			return true // tags in another order: the decoder decides
+		}
+		for _, w := range want {
+			if bytes.HasPrefix(line, w) {
+				return true
+			}
+		}
+		return false
+	})
+	if err != nil {
+		// Name the bad line in the whole file, not in the lines kept.
+		if _, err2 := ReadAll(files); err2 != nil {
+			return Recording{}, err2
+		}
+		return Recording{}, err
+	}
+	keep := map[string]bool{}
+	for _, n := range names {
+		keep[n] = true
+	}
+	if len(rec.Keys) == 0 || len(rec.Points) == 0 {
+		return rec, nil
+	}
+	// Lines whose tags came in another order were kept whatever their
+	// channel: drop the channels not asked for.
+	out := rec.Points[:0]
+	for _, p := range rec.Points {
+		if keep[rec.Keys[p.Key].Channel] {
+			out = append(out, p)
+		}
+	}
+	rec.Points = out
+	return rec, nil
+}
+
+// keepLines returns the lines of b for which keep is true.
+func keepLines(b []byte, keep func(line []byte) bool) []byte {
+	out := make([]byte, 0, len(b)/8)
+	for len(b) > 0 {
+		i := bytes.IndexByte(b, '\n')
+		line := b
+		if i >= 0 {
+			line = b[:i+1]
+		}
+		if keep(line) {
+			out = append(out, line...)
+		}
+		b = b[len(line):]
+	}
+	return out
+}
 
 // readSamples reads samples from line-protocol files in time order, with or
-// without the derived ones. A large file is cut at line boundaries into one
+// without the derived ones, of the lines keep (when not nil) is true for. A large file is cut at line boundaries into one
 // part per CPU, decoded in parallel. Errors name the file (and the line);
 // they carry no package prefix, so that the caller's command names itself.
-func readSamples(files []string, derived bool) (Recording, error) {
+func readSamples(files []string, derived bool, keep func(line []byte) bool) (Recording, error) {
 	var rec Recording
 	keyOf := map[SeriesKey]uint32{}
 	for _, f := range files {
 		b, err := ReadFile(f)
 		if err != nil {
 			return Recording{}, err
+		}
+		if keep != nil {
+			b = keepLines(b, keep)
 		}
 		parts := splitLines(b, runtime.GOMAXPROCS(0), 1<<20)
 		res := make([]Recording, len(parts))
@@ -246,4 +315,98 @@ func qualityOf(b []byte) pipeline.Quality {
 		}
 	}
 	return pipeline.OK
+}
+
+// ReadEvents reads the events ("plenum_event" points) of line-protocol
+// files in time order: kind, name, start (the recorded time), end (start
+// plus the recorded duration_seconds) and the numeric fields other than
+// the duration. Errors are as for ReadInputs.
+func ReadEvents(files []string) ([]pipeline.Event, error) {
+	var evs []pipeline.Event
+	for _, f := range files {
+		b, err := ReadFile(f)
+		if err != nil {
+			return nil, err
+		}
+		e, err := readEvents(f, keepLines(b, func(l []byte) bool { return bytes.HasPrefix(l, []byte("plenum_event")) }))
+		if err != nil {
+			// Name the bad line in the whole file.
+			if _, err2 := readEvents(f, b); err2 != nil {
+				return nil, err2
+			}
+			return nil, err
+		}
+		evs = append(evs, e...)
+	}
+	slices.SortStableFunc(evs, func(a, b pipeline.Event) int { return a.Start.Compare(b.Start) })
+	return evs, nil
+}
+
+// readEvents decodes the events of b, the contents of file f.
+func readEvents(f string, b []byte) ([]pipeline.Event, error) {
+	var evs []pipeline.Event
+	dec := lineprotocol.NewDecoderWithBytes(b)
+	for dec.Next() {
+		m, err := dec.Measurement()
+		if err != nil {
+			return nil, fmt.Errorf("%s: %w", f, err)
+		}
+		if string(m) != "plenum_event" {
+			continue
+		}
+		var e pipeline.Event
+		for {
+			k, v, err := dec.NextTag()
+			if err != nil {
+				return nil, fmt.Errorf("%s: %w", f, err)
+			}
+			if k == nil {
+				break
+			}
+			switch string(k) {
+			case "kind":
+				e.Kind = string(v)
+			case "name":
+				e.Name = string(v)
+			}
+		}
+		dur := 0.0
+		for {
+			k, v, err := dec.NextField()
+			if err != nil {
+				return nil, fmt.Errorf("%s: %w", f, err)
+			}
+			if k == nil {
+				break
+			}
+			if v.Kind() != lineprotocol.Float {
+				continue
+			}
+			if string(k) == "duration_seconds" {
+				dur = v.FloatV()
+				continue
+			}
+			if e.Fields == nil {
+				e.Fields = map[string]float64{}
+			}
+			e.Fields[string(k)] = v.FloatV()
+		}
+		t, err := dec.Time(lineprotocol.Nanosecond, time.Time{})
+		if err != nil {
+			return nil, fmt.Errorf("%s: %w", f, err)
+		}
+		e.Start = t.UTC()
+		if dur > 0 {
+			e.End = e.Start.Add(time.Duration(dur * float64(time.Second)))
+		}
+		evs = append(evs, e)
+	}
+	if err := dec.Err(); err != nil {
+		var de *lineprotocol.DecodeError
+		if errors.As(err, &de) {
+			return nil, fmt.Errorf("%s:%d:%d: %w", f, de.Line, de.Column, de.Err)
+		}
+		return nil, fmt.Errorf("%s: %w", f, err)
+	}
+	return evs, nil
 }

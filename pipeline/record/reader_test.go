@@ -289,7 +289,7 @@ func FuzzReadSamples(f *testing.F) {
 		if err := os.WriteFile(path, data, 0o644); err != nil {
 			t.Fatal(err)
 		}
-		rec, err := readSamples([]string{path}, true)
+		rec, err := readSamples([]string{path}, true, nil)
 		if err != nil {
 			if !strings.Contains(err.Error(), path) {
 				t.Fatalf("error does not name the file: %v", err)
@@ -305,4 +305,60 @@ func FuzzReadSamples(f *testing.F) {
 			}
 		}
 	})
+}
+
+// ReadEvents reads events back with their kind, name, time, duration and
+// fields, in time order, and skips samples.
+func TestReadEvents(t *testing.T) {
+	path := filepath.Join(t.TempDir(), "0001.lp")
+	os.WriteFile(path, []byte(
+		"plenum_event,kind=warning_cleared,name=hot,run=r,vehicle=v active=0,duration_seconds=1.5 1800000002000000000\n"+
+			"plenum,channel=engine_speed,run=r,source=mcu,vehicle=v value=3000,quality=\"ok\" 1800000000000000000\n"+
+			"plenum_event,kind=run_started,name=r,run=r,vehicle=v duration_seconds=0 1800000000000000000\n"), 0o644)
+	evs, err := ReadEvents([]string{path})
+	if err != nil {
+		t.Fatal(err)
+	}
+	if len(evs) != 2 {
+		t.Fatalf("%d events, want 2: %+v", len(evs), evs)
+	}
+	a, b := evs[0], evs[1]
+	if a.Kind != "run_started" || a.Name != "r" || !a.End.IsZero() || a.Start.UnixNano() != 1800000000000000000 || len(a.Fields) != 0 {
+		t.Errorf("first event %+v", a)
+	}
+	if b.Kind != "warning_cleared" || b.Name != "hot" || b.End.Sub(b.Start) != 1500*time.Millisecond || b.Fields["active"] != 0 || len(b.Fields) != 1 {
+		t.Errorf("second event %+v", b)
+	}
+	os.WriteFile(path, []byte("plenum_event,kind=x value=\n"), 0o644)
+	if _, err := ReadEvents([]string{path}); err == nil || !strings.HasPrefix(err.Error(), path+":") {
+		t.Errorf("a bad line: %v", err)
+	}
+}
+
+// ReadChannels gives what ReadAll gives for the channels asked for, tags in
+// any order, and names a bad line in the whole file.
+func TestReadChannels(t *testing.T) {
+	path := filepath.Join(t.TempDir(), "0001.lp")
+	os.WriteFile(path, []byte(
+		"plenum,channel=engine_speed,run=r,source=mcu,vehicle=v value=3000,quality=\"ok\" 1800000000000000000\n"+
+			"plenum,channel=engine_speed_limit,run=r,source=mcu,vehicle=v value=7000,quality=\"ok\" 1800000000000000000\n"+
+			"plenum_event,kind=run_started,name=r,run=r,vehicle=v duration_seconds=0 1800000000000000000\n"+
+			"plenum,run=r,source=derived,channel=corrected_power,vehicle=v value=100000,quality=\"ok\" 1800000001000000000\n"+
+			"plenum,source=mcu,channel=oil_temp,vehicle=v value=90,quality=\"ok\" 1800000001000000000\n"+
+			"plenum,channel=lambda,run=r,source=derived,vehicle=v value=0.9,quality=\"ok\" 1800000002000000000\n"), 0o644)
+	rec, err := ReadChannels([]string{path}, "engine_speed", "corrected_power")
+	if err != nil {
+		t.Fatal(err)
+	}
+	var got []string
+	for _, p := range rec.Points {
+		got = append(got, rec.Channel(p)+"="+strconv.FormatFloat(p.Value, 'g', -1, 64))
+	}
+	if want := "engine_speed=3000 corrected_power=100000"; strings.Join(got, " ") != want {
+		t.Errorf("read %q, want %q", got, want)
+	}
+	os.WriteFile(path, []byte("plenum,channel=x value=1 1\nplenum,channel=engine_speed,run=r value=\n"), 0o644)
+	if _, err := ReadChannels([]string{path}, "engine_speed"); err == nil || !strings.HasPrefix(err.Error(), path+":2:") {
+		t.Errorf("a bad line: %v, want it named as %s:2:", err, path)
+	}
 }

@@ -41,6 +41,11 @@ type Summary struct {
 	// Correction says which standard corrected power and with which
 	// entered conditions (the run's Config.Correction).
 	Correction *Correction `json:"power_correction,omitempty"`
+	// ReplayOf is, in a replayed run's summary, the id of the recorded run
+	// it replays; ReplayConfig the configuration it was replayed with: its
+	// path, or "the run's own".
+	ReplayOf     string `json:"replay_of,omitempty"`
+	ReplayConfig string `json:"replay_config,omitempty"`
 }
 
 // Conditions are the ambient conditions of a run: what the power correction

@@ -8,17 +8,18 @@
 package replay
 
 import (
-	"encoding/csv"
+	"encoding/json"
 	"errors"
 	"fmt"
 	"io"
 	"os"
 	"path/filepath"
 	"sort"
-	"strconv"
+	"strings"
 	"time"
 
 	"github.com/plenum-engine/plenum/pipeline"
+	"github.com/plenum-engine/plenum/pipeline/display"
 	"github.com/plenum-engine/plenum/pipeline/record"
 )
 
@@ -36,9 +37,23 @@ type Config struct {
 	Channel func(name string) (pipeline.Channel, bool)
 	// Vehicle is the vehicle tag of the output lines and of the summary.
 	Vehicle string
-	// CSV writes a table (time, channel, source, value, quality) instead of
-	// line protocol.
+	// Run is the run tag of the output lines and the summary's run id
+	// (RunID derives one from the recorded run). Empty: "replay".
+	Run string
+	// Of is the id of the recorded run, and ConfigUsed the configuration
+	// replayed with (its path, or "the run's own"), both stated in the
+	// summary; empty: not stated.
+	Of, ConfigUsed string
+	// CSV writes a wide table instead of line protocol: one row per
+	// frame time, one column per channel with its unit in the header (see
+	// csv.go).
 	CSV bool
+	// Display, when set, writes the CSV's values in its units, rounded as
+	// a person reads them; nil: canonical units, every digit.
+	Display *display.Formatter
+	// Events, when set, is a file the events are written to as CSV (see
+	// csv.go).
+	Events string
 	// Out is the output file. Empty: the writer given to Run.
 	Out string
 	// Summary, when set, is a file the replayed run's summary (JSON) is
@@ -51,6 +66,27 @@ type Config struct {
 type Input struct {
 	Files  []string
 	RunDir string // the run's directory; empty for a bare line-protocol file
+}
+
+// RunID derives the run id of in's replay from the recorded run's
+// (OriginalID): "<id>-replay". Two replays of different runs pushed to one
+// database keep apart.
+func RunID(in Input) string { return OriginalID(in) + "-replay" }
+
+// OriginalID is the id of the recorded run in: the id in its run.json, else
+// its directory's name, or for a bare file its name without .lp or .lp.gz.
+func OriginalID(in Input) string {
+	if in.RunDir != "" {
+		var m record.Meta
+		if b, err := os.ReadFile(filepath.Join(in.RunDir, "run.json")); err == nil && json.Unmarshal(b, &m) == nil && m.ID != "" {
+			return m.ID
+		}
+	}
+	name := in.RunDir
+	if name == "" && len(in.Files) > 0 {
+		name = in.Files[0]
+	}
+	return strings.TrimSuffix(strings.TrimSuffix(filepath.Base(filepath.Clean(name)), ".gz"), ".lp")
 }
 
 // Resolve finds the input named in: a run directory, a run id under dir, or
@@ -113,7 +149,7 @@ func Run(cfg Config, rec record.Recording, w io.Writer) (record.Summary, error) 
 		w = f
 	}
 	bw := newAsyncWriter(w, 1<<20)
-	sum, err := replay(cfg, rec, bw)
+	sum, events, err := replay(cfg, rec, bw)
 	if cerr := bw.Close(); err == nil && cerr != nil {
 		err = fmt.Errorf("replay: write: %w", cerr)
 	}
@@ -123,6 +159,11 @@ func Run(cfg Config, rec record.Recording, w io.Writer) (record.Summary, error) 
 	if f != nil {
 		if err := f.Close(); err != nil {
 			return record.Summary{}, fmt.Errorf("replay: %w", err)
+		}
+	}
+	if cfg.Events != "" {
+		if err := writeEventsFile(cfg.Events, events); err != nil {
+			return record.Summary{}, err
 		}
 	}
 	if cfg.Summary != "" {
@@ -170,30 +211,32 @@ func register(cfg Config, rec record.Recording) (*pipeline.Registry, []pipeline.
 
 // replay runs the samples through the pipeline synchronously, writes every
 // sample and event the pipeline fans out, and returns the summary of the
-// replayed run.
-func replay(cfg Config, rec record.Recording, w io.Writer) (record.Summary, error) {
+// replayed run and its events.
+func replay(cfg Config, rec record.Recording, w io.Writer) (record.Summary, []pipeline.Event, error) {
 	if cfg.Pipeline == nil {
-		return record.Summary{}, errors.New("replay: no pipeline to replay through")
+		return record.Summary{}, nil, errors.New("replay: no pipeline to replay through")
 	}
 	reg, ids, err := register(cfg, rec)
 	if err != nil {
-		return record.Summary{}, err
+		return record.Summary{}, nil, err
 	}
 	in := rec.Points
 	p, err := cfg.Pipeline(reg)
 	if err != nil {
-		return record.Summary{}, err
+		return record.Summary{}, nil, err
 	}
 	sub := p.Subscribe("replay", 1<<12)
-	enc := record.NewEncoder("replay", cfg.Vehicle, reg)
-	var cw *csv.Writer
-	if cfg.CSV {
-		cw = csv.NewWriter(w)
-		cw.Write([]string{"time", "channel", "source", "value", "quality"})
+	run := cfg.Run
+	if run == "" {
+		run = "replay"
 	}
-	chans := reg.Channels()
+	enc := record.NewEncoder(run, cfg.Vehicle, reg)
+	var table *wideCSV
+	if cfg.CSV {
+		table = newWideCSV(w, reg.Channels(), cfg.Display)
+	}
 	var buf []pipeline.Sample
-	var evs []pipeline.Event
+	var evs, all []pipeline.Event
 	// Samples of one time (one serial line, one OBD answer) are one frame,
 	// as the live ingest loop takes them.
 	var frame []pipeline.Sample
@@ -209,29 +252,32 @@ func replay(cfg Config, rec record.Recording, w io.Writer) (record.Summary, erro
 		buf, evs = sub.Drain(buf[:0], evs[:0])
 		for _, s := range buf {
 			enc.Write(s) // the summary sees every sample, in CSV mode too
-			if cw != nil {
-				c := chans[s.Channel]
-				cw.Write([]string{s.Time.UTC().Format(time.RFC3339Nano), c.Name, c.Source, strconv.FormatFloat(s.Value, 'g', -1, 64), s.Quality.String()})
+			if table != nil {
+				table.add(s)
 			}
 		}
 		for _, e := range evs {
 			enc.WriteEvent(e)
 		}
+		if cfg.Events != "" {
+			all = append(all, evs...)
+		}
 		b := enc.TakeBytes()
-		if cw == nil {
+		if table == nil {
 			if _, err := w.Write(b); err != nil {
-				return record.Summary{}, fmt.Errorf("replay: write: %w", err)
+				return record.Summary{}, nil, fmt.Errorf("replay: write: %w", err)
 			}
 		}
 	}
 	if sub.Dropped() > 0 {
-		return record.Summary{}, errors.New("replay: samples were dropped; this is a bug")
+		return record.Summary{}, nil, errors.New("replay: samples were dropped; this is a bug")
 	}
-	if cw != nil {
-		cw.Flush()
-		if err := cw.Error(); err != nil {
-			return record.Summary{}, fmt.Errorf("replay: write: %w", err)
+	if table != nil {
+		if err := table.close(); err != nil {
+			return record.Summary{}, nil, fmt.Errorf("replay: write: %w", err)
 		}
 	}
-	return enc.Summary(), nil
+	sum := enc.Summary()
+	sum.ReplayOf, sum.ReplayConfig = cfg.Of, cfg.ConfigUsed
+	return sum, all, nil
 }

@@ -11,6 +11,7 @@ import (
 	"time"
 
 	"github.com/plenum-engine/plenum/pipeline"
+	"github.com/plenum-engine/plenum/pipeline/display"
 	"github.com/plenum-engine/plenum/pipeline/record"
 )
 
@@ -164,7 +165,14 @@ func TestRunRecomputes(t *testing.T) {
 	if err != nil {
 		t.Fatal(err)
 	}
-	for _, want := range []string{"time,channel,source,value,quality\n", "2027-01-15T08:00:00.02Z,boost_pressure,derived,80000,ok\n", ",shift_light,dash,1,ok\n"} {
+	// The wide table: one row per frame time, one column per channel with
+	// its unit; the derived boost of the third frame, the odd channel alone
+	// in its row.
+	for _, want := range []string{
+		"time,seconds,manifold_pressure (pascals),baro_pressure (pascals),shift_light,boost_pressure (pascals)\n",
+		"2027-01-15T08:00:00.02Z,0.02,180000,100000,,80000\n",
+		"2027-01-15T08:00:01Z,1,,,1,\n",
+	} {
 		if !bytes.Contains(c, []byte(want)) {
 			t.Errorf("csv lacks %q:\n%s", want, c)
 		}
@@ -313,6 +321,66 @@ func TestCataloguedChannel(t *testing.T) {
 		c, ok := CataloguedChannel(tc.name)
 		if ok != tc.ok || ok && (c.Sensor != tc.sensor || c.Unit != tc.unit) {
 			t.Errorf("CataloguedChannel(%q) = %+v, %v", tc.name, c, ok)
+		}
+	}
+}
+
+// A replay is tagged with a run id derived from the recorded run, its
+// summary says what it replays and with which configuration, its events go
+// to a CSV of their own, and the wide table converts to display units on
+// request.
+func TestRunTagsEventsAndUnits(t *testing.T) {
+	dir := t.TempDir()
+	writeRun(t, dir)
+	in, err := Resolve("r1", dir)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if id := RunID(in); id != "r1-replay" {
+		t.Errorf("RunID(run dir) = %q, want r1-replay", id)
+	}
+	for file, want := range map[string]string{"/x/short-run.lp": "short-run-replay", "a/0001.lp.gz": "0001-replay"} {
+		if id := RunID(Input{Files: []string{file}}); id != want {
+			t.Errorf("RunID(%s) = %q, want %q", file, id, want)
+		}
+	}
+	rec, err := in.ReadInputs()
+	if err != nil {
+		t.Fatal(err)
+	}
+	var d *boostDeriv
+	evPath := filepath.Join(dir, "events.csv")
+	var out bytes.Buffer
+	sum, err := Run(Config{Pipeline: builder(&d), Vehicle: "test-car", Run: RunID(in), Of: "r1", ConfigUsed: "the run's own", Events: evPath}, rec, &out)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if !strings.Contains(out.String(), "plenum,channel=boost_pressure,run=r1-replay,source=derived,vehicle=test-car value=80000,") || strings.Contains(out.String(), "run=replay,") {
+		t.Errorf("output not tagged run=r1-replay:\n%s", out.String())
+	}
+	if sum.Run != "r1-replay" || sum.ReplayOf != "r1" || sum.ReplayConfig != "the run's own" ||
+		!strings.Contains(string(sum.JSON()), `"replay_config": "the run's own"`) {
+		t.Errorf("summary %s", sum.JSON())
+	}
+	ev, err := os.ReadFile(evPath)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if want := "time,kind,name,duration_seconds,boost_pascals\n2027-01-15T08:00:00.02Z,boost_seen,,,80000\n"; string(ev) != want {
+		t.Errorf("events csv:\n%s\nwant:\n%s", ev, want)
+	}
+
+	f, err := display.New(display.Config{Units: display.Units{Pressure: display.Bar}})
+	if err != nil {
+		t.Fatal(err)
+	}
+	out.Reset()
+	if _, err := Run(Config{Pipeline: builder(&d), CSV: true, Display: &f}, rec, &out); err != nil {
+		t.Fatal(err)
+	}
+	for _, want := range []string{"manifold_pressure (bar),baro_pressure (bar),shift_light,boost_pressure (bar gauge)\n", "2027-01-15T08:00:00.02Z,0.02,1.80,1.00,,0.80\n"} {
+		if !strings.Contains(out.String(), want) {
+			t.Errorf("csv in display units lacks %q:\n%s", want, out.String())
 		}
 	}
 }
