@@ -173,3 +173,34 @@ func TestOverPrecise(t *testing.T) {
 		}
 	}
 }
+
+// The peaks show prints for each pull are the dyno sheet's: the same
+// smoothed trace, the same numbers.
+func TestShowAgreesWithTheSheet(t *testing.T) {
+	var sheetOut, showOut, errb bytes.Buffer
+	if code := run([]string{"sheet", "-in", goldenRun, "-out", filepath.Join(t.TempDir(), "s.svg")}, &sheetOut, &errb); code != 0 {
+		t.Fatalf("sheet: %d %s", code, errb.String())
+	}
+	if code := run([]string{"show", goldenRun}, &showOut, &errb); code != 0 {
+		t.Fatalf("show: %d %s", code, errb.String())
+	}
+	pulls := 0
+	for _, l := range strings.Split(sheetOut.String(), "\n") {
+		_, rest, ok := strings.Cut(l, ": ")
+		if !ok || !strings.Contains(l, "pull") {
+			continue
+		}
+		pulls++
+		power, _, _ := strings.Cut(rest, " (raw")
+		_, torque, _ := strings.Cut(rest, "), ")
+		torque, _, _ = strings.Cut(torque, " (raw")
+		for _, want := range []string{power, torque} {
+			if want = strings.ReplaceAll(want, " @ ", " at "); !strings.Contains(showOut.String(), want) {
+				t.Errorf("show lacks the sheet's peak %q:\n%s", want, showOut.String())
+			}
+		}
+	}
+	if pulls != 2 {
+		t.Fatalf("the sheet listed %d pulls of the golden run, want 2:\n%s", pulls, sheetOut.String())
+	}
+}

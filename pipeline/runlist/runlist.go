@@ -19,6 +19,7 @@ import (
 
 	"github.com/plenum-engine/plenum/pipeline"
 	"github.com/plenum-engine/plenum/pipeline/record"
+	"github.com/plenum-engine/plenum/pipeline/sheet"
 )
 
 // Config says where runs are recorded.
@@ -106,6 +107,11 @@ type Run struct {
 	Factor, FactorMin, FactorMax float64
 	// Events are the run's recorded events in time order.
 	Events []pipeline.Event
+	// Pulls are the peaks of each wide-open-throttle pull as the dyno
+	// sheet finds, smooths and draws them (pipeline/sheet with its
+	// default smoothing), with the raw peak beside: the numbers on the
+	// sheet and in show agree.
+	Pulls []sheet.PullPeaks
 }
 
 // Label is the run's label, or its id when it has none.
@@ -243,11 +249,16 @@ func read(dir string, m record.Meta) (Run, error) {
 		return Run{}, err
 	}
 	r.peaks(rec)
+	var sc sheet.Config
+	for _, p := range sc.Build(r.Meta, rec).Pulls {
+		r.Pulls = append(r.Pulls, sc.Peaks(p))
+	}
 	return r, nil
 }
 
 // peakChannels are the channels peaks reads.
-var peakChannels = []string{"engine_speed", "dyno_torque", "corrected_power", "correction_factor"}
+var peakChannels = []string{"engine_speed", "dyno_torque", "corrected_power", "correction_factor",
+	"throttle_position", "boost_pressure", "lambda"} // the last for the sheet's pulls
 
 // peaks folds the recording into the run's peaks and correction factor,
 // and its start and end when the summary gave none.

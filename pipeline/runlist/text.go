@@ -12,6 +12,7 @@ import (
 	"github.com/plenum-engine/plenum/pipeline"
 	"github.com/plenum-engine/plenum/pipeline/display"
 	"github.com/plenum-engine/plenum/pipeline/record"
+	"github.com/plenum-engine/plenum/pipeline/sheet"
 )
 
 // Every number written for a person goes through the display layer (a
@@ -52,6 +53,11 @@ func peak(f display.Formatter, ch string, p Peak) string {
 		s += " at " + value(f, "engine_speed", p.RPM)
 	}
 	return s
+}
+
+// sheetPeak formats a peak of the dyno sheet as "221 kW at 6600 rpm".
+func sheetPeak(f display.Formatter, ch string, p sheet.Peak) string {
+	return peak(f, ch, Peak{Value: p.Y, RPM: p.X, OK: p.OK})
 }
 
 // seconds formats a duration in seconds with d decimals: "2.40 s".
@@ -196,6 +202,11 @@ func WriteShow(w io.Writer, r Run, f display.Formatter) error {
 	line("corrected power", peak(f, "corrected_power", r.Power))
 	line("corrected torque", peak(f, "dyno_torque", r.Torque))
 	line("measured torque", peak(f, "dyno_torque", r.MeasuredTorque))
+	for i, pp := range r.Pulls {
+		line(fmt.Sprintf("pull %d, smoothed", i+1), fmt.Sprintf("%s, %s (raw %s, %s)",
+			sheetPeak(f, "corrected_power", pp.Power), sheetPeak(f, "dyno_torque", pp.Torque),
+			sheetPeak(f, "corrected_power", pp.RawPower), sheetPeak(f, "dyno_torque", pp.RawTorque)))
+	}
 	if s := r.Summary; s != nil {
 		line("boost", ptr(f, "boost_pressure", s.PeakBoostPa))
 		if s.MinLambdaUnderLoad != nil && s.MaxLambdaUnderLoad != nil {
