@@ -6,7 +6,6 @@ import (
 	"path/filepath"
 	"strings"
 
-	"github.com/plenum-engine/plenum/pipeline/display"
 	"github.com/plenum-engine/plenum/pipeline/plot"
 	"github.com/plenum-engine/plenum/pipeline/replay"
 )
@@ -20,8 +19,7 @@ func cmdPlot(args []string, stdout io.Writer) error {
 	dir := fs.String("dir", "", "the recording directory that holds run ids")
 	out := fs.String("out", "", "output file, .png or .svg")
 	chans := fs.String("channels", "", "also plot these channels against time (comma-separated)")
-	units := fs.String("units", "", "units for people, e.g. pressure=bar,temperature=F,power=hp_mech,mixture=afr (default metric: kPa, °C, kW, λ)")
-	fuel := fs.String("fuel", "gasoline", "the fuel whose stoichiometric ratio mixture=afr uses")
+	shown := unitFlags(fs, "metric: kPa, °C, kW, λ")
 	if err := parseFlags(fs, args); err != nil {
 		return err
 	}
@@ -31,11 +29,11 @@ func cmdPlot(args []string, stdout io.Writer) error {
 	if _, ok := plot.FormatOf(*out); !ok {
 		return usageError{"plot -out must end in .png or .svg"}
 	}
-	shown, err := display.Parse(*units, *fuel)
+	people, err := shown()
 	if err != nil {
-		return usageError{err.Error()}
+		return err
 	}
-	cfg := plot.Config{Unit: plot.CatalogueUnit, Display: plot.DisplayScale(shown)}
+	cfg := plot.Config{Unit: plot.CatalogueUnit, Display: plot.DisplayScale(people)}
 	if *chans != "" {
 		cfg.Channels = strings.Split(*chans, ",")
 	}

@@ -15,13 +15,9 @@ func unitFlags(fs *cmdFlags, dflt string) func() (display.Formatter, error) {
 	units := fs.String("units", "", "units for people, e.g. pressure=bar,temperature=F,power=hp_mech,mixture=afr (default "+dflt+")")
 	fuel := fs.String("fuel", "gasoline", "the fuel whose stoichiometric ratio mixture=afr uses")
 	return func() (display.Formatter, error) {
-		u, err := display.ParseUnits(*units)
+		f, err := display.Parse(*units, *fuel)
 		if err != nil {
-			return display.Formatter{}, usageError{err.Error()}
-		}
-		f, err := display.New(display.Config{Units: u, Fuel: *fuel})
-		if err != nil {
-			return display.Formatter{}, usageError{err.Error()}
+			return f, usageError{err.Error()}
 		}
 		return f, nil
 	}

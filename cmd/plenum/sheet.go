@@ -6,7 +6,6 @@ import (
 	"io"
 	"strings"
 
-	"github.com/plenum-engine/plenum/pipeline/display"
 	"github.com/plenum-engine/plenum/pipeline/sheet"
 )
 
@@ -17,8 +16,7 @@ func cmdSheet(args []string, stdout io.Writer) error {
 	dir := fs.String("dir", "", "the recording directory that holds run ids")
 	out := fs.String("out", "", "output file, .png or .svg")
 	chans := fs.String("channels", "", "also draw these channels against time since tip-in (comma-separated)")
-	units := fs.String("units", "", "units for people, e.g. power=hp_mech,torque=lbft,pressure=bar,mixture=afr (default kW, N·m, kPa, λ)")
-	fuel := fs.String("fuel", "gasoline", "the fuel whose stoichiometric ratio mixture=afr uses")
+	shown := unitFlags(fs, "kW, N·m, kPa, λ")
 	window := fs.Int("smooth", 5, "moving-average window, in engine-speed bins (odd; 1: none)")
 	bin := fs.Float64("bin", 50, "engine-speed bin width (rpm)")
 	raw := fs.Bool("raw", false, "also draw the raw samples under the smoothed curves")
@@ -31,11 +29,11 @@ func cmdSheet(args []string, stdout io.Writer) error {
 	if _, ok := sheet.FormatOf(*out); !ok {
 		return usageError{"sheet -out must end in .png or .svg"}
 	}
-	shown, err := display.Parse(*units, *fuel)
+	people, err := shown()
 	if err != nil {
-		return usageError{err.Error()}
+		return err
 	}
-	cfg := sheet.Config{Display: shown, Window: *window, BinRPM: *bin, Raw: *raw}
+	cfg := sheet.Config{Display: people, Window: *window, BinRPM: *bin, Raw: *raw}
 	if *chans != "" {
 		cfg.Channels = strings.Split(*chans, ",")
 	}
