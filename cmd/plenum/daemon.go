@@ -19,6 +19,7 @@ import (
 	"github.com/plenum-engine/plenum/pipeline/derived"
 	"github.com/plenum-engine/plenum/pipeline/display"
 	"github.com/plenum-engine/plenum/pipeline/eventlog"
+	"github.com/plenum-engine/plenum/pipeline/fleet"
 	"github.com/plenum-engine/plenum/pipeline/mqttpub"
 	"github.com/plenum-engine/plenum/pipeline/promexport"
 	"github.com/plenum-engine/plenum/pipeline/record"
@@ -39,6 +40,7 @@ type daemon struct {
 	pub     *mqttpub.Publisher // live values, events and summaries
 	pusher  *tsdbpush.Pusher   // nil without record.push
 	brk     *broker.Broker     // nil with an external broker
+	follow  *fleet.Follower    // nil unless following other vehicles
 	evm     *promexport.Events
 	evlog   *eventlog.Events
 	con     *console.Server
@@ -171,6 +173,15 @@ func build(ctx context.Context, cfg *config.Config, log *slog.Logger, open bool)
 	if d.rr != nil {
 		ccfg.CurrentRun, ccfg.Controls = d.rr.Current, d.rr.Controls()
 	}
+	// Following other vehicles, for the wall view.
+	if fc, ok, err := cfg.Fleet(log); err != nil {
+		return nil, err
+	} else if ok {
+		if d.follow, err = fleet.New(fc); err != nil {
+			return nil, cfg.At(err.Error(), "follow")
+		}
+		ccfg.Fleet = d.follow
+	}
 	d.con = console.New(ccfg, d.p)
 	d.mux.Handle("/console/", d.con.Handler())
 	return d, d.serveMetrics()
@@ -188,6 +199,9 @@ func (d *daemon) serveMetrics() error {
 	}
 	if d.brk != nil {
 		parts = append(parts, d.brk)
+	}
+	if d.follow != nil {
+		parts = append(parts, d.follow)
 	}
 	for _, s := range d.srcs {
 		if s.health != nil {
@@ -289,6 +303,9 @@ func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *s
 			}
 			return nil
 		}}, {Name: "event metrics", Run: d.evm.Run}, {Name: "event log", Run: d.evlog.Run}, {Name: "console", Run: d.con.Run}},
+	}
+	if d.follow != nil {
+		st[1] = append(st[1], stages.Part{Name: "follow", Run: d.follow.Run})
 	}
 	if d.pusher != nil {
 		st = append(st, stages.Stage{{Name: "push", Run: d.pusher.Run}})

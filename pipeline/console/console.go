@@ -100,6 +100,9 @@ type Config struct {
 	// Controls tells the page whether control commands are enabled at all
 	// (a control token is configured).
 	Controls bool
+	// Fleet is the follower of other vehicles whose tiles the wall view
+	// shows beside this vehicle's (optional).
+	Fleet Fleet
 	// Clock is the console's time (default the system clock).
 	Clock clock.Clock
 	// Logger logs disconnections (default slog.Default()).
@@ -137,18 +140,20 @@ var assets embed.FS
 // Server is the console: the stream's hub and the HTTP handler. Build it
 // with New, serve Handler, and Run it for the stream's lifetime.
 type Server struct {
-	cfg Config
-	hub *hub
+	cfg  Config
+	hub  *hub
+	done chan struct{} // closed when Run returns
 }
 
 // New subscribes to p and returns the console.
 func New(cfg Config, p Pipeline) *Server {
 	cfg.defaults()
-	return &Server{cfg: cfg, hub: newHub(cfg, p)}
+	return &Server{cfg: cfg, hub: newHub(cfg, p), done: make(chan struct{})}
 }
 
 // Run feeds the stream until ctx ends, then disconnects every browser.
 func (s *Server) Run(ctx context.Context) error {
+	defer close(s.done)
 	s.hub.loop(ctx.Done())
 	return nil
 }
@@ -169,13 +174,15 @@ var views = map[string]string{
 }
 
 // Handler serves /console/ (an index of the views), /console/driver,
-// /console/cell, /console/wall, /console/static/… and /console/stream.
+// /console/cell, /console/wall, /console/static/…, /console/stream and
+// /console/fleet (the vehicles followed, for the wall view).
 // Mount it at "/console/".
 func (s *Server) Handler() http.Handler {
 	mux := http.NewServeMux()
 	static, _ := fs.Sub(assets, "assets")
 	mux.Handle("GET /console/static/", http.StripPrefix("/console/static/", noCache(http.FileServerFS(static))))
 	mux.HandleFunc("GET /console/stream", s.hub.serve)
+	mux.HandleFunc("GET "+FleetPath, s.serveFleet)
 	page := func(file string) http.HandlerFunc {
 		return func(w http.ResponseWriter, r *http.Request) {
 			b, err := assets.ReadFile(file)

@@ -221,5 +221,8 @@ const Plenum = (() => {
     return parts.join(" · ");
   }
 
-  return { Live, control, token, keepAwake, severity, pretty, el, ago, connection, tokenBox, fieldsText };
+  // streamURL is a stream's address; step 2 adds the browser's units.
+  function streamURL(path) { return path; }
+
+  return { Live, streamURL, control, token, keepAwake, severity, pretty, el, ago, connection, tokenBox, fieldsText };
 })();
