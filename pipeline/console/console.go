@@ -68,6 +68,16 @@ type Formatter interface {
 	Format(ch pipeline.Channel, v float64) (text, unit string)
 }
 
+// Overrider is a Formatter that takes a browser's unit choices: units is
+// the compact form of pipeline/display ("pressure=bar,power=hp_mech").
+type Overrider interface {
+	Override(units string) (Formatter, error)
+}
+
+// UnitsParam is the streams' query parameter with a browser's unit
+// choices, e.g. /console/stream?units=pressure%3Dbar%2Cpower%3Dhp_mech.
+const UnitsParam = "units"
+
 // Pipeline is what the console needs of the pipeline.
 type Pipeline interface {
 	Registry() *pipeline.Registry
@@ -175,14 +185,20 @@ var views = map[string]string{
 
 // Handler serves /console/ (an index of the views), /console/driver,
 // /console/cell, /console/wall, /console/static/…, /console/stream and
-// /console/fleet (the vehicles followed, for the wall view).
+// /console/fleet (the vehicles followed, for the wall view) and
+// /console/units (the unit choices a browser may make).
 // Mount it at "/console/".
 func (s *Server) Handler() http.Handler {
 	mux := http.NewServeMux()
 	static, _ := fs.Sub(assets, "assets")
 	mux.Handle("GET /console/static/", http.StripPrefix("/console/static/", noCache(http.FileServerFS(static))))
-	mux.HandleFunc("GET /console/stream", s.hub.serve)
+	mux.HandleFunc("GET /console/stream", func(w http.ResponseWriter, r *http.Request) {
+		if f, ok := s.formatter(w, r); ok {
+			s.hub.serve(w, r, r.URL.Query().Get(UnitsParam), f)
+		}
+	})
 	mux.HandleFunc("GET "+FleetPath, s.serveFleet)
+	mux.HandleFunc("GET "+UnitsPath, s.serveUnits)
 	page := func(file string) http.HandlerFunc {
 		return func(w http.ResponseWriter, r *http.Request) {
 			b, err := assets.ReadFile(file)
@@ -201,6 +217,27 @@ func (s *Server) Handler() http.Handler {
 	}
 	mux.HandleFunc("GET /console/{$}", page("assets/index.html"))
 	return mux
+}
+
+// formatter is the formatter of one browser's stream: the configured
+// units with the browser's override; a bad override is refused with a 400
+// naming the item.
+func (s *Server) formatter(w http.ResponseWriter, r *http.Request) (Formatter, bool) {
+	q := r.URL.Query().Get(UnitsParam)
+	if q == "" {
+		return s.cfg.Formatter, true
+	}
+	o, ok := s.cfg.Formatter.(Overrider)
+	if !ok {
+		http.Error(w, "units: this console's units cannot be overridden", http.StatusBadRequest)
+		return nil, false
+	}
+	f, err := o.Override(q)
+	if err != nil {
+		http.Error(w, "units: "+err.Error(), http.StatusBadRequest)
+		return nil, false
+	}
+	return f, true
 }
 
 func noCache(h http.Handler) http.Handler {

@@ -184,8 +184,3 @@ func (s *Server) serveFleet(w http.ResponseWriter, r *http.Request) {
 		}
 	}
 }
-
-// formatter is the formatter of one browser's stream.
-func (s *Server) formatter(w http.ResponseWriter, r *http.Request) (Formatter, bool) {
-	return s.cfg.Formatter, true
-}

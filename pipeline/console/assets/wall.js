@@ -111,8 +111,10 @@
       }
       for (const [name, s] of tiles) if (!seen.has(name)) { s.t.remove(); tiles.delete(name); }
     };
+    let cur = null;
     const start = () => {
       const es = new EventSource(Plenum.streamURL("/console/fleet"));
+      cur = es;
       const on = (name, f) => es.addEventListener(name, (m) => {
         let d;
         try { d = JSON.parse(m.data); } catch (e) { return; }
@@ -124,11 +126,12 @@
       on("vehicles", (d) => { last = d; });
       on("heartbeat", () => {});
       es.onerror = () => {
-        if (es.readyState === EventSource.CLOSED) setTimeout(start, 2000);
+        if (es.readyState === EventSource.CLOSED && es === cur) setTimeout(start, 2000);
         render();
       };
     };
     start();
+    Plenum.onUnits(() => { cur.close(); start(); });
     setInterval(render, 500);
   }
 
