@@ -6,7 +6,6 @@ import (
 	"path/filepath"
 	"strings"
 
-	"github.com/plenum-engine/plenum/pipeline"
 	"github.com/plenum-engine/plenum/pipeline/display"
 	"github.com/plenum-engine/plenum/pipeline/plot"
 	"github.com/plenum-engine/plenum/pipeline/replay"
@@ -40,7 +39,7 @@ func cmdPlot(args []string, stdout io.Writer) error {
 	if err != nil {
 		return usageError{err.Error()}
 	}
-	cfg := plot.Config{Unit: unitLabel, Display: plotScale(shown)}
+	cfg := plot.Config{Unit: plot.CatalogueUnit, Display: plot.DisplayScale(shown)}
 	if *chans != "" {
 		cfg.Channels = strings.Split(*chans, ",")
 	}
@@ -66,29 +65,4 @@ func cmdPlot(args []string, stdout io.Writer) error {
 	}
 	fmt.Fprintf(stdout, "wrote %s (%d runs, %d panels)\n", *out, len(runs), panels)
 	return nil
-}
-
-// unitLabel names a channel's canonical unit for an axis label ("" when it
-// has none or is unknown).
-func unitLabel(ch string) string {
-	if c, ok := pipeline.Catalogued(ch); ok && c.Unit != pipeline.None {
-		return strings.ReplaceAll(string(c.Unit), "_", " ")
-	}
-	return ""
-}
-
-// plotScale shows a catalogued channel on a plot axis as the display layer
-// shows it to a person: its unit symbol and conversion; a channel the
-// catalogue lacks is left to unitLabel. Pressures are drawn as measured
-// (an axis has no barometric pressure to shift by) and labelled with the
-// symbol alone, so that the default boost axis stays "boost (kPa)".
-func plotScale(f display.Formatter) func(string) (plot.Scale, bool) {
-	return func(ch string) (plot.Scale, bool) {
-		c, ok := pipeline.Catalogued(ch)
-		if !ok {
-			return plot.Scale{}, false
-		}
-		s := f.ScaleOf(c)
-		return plot.Scale{Unit: s.Unit, Factor: s.Factor, Offset: s.Offset}, true
-	}
 }

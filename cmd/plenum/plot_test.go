@@ -39,12 +39,12 @@ func TestPlotDefaultUnitsUnchanged(t *testing.T) {
 		t.Fatal(err)
 	}
 	var before, after bytes.Buffer
-	old := plot.Config{Unit: unitLabel}
+	old := plot.Config{Unit: plot.CatalogueUnit}
 	if _, err := plot.Write(&before, plot.SVG, old, []plot.Series{old.Align("run", rec)}); err != nil {
 		t.Fatal(err)
 	}
 	var f display.Formatter
-	now := plot.Config{Unit: unitLabel, Display: plotScale(f)}
+	now := plot.Config{Unit: plot.CatalogueUnit, Display: plot.DisplayScale(f)}
 	if _, err := plot.Write(&after, plot.SVG, now, []plot.Series{now.Align("run", rec)}); err != nil {
 		t.Fatal(err)
 	}
