@@ -14,6 +14,7 @@ import (
 	"time"
 
 	"github.com/chromedp/chromedp"
+	"github.com/plenum-engine/plenum/cmd/plenum/config"
 )
 
 // sseEvent is one server-sent event read from the console's stream.
@@ -245,4 +246,53 @@ func browserPath(t *testing.T) string {
 	}
 	t.Log("chromium is not installed: the browser part of this test is skipped (apt-get install -y chromium)")
 	return ""
+}
+
+// TestDemoFollowsAnother: a daemon with a follow section follows another
+// daemon's vehicle through that daemon's broker: its fleet stream shows the
+// vehicle with values, and /metrics has the follower's health.
+func TestDemoFollowsAnother(t *testing.T) {
+	ctx, cancel := context.WithCancel(context.Background())
+	defer cancel()
+	_, mqttA, doneA := startDemo(t, ctx, 4, nil)
+	httpB, _, doneB := startDemo(t, ctx, 4, func(c *config.Config) {
+		c.Vehicle = "workshop-pc"
+		c.Follow.Broker = "tcp://" + mqttA
+	})
+	sctx, scancel := context.WithCancel(ctx)
+	defer scancel()
+	stream := readSSE(sctx, t, "http://"+httpB+"/console/fleet")
+	timeout := time.After(30 * time.Second)
+	for found := false; !found; {
+		select {
+		case e := <-stream:
+			var m struct {
+				Following bool
+				Vehicles  []struct {
+					Name, State string
+					Values      []struct{ Name, X, U string }
+				}
+			}
+			json.Unmarshal(e.Data, &m)
+			for _, v := range m.Vehicles {
+				if v.Name == "workshop-pc" {
+					t.Errorf("the follower shows its own vehicle")
+				}
+				found = found || (m.Following && v.Name == "brackenfell-rs" && v.State == "online" && len(v.Values) > 3)
+			}
+		case <-timeout:
+			t.Fatal("the demo vehicle never showed on the other daemon's fleet stream")
+		}
+	}
+	fams, _ := scrape(t, httpB)
+	if f := fams["plenum_fleet_up"]; f == nil || f.Metric[0].GetGauge().GetValue() != 1 {
+		t.Errorf("plenum_fleet_up: %v", f)
+	}
+	scancel()
+	cancel()
+	for _, d := range []<-chan error{doneA, doneB} {
+		if err := <-d; err != nil {
+			t.Errorf("daemon returned %v", err)
+		}
+	}
 }

@@ -6,7 +6,6 @@ import (
 	"fmt"
 	"io"
 	"log/slog"
-	"net"
 	"net/http"
 	"path/filepath"
 	"strings"
@@ -17,8 +16,9 @@ import (
 	"github.com/plenum-engine/plenum/pipeline/broker"
 	"github.com/plenum-engine/plenum/pipeline/console"
 	"github.com/plenum-engine/plenum/pipeline/derived"
-	"github.com/plenum-engine/plenum/pipeline/display"
 	"github.com/plenum-engine/plenum/pipeline/eventlog"
+	"github.com/plenum-engine/plenum/pipeline/fleet"
+	"github.com/plenum-engine/plenum/pipeline/httpserve"
 	"github.com/plenum-engine/plenum/pipeline/mqttpub"
 	"github.com/plenum-engine/plenum/pipeline/promexport"
 	"github.com/plenum-engine/plenum/pipeline/record"
@@ -39,11 +39,13 @@ type daemon struct {
 	pub     *mqttpub.Publisher // live values, events and summaries
 	pusher  *tsdbpush.Pusher   // nil without record.push
 	brk     *broker.Broker     // nil with an external broker
+	follow  *fleet.Follower    // nil unless following other vehicles
 	evm     *promexport.Events
 	evlog   *eventlog.Events
 	con     *console.Server
 	mux     *http.ServeMux
-	closers []func() // closed in reverse order
+	web     *httpserve.Server // the HTTP listener, not yet bound
+	closers []func()          // closed in reverse order
 }
 
 // close closes what build opened, in reverse order.
@@ -162,17 +164,31 @@ func build(ctx context.Context, cfg *config.Config, log *slog.Logger, open bool)
 	}
 	// The live console: its stream subscribes to the pipeline; values are
 	// shown in the configured units for people.
-	units, _ := cfg.Display.Units() // checked with the configuration
-	people, err := display.New(display.Config{Units: units, Fuel: cfg.Engine.Fuel})
+	ccfg, err := cfg.Console(log)
 	if err != nil {
-		return nil, cfg.At(err.Error(), "engine", "fuel")
+		return nil, err
 	}
-	ccfg := console.Config{Vehicle: cfg.Vehicle, Logger: log, Formatter: console.People{Formatter: people}}
 	if d.rr != nil {
 		ccfg.CurrentRun, ccfg.Controls = d.rr.Current, d.rr.Controls()
 	}
+	// Following other vehicles, for the wall view.
+	if fc, ok, err := cfg.Fleet(log); err != nil {
+		return nil, err
+	} else if ok {
+		if d.follow, err = fleet.New(fc); err != nil {
+			return nil, cfg.At(err.Error(), "follow")
+		}
+		ccfg.Fleet = d.follow
+	}
 	d.con = console.New(ccfg, d.p)
 	d.mux.Handle("/console/", d.con.Handler())
+	hc, err := cfg.HTTPServer()
+	if err != nil {
+		return nil, err
+	}
+	if d.web, err = httpserve.New(hc, d.mux); err != nil {
+		return nil, cfg.At(err.Error(), "http")
+	}
 	return d, d.serveMetrics()
 }
 
@@ -188,6 +204,9 @@ func (d *daemon) serveMetrics() error {
 	}
 	if d.brk != nil {
 		parts = append(parts, d.brk)
+	}
+	if d.follow != nil {
+		parts = append(parts, d.follow)
 	}
 	for _, s := range d.srcs {
 		if s.health != nil {
@@ -218,11 +237,7 @@ func (d *daemon) serveMetrics() error {
 	if ve := d.set.VETableHandler(); ve != nil {
 		d.mux.Handle("/ve-table.csv", ve)
 	}
-	d.mux.HandleFunc("/", func(w http.ResponseWriter, r *http.Request) {
-		if r.URL.Path != "/" {
-			http.NotFound(w, r)
-			return
-		}
+	d.mux.HandleFunc("/{$}", func(w http.ResponseWriter, r *http.Request) { // "/" alone; other paths 404
 		fmt.Fprintf(w, "plenum %s for %s\n/console/  live console (driver, cell, wall)\n/metrics  Prometheus exposition\n\n%s\n", version, d.cfg.Vehicle, Safety)
 	})
 	return nil
@@ -253,23 +268,21 @@ func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *s
 			log.Warn("turbo state not saved", "err", err)
 		}
 	}()
-	ln, err := net.Listen("tcp", cfg.HTTP.Listen)
-	if err != nil {
+	if err := d.web.Listen(); err != nil {
 		return config.ListenProblem(fmt.Errorf("http listen %s: %w", cfg.HTTP.Listen, err), "http.listen", cfg.HTTP.Listen)
 	}
-	srv := &http.Server{Handler: d.mux, ReadHeaderTimeout: 5 * time.Second}
 	if d.rr != nil {
 		id, err := d.rr.StartUnlessManual()
 		if err != nil {
-			ln.Close()
+			d.web.Close()
 			return err
 		}
 		if id != "" {
 			fmt.Fprintf(stdout, "recording: %s\n", filepath.Join(cfg.Record.Dir, id))
 		}
 	}
-	fmt.Fprintf(stdout, "console:  http://%s/console/\n", ln.Addr())
-	fmt.Fprintf(stdout, "metrics:  http://%s/metrics\n", ln.Addr())
+	fmt.Fprintf(stdout, "console:  %s/console/\n", d.web.URL())
+	fmt.Fprintf(stdout, "metrics:  %s/metrics\n", d.web.URL())
 	if d.brk != nil {
 		fmt.Fprintf(stdout, "mqtt:     mqtt://%s  (subscribe to %s/%s/#, read-only)\n", d.brk.Addr(), cfg.MQTT.Prefix, cfg.Vehicle)
 	} else {
@@ -280,7 +293,7 @@ func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *s
 	// reverse. The recorder stops before the pusher (its last lines go into
 	// the backlog) and the publisher after both (it publishes the summary).
 	st := []stages.Stage{
-		{{Name: "http", Run: func(ctx context.Context) error { return stages.ServeHTTP(ctx, srv, ln) }}},
+		{{Name: "http", Run: d.web.Run}},
 		{{Name: "mqtt", Run: func(ctx context.Context) error {
 			if err := d.pub.Run(ctx); err != nil {
 				// Recording and metrics go on without MQTT.
@@ -289,6 +302,9 @@ func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *s
 			}
 			return nil
 		}}, {Name: "event metrics", Run: d.evm.Run}, {Name: "event log", Run: d.evlog.Run}, {Name: "console", Run: d.con.Run}},
+	}
+	if d.follow != nil {
+		st[1] = append(st[1], stages.Part{Name: "follow", Run: d.follow.Run})
 	}
 	if d.pusher != nil {
 		st = append(st, stages.Stage{{Name: "push", Run: d.pusher.Run}})

@@ -46,7 +46,7 @@ func (s *syncBuffer) String() string {
 	return s.b.String()
 }
 
-var urlRE = regexp.MustCompile(`metrics:\s+http://(\S+)/metrics`)
+var urlRE = regexp.MustCompile(`metrics:\s+https?://(\S+)/metrics`)
 var mqttRE = regexp.MustCompile(`mqtt:\s+mqtt://(\S+)\s`)
 
 // startDemo runs the demo daemon on free ports at the given time scale and

@@ -8,6 +8,7 @@ import (
 	"strings"
 	"time"
 
+	"github.com/plenum-engine/plenum/cmd/plenum/config"
 	"github.com/plenum-engine/plenum/drivers/can"
 	"github.com/plenum-engine/plenum/drivers/obd"
 	"github.com/plenum-engine/plenum/drivers/obdcan"
@@ -70,7 +71,7 @@ func cmdProbe(ctx context.Context, args []string, stdout io.Writer) error {
 		}
 		fmt.Fprintf(stdout, "%-10s %-18s %-9s %-9v %s\n", e.Addr, orDash(e.VIN), e.MedianResponseTime().Round(100*time.Microsecond), e.MultiPID, strings.Join(ps, " "))
 	}
-	writeProbeSnippet(stdout, *busName, *useSim, *format29)
+	config.WriteCANStart(stdout, *busName, *useSim, *format29)
 	for _, p := range ecus[0].DataPIDs() {
 		obd.PIDChannels(p, func(ci obd.ChannelIndex) {
 			c, _, _ := obd.StandardChannel(ci)
@@ -90,22 +91,4 @@ func orDash(s string) string {
 		return "-"
 	}
 	return s
-}
-
-// writeProbeSnippet writes the head of a whole configuration that `check`
-// accepts and `run` starts: with -sim as it is, for a real bus once the
-// vehicle and engine lines are the car's. The channels follow.
-func writeProbeSnippet(w io.Writer, busName string, useSim, format29 bool) {
-	format := "11bit"
-	if format29 {
-		format = "29bit"
-	}
-	fmt.Fprintf(w, "\n# A configuration to start from (plenum check -config FILE, then plenum run -config FILE).\n")
-	if useSim {
-		fmt.Fprintf(w, "vehicle: probe-sim\nengine:\n  displacement_l: 1.998 # the simulated engine's\n  volumetric_efficiency: 0.9\nsimulator: {} # the engine model the simulated ECU answers from\n")
-		busName = "sim"
-	} else {
-		fmt.Fprintf(w, "vehicle: my-car # rename: one topic segment\nengine:\n  displacement_l: 2.0 # give your engine's\n  volumetric_efficiency: 0.85 # or a ve_table\n")
-	}
-	fmt.Fprintf(w, "can:\n  - name: ecu\n    bus: %s\n    format: %s\n    channels:\n", busName, format)
 }

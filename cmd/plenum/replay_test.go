@@ -9,8 +9,6 @@ import (
 	"strconv"
 	"strings"
 	"testing"
-
-	"github.com/plenum-engine/plenum/pipeline/plot"
 )
 
 // valueOf finds the last recorded value of a channel in replay output.
@@ -105,27 +103,6 @@ func TestPlotWritesPNGAndSVG(t *testing.T) {
 	var o, e bytes.Buffer
 	if code := run([]string{"plot", "-in", "testdata/short-run.lp", "-out", filepath.Join(dir, "x.gif")}, &o, &e); code != 2 {
 		t.Fatalf("plot to .gif exited %d, want 2", code)
-	}
-}
-
-// Plot axes name each channel's canonical unit: standard channels from
-// their definition, derived ones from the table.
-func TestUnitLabel(t *testing.T) {
-	cases := []struct{ channel, want string }{
-		{"engine_speed", "rpm"},
-		{"manifold_pressure", "pascals"},
-		{"dyno_torque", "newton meters"},
-		{"gear", ""},
-		{"corrected_power", "watts"},
-		{"air_mass_flow", "grams per second"},
-		{"turbo_thermal_state", "celsius"},
-		{"lambda", "ratio"},
-		{"no_such_channel", ""},
-	}
-	for _, c := range cases {
-		if got := plot.CatalogueUnit(c.channel); got != c.want {
-			t.Errorf("plot.CatalogueUnit(%q) = %q, want %q", c.channel, got, c.want)
-		}
 	}
 }
 

@@ -3,8 +3,12 @@ package console
 import (
 	"encoding/json"
 	"slices"
+	"strconv"
+	"strings"
 	"testing"
 	"time"
+
+	"github.com/chromedp/chromedp"
 
 	"github.com/plenum-engine/plenum/pipeline"
 )
@@ -86,4 +90,75 @@ func BenchmarkSampleToStream(b *testing.B) {
 			b.ReportMetric(float64(len(delays))/float64(b.N), "sent/sample")
 		})
 	}
+}
+
+// BenchmarkWarningToStream measures the delay from a warning event emitted
+// into the running pipeline to its "warning" message read from the stream
+// by an SSE client over HTTP, as p50 and p99 in milliseconds.
+//
+// go test -run '^$' -bench WarningToStream ./pipeline/console/
+func BenchmarkWarningToStream(b *testing.B) {
+	r := newRig(b, Config{QueueSize: 1 << 14}, false)
+	c := r.connect()
+	c.wait(b, "snapshot", 1)
+	delays := make([]float64, 0, b.N)
+	b.ResetTimer()
+	for i := range b.N {
+		name := "bench_rule_" + strconv.Itoa(i)
+		at := time.Now()
+		r.p.Emit(pipeline.Event{Kind: "warning_raised", Name: name, Start: at, End: at, Tags: map[string]string{"severity": "warning"}})
+		for m := range c.got {
+			if m.Event == "warning" && strings.Contains(string(m.Data), `"`+name+`"`) {
+				delays = append(delays, float64(m.At.Sub(at))/float64(time.Millisecond))
+				break
+			}
+		}
+		r.p.Emit(pipeline.Event{Kind: "warning_cleared", Name: name, Start: at, End: time.Now()})
+	}
+	b.StopTimer()
+	reportQuantiles(b, delays)
+}
+
+// BenchmarkWarningToBanner measures the delay from a warning event emitted
+// into the running pipeline to its banner on the driver view in headless
+// Chromium (the page notes, by its own clock on the same machine, when the
+// banner's element first appears), as p50 and p99 in milliseconds; each
+// warning is cleared and gone from the page before the next.
+//
+// go test -run '^$' -bench WarningToBanner -benchtime 50x ./pipeline/console/
+func BenchmarkWarningToBanner(b *testing.B) {
+	r := newRig(b, Config{}, false)
+	f := r.feed()
+	defer f.halt()
+	pg := newPage(b, 390, 844)
+	pg.do(chromedp.Navigate(r.http.URL + "/console/driver"))
+	pg.until("the page is live", `document.querySelector('.fig[data-channel="engine_speed"]')?.dataset.state === "live"`, 10*time.Second)
+	pg.do(chromedp.Evaluate[chromedp.Void](`window.shownAt = {};
+		new MutationObserver(() => {
+			for (const a of document.querySelectorAll('#alarms article[data-rule]')) window.shownAt[a.dataset.rule] ??= Date.now();
+		}).observe(document.getElementById("alarms"), {childList: true, subtree: true, attributes: true})`))
+	delays := make([]float64, 0, b.N)
+	b.ResetTimer()
+	for i := range b.N {
+		name := "bench_rule_" + strconv.Itoa(i)
+		at := time.Now()
+		r.p.Emit(pipeline.Event{Kind: "warning_raised", Name: name, Start: at, End: at,
+			Tags: map[string]string{"severity": "warning"}, Fields: map[string]float64{"value": 1, "limit": 0.5}})
+		shown, err := chromedp.Run(pg.ctx, chromedp.Poll[int64](`window.shownAt["`+name+`"]`, chromedp.WithPollingTimeout(5*time.Second), chromedp.WithPollingInterval(5*time.Millisecond)))
+		if err != nil {
+			b.Fatalf("warning %s never shown: %v", name, err)
+		}
+		delays = append(delays, float64(time.UnixMilli(shown).Sub(at))/float64(time.Millisecond))
+		r.p.Emit(pipeline.Event{Kind: "warning_cleared", Name: name, Start: at, End: time.Now()})
+		pg.until("the banner goes", `document.querySelector('#alarms article') === null`, 5*time.Second)
+	}
+	b.StopTimer()
+	reportQuantiles(b, delays)
+}
+
+func reportQuantiles(b *testing.B, delays []float64) {
+	slices.Sort(delays)
+	q := func(p float64) float64 { return delays[min(len(delays)-1, int(p*float64(len(delays))))] }
+	b.ReportMetric(q(0.5), "p50-ms")
+	b.ReportMetric(q(0.99), "p99-ms")
 }

@@ -22,7 +22,7 @@ import (
 // PLENUM_CONSOLE_SHOTS when set (a directory outside the repository), to be
 // looked at by a person.
 
-func chromiumPath(t *testing.T) string {
+func chromiumPath(t testing.TB) string {
 	t.Helper()
 	for _, n := range []string{"chromium", "chromium-browser", "google-chrome"} {
 		if p, err := exec.LookPath(n); err == nil {
@@ -38,14 +38,14 @@ func chromiumPath(t *testing.T) string {
 
 // page is one headless browser tab and the console messages it wrote.
 type page struct {
-	t    *testing.T
+	t    testing.TB
 	ctx  context.Context
 	mu   sync.Mutex
 	msgs []string
 	dir  string
 }
 
-func newPage(t *testing.T, w, h int) *page {
+func newPage(t testing.TB, w, h int) *page {
 	t.Helper()
 	exe := chromiumPath(t)
 	opts := append(chromedp.DefaultExecAllocatorOptions[:], chromedp.ExecPath(exe), chromedp.NoSandbox,

@@ -68,6 +68,16 @@ type Formatter interface {
 	Format(ch pipeline.Channel, v float64) (text, unit string)
 }
 
+// Overrider is a Formatter that takes a browser's unit choices: units is
+// the compact form of pipeline/display ("pressure=bar,power=hp_mech").
+type Overrider interface {
+	Override(units string) (Formatter, error)
+}
+
+// UnitsParam is the streams' query parameter with a browser's unit
+// choices, e.g. /console/stream?units=pressure%3Dbar%2Cpower%3Dhp_mech.
+const UnitsParam = "units"
+
 // Pipeline is what the console needs of the pipeline.
 type Pipeline interface {
 	Registry() *pipeline.Registry
@@ -100,6 +110,9 @@ type Config struct {
 	// Controls tells the page whether control commands are enabled at all
 	// (a control token is configured).
 	Controls bool
+	// Fleet is the follower of other vehicles whose tiles the wall view
+	// shows beside this vehicle's (optional).
+	Fleet Fleet
 	// Clock is the console's time (default the system clock).
 	Clock clock.Clock
 	// Logger logs disconnections (default slog.Default()).
@@ -137,18 +150,20 @@ var assets embed.FS
 // Server is the console: the stream's hub and the HTTP handler. Build it
 // with New, serve Handler, and Run it for the stream's lifetime.
 type Server struct {
-	cfg Config
-	hub *hub
+	cfg  Config
+	hub  *hub
+	done chan struct{} // closed when Run returns
 }
 
 // New subscribes to p and returns the console.
 func New(cfg Config, p Pipeline) *Server {
 	cfg.defaults()
-	return &Server{cfg: cfg, hub: newHub(cfg, p)}
+	return &Server{cfg: cfg, hub: newHub(cfg, p), done: make(chan struct{})}
 }
 
 // Run feeds the stream until ctx ends, then disconnects every browser.
 func (s *Server) Run(ctx context.Context) error {
+	defer close(s.done)
 	s.hub.loop(ctx.Done())
 	return nil
 }
@@ -169,13 +184,21 @@ var views = map[string]string{
 }
 
 // Handler serves /console/ (an index of the views), /console/driver,
-// /console/cell, /console/wall, /console/static/… and /console/stream.
+// /console/cell, /console/wall, /console/static/…, /console/stream and
+// /console/fleet (the vehicles followed, for the wall view) and
+// /console/units (the unit choices a browser may make).
 // Mount it at "/console/".
 func (s *Server) Handler() http.Handler {
 	mux := http.NewServeMux()
 	static, _ := fs.Sub(assets, "assets")
 	mux.Handle("GET /console/static/", http.StripPrefix("/console/static/", noCache(http.FileServerFS(static))))
-	mux.HandleFunc("GET /console/stream", s.hub.serve)
+	mux.HandleFunc("GET /console/stream", func(w http.ResponseWriter, r *http.Request) {
+		if f, ok := s.formatter(w, r); ok {
+			s.hub.serve(w, r, r.URL.Query().Get(UnitsParam), f)
+		}
+	})
+	mux.HandleFunc("GET "+FleetPath, s.serveFleet)
+	mux.HandleFunc("GET "+UnitsPath, s.serveUnits)
 	page := func(file string) http.HandlerFunc {
 		return func(w http.ResponseWriter, r *http.Request) {
 			b, err := assets.ReadFile(file)
@@ -194,6 +217,27 @@ func (s *Server) Handler() http.Handler {
 	}
 	mux.HandleFunc("GET /console/{$}", page("assets/index.html"))
 	return mux
+}
+
+// formatter is the formatter of one browser's stream: the configured
+// units with the browser's override; a bad override is refused with a 400
+// naming the item.
+func (s *Server) formatter(w http.ResponseWriter, r *http.Request) (Formatter, bool) {
+	q := r.URL.Query().Get(UnitsParam)
+	if q == "" {
+		return s.cfg.Formatter, true
+	}
+	o, ok := s.cfg.Formatter.(Overrider)
+	if !ok {
+		http.Error(w, "units: this console's units cannot be overridden", http.StatusBadRequest)
+		return nil, false
+	}
+	f, err := o.Override(q)
+	if err != nil {
+		http.Error(w, "units: "+err.Error(), http.StatusBadRequest)
+		return nil, false
+	}
+	return f, true
 }
 
 func noCache(h http.Handler) http.Handler {

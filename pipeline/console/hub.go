@@ -41,10 +41,12 @@ type hub struct {
 	samples   []pipeline.Sample
 	events    []pipeline.Event
 	out       []valueJSON
+	ids       []int // the channels a flush sends
 	staleOut  []int
 
 	mu       sync.Mutex
 	clients  map[*client]struct{}
+	views    map[string]*view // by unit override ("" the configured units)
 	seq      uint64
 	warnings map[string]eventJSON // active, by rule name
 	order    []string             // active warnings in the order raised
@@ -64,6 +66,15 @@ type hub struct {
 type client struct {
 	q    chan []byte
 	gone chan struct{}
+	view *view
+}
+
+// view is the browsers that read values in the same units: their
+// formatter, how many they are, and the frame of the current flush.
+type view struct {
+	f     Formatter
+	n     int
+	frame []byte
 }
 
 func newHub(cfg Config, p Pipeline) *hub {
@@ -75,7 +86,7 @@ func newHub(cfg Config, p Pipeline) *hub {
 		interval: iv, tick: max(iv/4, time.Millisecond),
 		pending: make([]bool, n), latest: make([]pipeline.Sample, n), has: make([]bool, n),
 		lastSent: make([]time.Time, n), staleSent: make([]bool, n),
-		clients: map[*client]struct{}{}, warnings: map[string]eventJSON{},
+		clients: map[*client]struct{}{}, views: map[string]*view{}, warnings: map[string]eventJSON{},
 	}
 }
 
@@ -141,9 +152,9 @@ func ms(t time.Time) int64 {
 	return t.UnixMilli()
 }
 
-func (h *hub) value(s pipeline.Sample, stale bool) valueJSON {
+func (h *hub) value(f Formatter, s pipeline.Sample, stale bool) valueJSON {
 	ch := h.chans[s.Channel]
-	text, unit := h.cfg.Formatter.Format(ch, s.Value)
+	text, unit := f.Format(ch, s.Value)
 	v := valueJSON{C: int(s.Channel), X: text, U: unit, Q: s.Quality.String(), T: ms(s.Time), S: stale}
 	if !math.IsNaN(s.Value) && !math.IsInf(s.Value, 0) {
 		x := s.Value
@@ -208,24 +219,42 @@ func (h *hub) take(now time.Time) {
 }
 
 // flush sends, in one message, every pending value whose channel's last
-// send is at least one interval old.
+// send is at least one interval old: one encoding per view (unit choice),
+// the same message id for all.
 func (h *hub) flush(now time.Time) {
-	h.out = h.out[:0]
-	encode := h.nclients.Load() > 0 // with nobody watching, keep the state only
+	h.ids = h.ids[:0]
 	for id, p := range h.pending {
 		if !p || now.Sub(h.lastSent[id]) < h.interval {
 			continue
 		}
 		h.pending[id], h.lastSent[id] = false, now
-		if encode {
-			h.out = append(h.out, h.value(h.latest[id], false))
-		}
+		h.ids = append(h.ids, id)
 	}
-	if len(h.out) > 0 {
-		h.broadcast("values", struct {
+	if len(h.ids) == 0 || h.nclients.Load() == 0 { // with nobody watching, keep the state only
+		return
+	}
+	h.mu.Lock()
+	defer h.mu.Unlock()
+	if len(h.clients) == 0 {
+		return
+	}
+	h.seq++
+	for _, v := range h.views {
+		h.out = h.out[:0]
+		for _, id := range h.ids {
+			h.out = append(h.out, h.value(v.f, h.latest[id], false))
+		}
+		v.frame = encodeFrame(h.seq, "values", struct {
 			T int64       `json:"t"`
 			V []valueJSON `json:"v"`
 		}{ms(now), h.out})
+	}
+	for c := range h.clients {
+		select {
+		case c.q <- c.view.frame:
+		default:
+			h.dropLocked(c)
+		}
 	}
 }
 
@@ -322,20 +351,37 @@ func (h *hub) broadcastLocked(event string, v any) {
 }
 
 func (h *hub) dropLocked(c *client) {
-	delete(h.clients, c)
-	h.nclients.Store(int32(len(h.clients)))
-	close(c.gone)
+	h.removeLocked(c)
 	h.droppedClients.Add(1)
 	h.droppedMessages.Add(uint64(1 + len(c.q)))
 	h.cfg.Logger.Warn("console: a browser fell behind the live stream and was disconnected; it will reconnect", "queue", cap(c.q))
 }
 
+// removeLocked takes c out of the clients and its view.
+func (h *hub) removeLocked(c *client) {
+	delete(h.clients, c)
+	h.nclients.Store(int32(len(h.clients)))
+	close(c.gone)
+	for k, v := range h.views {
+		if v == c.view {
+			if v.n--; v.n == 0 {
+				delete(h.views, k)
+			}
+		}
+	}
+}
+
 // frameLocked encodes one server-sent event with the next id.
 func (h *hub) frameLocked(event string, v any) []byte {
 	h.seq++
+	return encodeFrame(h.seq, event, v)
+}
+
+// encodeFrame encodes one server-sent event.
+func encodeFrame(id uint64, event string, v any) []byte {
 	var b bytes.Buffer
 	b.WriteString("id: ")
-	b.WriteString(strconv.FormatUint(h.seq, 10))
+	b.WriteString(strconv.FormatUint(id, 10))
 	b.WriteString("\nevent: ")
 	b.WriteString(event)
 	b.WriteString("\ndata: ")
@@ -346,9 +392,10 @@ func (h *hub) frameLocked(event string, v any) []byte {
 	return b.Bytes()
 }
 
-// join adds a browser, its queue starting with a snapshot; nil once the
-// hub has stopped.
-func (h *hub) join() *client {
+// join adds a browser reading values with f (the formatter of the unit
+// override key, "" for the configured units), its queue starting with a
+// snapshot; nil once the hub has stopped.
+func (h *hub) join(key string, f Formatter) *client {
 	now := h.cfg.Clock.Now()
 	vals := h.store.Snapshot(nil)
 	h.mu.Lock()
@@ -370,18 +417,24 @@ func (h *hub) join() *client {
 		snap.Run = h.cfg.CurrentRun()
 	}
 	for id, ch := range h.chans {
-		_, unit := h.cfg.Formatter.Format(ch, 0)
+		_, unit := f.Format(ch, 0)
 		snap.Channels[id] = channelJSON{ID: id, Name: ch.Name, Quantity: ch.Quantity, Unit: unit, Canonical: string(ch.Unit),
 			Origin: ch.Origin.String(), MaxAgeMS: ch.Age().Milliseconds(), Description: ch.Description}
 		if id < len(vals) && vals[id].Fresh(now, ch.Age()) {
 			v := vals[id]
-			snap.Values = append(snap.Values, h.value(pipeline.Sample{Channel: pipeline.ChannelID(id), Value: v.Value, Time: v.Time, Quality: v.Quality}, false))
+			snap.Values = append(snap.Values, h.value(f, pipeline.Sample{Channel: pipeline.ChannelID(id), Value: v.Value, Time: v.Time, Quality: v.Quality}, false))
 		}
 	}
 	for _, n := range h.order {
 		snap.Warnings = append(snap.Warnings, h.warnings[n])
 	}
-	c := &client{q: make(chan []byte, h.cfg.QueueSize), gone: make(chan struct{})}
+	v := h.views[key]
+	if v == nil {
+		v = &view{f: f}
+		h.views[key] = v
+	}
+	v.n++
+	c := &client{q: make(chan []byte, h.cfg.QueueSize), gone: make(chan struct{}), view: v}
 	c.q <- h.frameLocked("snapshot", snap)
 	h.clients[c] = struct{}{}
 	h.nclients.Store(int32(len(h.clients)))
@@ -391,9 +444,7 @@ func (h *hub) join() *client {
 func (h *hub) leave(c *client) {
 	h.mu.Lock()
 	if _, ok := h.clients[c]; ok {
-		delete(h.clients, c)
-		h.nclients.Store(int32(len(h.clients)))
-		close(c.gone)
+		h.removeLocked(c)
 	}
 	h.mu.Unlock()
 }
@@ -404,10 +455,8 @@ func (h *hub) stop() {
 	h.mu.Lock()
 	h.stopped = true
 	for c := range h.clients {
-		delete(h.clients, c)
-		close(c.gone)
+		h.removeLocked(c)
 	}
-	h.nclients.Store(0)
 	h.mu.Unlock()
 }
 
@@ -428,8 +477,8 @@ func (h *hub) report() pipeline.HealthReport {
 
 // serve is the stream's handler: the snapshot, then every message queued
 // for this browser, until it goes, falls behind or the hub stops.
-func (h *hub) serve(w http.ResponseWriter, r *http.Request) {
-	c := h.join()
+func (h *hub) serve(w http.ResponseWriter, r *http.Request, key string, f Formatter) {
+	c := h.join(key, f)
 	if c == nil {
 		http.Error(w, "the console is stopping", http.StatusServiceUnavailable)
 		return

@@ -32,7 +32,7 @@ type rig struct {
 	pdone chan struct{}
 }
 
-var rigChannels = []string{"engine_speed", "oil_temp", "boost_pressure", "coolant_temp", "turbo_warmup_warning", "cooldown_idle_remaining"}
+var rigChannels = []string{"engine_speed", "oil_temp", "boost_pressure", "coolant_temp", "turbo_warmup_warning", "cooldown_idle_remaining", "brake_power"}
 
 func newRig(t testing.TB, cfg Config, manual bool) *rig {
 	t.Helper()
@@ -137,7 +137,13 @@ type sseClient struct {
 
 func (r *rig) connect() *sseClient {
 	r.t.Helper()
-	resp, err := http.Get(r.http.URL + "/console/stream")
+	return r.connectTo("/console/stream")
+}
+
+// connectTo reads the stream at path (with its query).
+func (r *rig) connectTo(path string) *sseClient {
+	r.t.Helper()
+	resp, err := http.Get(r.http.URL + path)
 	if err != nil {
 		r.t.Fatal(err)
 	}
@@ -359,7 +365,7 @@ func TestEventsImmediate(t *testing.T) {
 // counted once its queue is full; the pipeline and the other browsers go on.
 func TestSlowClientDropped(t *testing.T) {
 	r := newRig(t, Config{QueueSize: 4}, true)
-	slow := r.srv.hub.join() // joined, never read: its queue holds the snapshot
+	slow := r.srv.hub.join("", r.srv.cfg.Formatter) // joined, never read: its queue holds the snapshot
 	fast := r.connect()
 	fast.wait(t, "snapshot", 1)
 	if g := r.srv.Report().Gauges[0]; g.Name != "clients" || g.Value != 2 {

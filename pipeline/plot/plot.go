@@ -20,8 +20,6 @@ import (
 	"gonum.org/v1/plot/vg/vgimg"
 	"gonum.org/v1/plot/vg/vgsvg"
 
-	"github.com/plenum-engine/plenum/pipeline"
-	"github.com/plenum-engine/plenum/pipeline/display"
 	"github.com/plenum-engine/plenum/pipeline/record"
 )
 
@@ -351,29 +349,4 @@ func (c Config) Align(label string, rec record.Recording) Series {
 		s.pulls[name] = kept
 	}
 	return s
-}
-
-// CatalogueUnit names a channel's canonical unit from the channel catalogue,
-// for an axis label ("" when it has none or is unknown).
-func CatalogueUnit(ch string) string {
-	if c, ok := pipeline.Catalogued(ch); ok && c.Unit != pipeline.None {
-		return strings.ReplaceAll(string(c.Unit), "_", " ")
-	}
-	return ""
-}
-
-// DisplayScale is Config.Display for the display-units layer's choices f:
-// a catalogued channel is drawn as the display layer shows it to a person,
-// its unit symbol and conversion; a channel the catalogue lacks is left to
-// Config.Unit. Pressures are drawn as measured (an axis has no barometric
-// pressure to shift by).
-func DisplayScale(f display.Formatter) func(string) (Scale, bool) {
-	return func(ch string) (Scale, bool) {
-		c, ok := pipeline.Catalogued(ch)
-		if !ok {
-			return Scale{}, false
-		}
-		s := f.ScaleOf(c)
-		return Scale{Unit: s.Unit, Factor: s.Factor, Offset: s.Offset}, true
-	}
 }

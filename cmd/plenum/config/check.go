@@ -21,6 +21,7 @@ import (
 
 	"github.com/plenum-engine/plenum/pipeline"
 	"github.com/plenum-engine/plenum/pipeline/display"
+	"github.com/plenum-engine/plenum/pipeline/httpserve"
 )
 
 var nameRE = regexp.MustCompile(`^[a-z][a-z0-9_]*$`)
@@ -281,6 +282,7 @@ func (cfg *Config) check(file string, root *yaml.Node) Errors {
 	if httpErr != nil {
 		c.fail("must be host:port", "http", "listen")
 	}
+	checkHTTP(c, cfg.HTTP, httpErr == nil)
 	if cfg.MQTT.Broker == "embedded" && mqttErr == nil && httpErr == nil && sameListener(cfg.MQTT.Listen, cfg.HTTP.Listen) {
 		if written(c.root, "http", "listen") || !written(c.root, "mqtt", "listen") {
 			c.fail(fmt.Sprintf("is %s, the address of the embedded broker (mqtt.listen) too: give each listener a port of its own", cfg.HTTP.Listen), "http", "listen")
@@ -439,6 +441,32 @@ func brokerURL(s string) (ok, tls bool) {
 		return true, true
 	}
 	return false, false
+}
+
+// checkHTTP checks the TLS files and users of the http section.
+func checkHTTP(c *checker, h HTTP, addrOK bool) {
+	hc := httpserve.Config{Addr: h.Listen, CertFile: h.TLSCertFile, KeyFile: h.TLSKeyFile}
+	for _, u := range h.Users {
+		hc.Users = append(hc.Users, httpserve.User{Name: u.Name, Password: "-"})
+	}
+	switch err := hc.Check(); {
+	case err == nil:
+	case errors.Is(err, httpserve.ErrLoginWithoutTLS):
+		if addrOK {
+			c.fail(fmt.Sprintf("are set, but %s is reached over plain HTTP from other machines: %v", h.Listen, err), "http", "users")
+		}
+	case h.TLSCertFile == "" && h.TLSKeyFile != "":
+		c.fail("needs http.tls_cert_file: TLS needs both the certificate and its key", "http", "tls_key_file")
+	case h.TLSKeyFile == "" && h.TLSCertFile != "":
+		c.fail("needs http.tls_key_file: TLS needs both the certificate and its key", "http", "tls_cert_file")
+	default:
+		c.fail(err.Error(), "http", "users")
+	}
+	for i, u := range h.Users {
+		if u.PasswordFile == "" {
+			c.fail("is required: the file holding the user's password", "http", "users", i, "password_file")
+		}
+	}
 }
 
 // checkFollow checks the follow section: the shared broker other vehicles

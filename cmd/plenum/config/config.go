@@ -302,9 +302,21 @@ type MQTTUser struct {
 	Commands     bool   `yaml:"commands"`      // may publish to …/cmd/…
 }
 
-// HTTP configures the metrics listener.
+// HTTP configures the listener of the console, the metrics and the run
+// API: plain HTTP, or TLS with a certificate; with users, a login.
 type HTTP struct {
-	Listen string `yaml:"listen"`
+	Listen      string `yaml:"listen"`
+	TLSCertFile string `yaml:"tls_cert_file"` // PEM certificate with its chain; with tls_key_file: HTTPS
+	TLSKeyFile  string `yaml:"tls_key_file"`
+	// Users must log in (HTTP basic authentication) to every page, the
+	// console's stream and the metrics; over TLS only, or on loopback.
+	Users []HTTPUser `yaml:"users"`
+}
+
+// HTTPUser is one login of the HTTP listener.
+type HTTPUser struct {
+	Name         string `yaml:"name"`
+	PasswordFile string `yaml:"password_file"` // the password is never in the config itself
 }
 
 // Simulator runs the built-in engine simulator as the serial device.

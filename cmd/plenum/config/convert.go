@@ -5,6 +5,7 @@ import (
 	"crypto/x509"
 	"errors"
 	"fmt"
+	"io"
 	"io/fs"
 	"log/slog"
 	"os"
@@ -21,8 +22,11 @@ import (
 	"github.com/plenum-engine/plenum/drivers/serial"
 	"github.com/plenum-engine/plenum/pipeline"
 	"github.com/plenum-engine/plenum/pipeline/broker"
+	"github.com/plenum-engine/plenum/pipeline/console"
 	"github.com/plenum-engine/plenum/pipeline/derived"
+	"github.com/plenum-engine/plenum/pipeline/display"
 	"github.com/plenum-engine/plenum/pipeline/fleet"
+	"github.com/plenum-engine/plenum/pipeline/httpserve"
 	"github.com/plenum-engine/plenum/pipeline/mqttpub"
 	"github.com/plenum-engine/plenum/pipeline/runs"
 	"github.com/plenum-engine/plenum/pipeline/tsdbpush"
@@ -269,6 +273,33 @@ func (c *Config) Fleet(log *slog.Logger) (fc fleet.Config, ok bool, err error) {
 	return fc, true, nil
 }
 
+// Console converts the vehicle, display and engine.fuel settings into the
+// console's Config: values in the configured units for people.
+func (c *Config) Console(log *slog.Logger) (console.Config, error) {
+	units, _ := c.Display.Units() // checked with the configuration
+	people, err := display.New(display.Config{Units: units, Fuel: c.Engine.Fuel})
+	if err != nil {
+		return console.Config{}, c.At(err.Error(), "engine", "fuel")
+	}
+	return console.Config{Vehicle: c.Vehicle, Logger: log, Formatter: console.People{Formatter: people}}, nil
+}
+
+// HTTPServer converts the http section into the listener's Config, with
+// the users' password files read; actions under /api/ keep their control
+// token.
+func (c *Config) HTTPServer() (httpserve.Config, error) {
+	h := c.HTTP
+	hc := httpserve.Config{Addr: h.Listen, CertFile: h.TLSCertFile, KeyFile: h.TLSKeyFile, TokenPaths: []string{"/api/"}}
+	for i, u := range h.Users {
+		pw, err := ReadSecret("http user "+u.Name+": password_file", u.PasswordFile)
+		if err != nil {
+			return hc, c.At(SecretProblem(err), "http", "users", i, "password_file")
+		}
+		hc.Users = append(hc.Users, httpserve.User{Name: u.Name, Password: pw})
+	}
+	return hc, nil
+}
+
 // Publisher converts the mqtt section into the publisher's Config, for an
 // external broker with its password and TLS files read; for the embedded
 // one the caller adds the broker's address and credentials.
@@ -337,6 +368,16 @@ func (c *Config) WithoutAbsentFiles() (*Config, []string) {
 	}
 	for i := range m.Users {
 		leave(&m.Users[i].PasswordFile, fmt.Sprintf("mqtt.users[%d].password_file", i))
+	}
+	cp.HTTP.Users = append([]HTTPUser(nil), c.HTTP.Users...)
+	for i := range cp.HTTP.Users {
+		leave(&cp.HTTP.Users[i].PasswordFile, fmt.Sprintf("http.users[%d].password_file", i))
+	}
+	hcert, hkey := cp.HTTP.TLSCertFile, cp.HTTP.TLSKeyFile
+	leave(&cp.HTTP.TLSCertFile, "http.tls_cert_file")
+	leave(&cp.HTTP.TLSKeyFile, "http.tls_key_file")
+	if cp.HTTP.TLSCertFile != hcert || cp.HTTP.TLSKeyFile != hkey {
+		cp.HTTP.TLSCertFile, cp.HTTP.TLSKeyFile = "", "" // loaded as a pair
 	}
 	leave(&cp.Follow.PasswordFile, "follow.password_file")
 	leave(&cp.Follow.CAFile, "follow.ca_file")
@@ -423,4 +464,22 @@ func (sc Serial) Decoder(i int, reg *pipeline.Registry) (*serial.Decoder, *pipel
 		return nil, nil, fmt.Errorf("serial[%d]: %w", i, err)
 	}
 	return dec, h, nil
+}
+
+// WriteCANStart writes, for `plenum probe`, the head of a whole configuration that `check`
+// accepts and `run` starts: with -sim as it is, for a real bus once the
+// vehicle and engine lines are the car's. The channels follow.
+func WriteCANStart(w io.Writer, busName string, useSim, format29 bool) {
+	format := "11bit"
+	if format29 {
+		format = "29bit"
+	}
+	fmt.Fprintf(w, "\n# A configuration to start from (plenum check -config FILE, then plenum run -config FILE).\n")
+	if useSim {
+		fmt.Fprintf(w, "vehicle: probe-sim\nengine:\n  displacement_l: 1.998 # the simulated engine's\n  volumetric_efficiency: 0.9\nsimulator: {} # the engine model the simulated ECU answers from\n")
+		busName = "sim"
+	} else {
+		fmt.Fprintf(w, "vehicle: my-car # rename: one topic segment\nengine:\n  displacement_l: 2.0 # give your engine's\n  volumetric_efficiency: 0.85 # or a ve_table\n")
+	}
+	fmt.Fprintf(w, "can:\n  - name: ecu\n    bus: %s\n    format: %s\n    channels:\n", busName, format)
 }

@@ -27,8 +27,9 @@ const Plenum = (() => {
     }
 
     start() {
-      const es = new EventSource(this.url);
+      const es = new EventSource(streamURL(this.url));
       this.es = es;
+      if (!this.registered) { this.registered = true; restarts.push(() => { this.es.close(); this.start(); }); }
       const on = (name, f) => es.addEventListener(name, (m) => {
         let d;
         try { d = JSON.parse(m.data); } catch (e) { return; }
@@ -42,7 +43,7 @@ const Plenum = (() => {
         this.open = es.readyState === EventSource.OPEN;
         // A refused reconnection (the daemon stopping, a proxy's error page)
         // closes an EventSource for good: start a new one in a moment.
-        if (es.readyState === EventSource.CLOSED && !this.retrying) {
+        if (es.readyState === EventSource.CLOSED && es === this.es && !this.retrying) {
           this.retrying = true;
           setTimeout(() => { this.retrying = false; this.start(); }, 2000);
         }
@@ -221,5 +222,66 @@ const Plenum = (() => {
     return parts.join(" · ");
   }
 
-  return { Live, control, token, keepAwake, severity, pretty, el, ago, connection, tokenBox, fieldsText };
+  // The browser's unit choices (the compact form, "pressure=bar,
+  // power=hp_mech"), kept in localStorage and sent on every stream's URL.
+  const UNITS_KEY = "plenum.units";
+  const restarts = []; // reconnect each stream, with the new units
+  function onUnits(f) { restarts.push(f); }
+  function units() { return localStorage.getItem(UNITS_KEY) || ""; }
+  function streamURL(path) {
+    const u = units();
+    return u ? path + "?units=" + encodeURIComponent(u) : path;
+  }
+
+  // The units panel under the page's header: one choice per quantity, the
+  // configured unit first. A change is kept, and every stream reconnects
+  // with it (a new snapshot in the new units).
+  // A stored choice the daemon refuses is dropped, and the panel says why.
+  async function unitsPanel() {
+    const bar = document.querySelector("header.bar");
+    if (!bar) return;
+    const stored = units();
+    const picked = new Map(stored ? stored.split(",").map((i) => i.split("=")) : []);
+    const summary = el("summary", {}, "Units" + (stored ? ": " + stored.replaceAll(",", ", ") : ": as configured"));
+    const box = el("details", { id: "units", class: "units" }, summary);
+    bar.after(box);
+    let r;
+    try {
+      r = await fetch("/console/units" + (stored ? "?units=" + encodeURIComponent(stored) : ""));
+    } catch (e) { return; }
+    if (r.status === 400) {
+      const why = (await r.text()).trim();
+      localStorage.removeItem(UNITS_KEY);
+      summary.textContent = "Units: as configured";
+      box.append(el("p", { class: "unote" }, "Your saved unit choice was refused and dropped (" + why + ")."));
+      return unitsFill(box, summary, new Map());
+    }
+    if (!r.ok) return;
+    unitsFill(box, summary, picked, (await r.json()).items);
+  }
+  async function unitsFill(box, summary, picked, items) {
+    if (!items) {
+      const r = await fetch("/console/units");
+      if (!r.ok) return;
+      items = (await r.json()).items;
+    }
+    const form = el("div", { class: "unitgrid" });
+    for (const it of items) {
+      const sel = el("select", { name: it.key, "aria-label": pretty(it.key) + " unit" }, el("option", { value: "" }, "as configured"));
+      for (const c of it.choices) sel.append(el("option", { value: c }, c));
+      sel.value = picked.get(it.key) || "";
+      sel.addEventListener("change", () => {
+        const parts = [];
+        for (const s of form.querySelectorAll("select")) if (s.value) parts.push(s.name + "=" + s.value);
+        if (parts.length) localStorage.setItem(UNITS_KEY, parts.join(",")); else localStorage.removeItem(UNITS_KEY);
+        summary.textContent = "Units" + (parts.length ? ": " + parts.join(", ") : ": as configured");
+        for (const f of restarts) f();
+      });
+      form.append(el("label", {}, pretty(it.key), sel));
+    }
+    box.append(form);
+  }
+  document.addEventListener("DOMContentLoaded", unitsPanel);
+
+  return { Live, streamURL, units, onUnits, control, token, keepAwake, severity, pretty, el, ago, connection, tokenBox, fieldsText };
 })();
