@@ -232,6 +232,7 @@ func cmdDemo(ctx context.Context, args []string, stdout io.Writer, log *slog.Log
 	dur := fs.Duration("for", 0, "stop by itself after this long (0: run until interrupted)")
 	scale := fs.Float64("time-scale", 1, fmt.Sprintf("simulated seconds per real second, more than 0 and at most %g", maxTimeScale))
 	recordDir := fs.String("record", "", "record every sample and event in line protocol under this directory")
+	label := fs.String("label", "", "label of the recorded run, e.g. \"baseline\" (with -record)")
 	stateDir := fs.String("state-dir", "", "keep the turbo state and the MQTT outbox in this directory across demos (default: a fresh temporary directory, removed at exit)")
 	if err := parseFlags(fs, args); err != nil {
 		return err
@@ -252,7 +253,7 @@ func cmdDemo(ctx context.Context, args []string, stdout io.Writer, log *slog.Log
 		cfg.Sim = &config.Simulator{}
 	}
 	cfg.Sim.TimeScale = *scale
-	cfg.Record.Dir = *recordDir
+	cfg.Record.Dir, cfg.Record.StartLabel = *recordDir, *label
 	// The demo starts cold: its own turbo state and outbox, never those of
 	// earlier demos or of `run` in the user's cache directory.
 	cfg.StateDir = *stateDir

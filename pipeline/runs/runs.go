@@ -32,6 +32,9 @@ type Config struct {
 	// AutoTrigger starts a run at wide-open throttle with engine speed
 	// rising and ends it once the throttle has been closed for 2 s.
 	AutoTrigger bool
+	// StartLabel labels the run StartUnlessManual starts (the demo's
+	// -label), so that runs recorded one after another can be told apart.
+	StartLabel string
 	// ControlToken enables the run commands of the HTTP API (as a bearer
 	// token) and guards the MQTT commands (as their token key). Empty: the
 	// HTTP commands are off and MQTT commands need no token.
@@ -200,7 +203,7 @@ func (c *Controller) StartUnlessManual() (string, error) {
 	if c.cfg.Manual {
 		return "", nil
 	}
-	return c.Start(StartRequest{By: "start-up"})
+	return c.Start(StartRequest{By: "start-up", Label: c.cfg.StartLabel})
 }
 
 // Start opens a new run and returns its id. It fails when a run is already

@@ -379,3 +379,17 @@ func TestRunAutoTrigger(t *testing.T) {
 		t.Errorf("events %s", k)
 	}
 }
+
+// The run started with the daemon carries Config.StartLabel in run.json.
+func TestStartLabel(t *testing.T) {
+	h := newHarness(t, Config{StartLabel: "baseline"})
+	id, err := h.c.StartUnlessManual()
+	if err != nil || id == "" {
+		t.Fatalf("StartUnlessManual = %q, %v", id, err)
+	}
+	defer h.c.Stop()
+	b, err := os.ReadFile(filepath.Join(h.dir, id, "run.json"))
+	if err != nil || !strings.Contains(string(b), `"label": "baseline"`) {
+		t.Fatalf("run.json %s (%v) lacks the label", b, err)
+	}
+}

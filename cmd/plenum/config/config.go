@@ -72,6 +72,9 @@ type Record struct {
 	// ControlToken is the token itself, read from ControlTokenFile by the
 	// binary (or set by tests); never decoded from the file.
 	ControlToken string `yaml:"-"`
+	// StartLabel labels the run started with the daemon (the demo's -label;
+	// not a configuration key).
+	StartLabel string `yaml:"-"`
 	// Push sends the recorded lines to an InfluxDB-compatible write
 	// endpoint as well; empty URL: off.
 	Push Push `yaml:"push"`

@@ -189,6 +189,7 @@ func (c *Config) Runs() (runs.Config, error) {
 		Manual:       c.Record.Manual || c.Record.AutoTrigger,
 		AutoTrigger:  c.Record.AutoTrigger,
 		ControlToken: tok,
+		StartLabel:   c.Record.StartLabel,
 	}, nil
 }
 
