@@ -304,7 +304,7 @@ func TestBrowserWallAndCell(t *testing.T) {
 	f := r.feed()
 	defer f.halt()
 	now := time.Now()
-	r.p.Emit(pipeline.Event{Kind: "turbo_lag", Name: "pull", Start: now, End: now, Fields: map[string]float64{"lag_s": 0.62, "boost_target_kpa": 80}})
+	r.p.Emit(pipeline.Event{Kind: "turbo_lag", Name: "pull", Start: now, End: now, Fields: map[string]float64{"t90_seconds": 0.62, "boost_final_pascals": 80000}})
 	r.p.Emit(pipeline.Event{Kind: "warning_raised", Name: "coolant_high", Start: now, End: now, Tags: map[string]string{"severity": "warning"}, Fields: map[string]float64{"active": 1}})
 	pg := newPage(t, 1920, 1080)
 	pg.do(chromedp.Navigate(r.http.URL + "/console/wall"))
@@ -316,7 +316,7 @@ func TestBrowserWallAndCell(t *testing.T) {
 	pg.do(chromedp.Navigate(r.http.URL + "/console/cell"))
 	pg.until("every channel is listed", `document.querySelectorAll('#channels tbody tr').length === `+strconv.Itoa(len(rigChannels)), 10*time.Second)
 	pg.until("engine speed is live", `document.querySelector('tr[data-channel="engine_speed"]')?.dataset.state === "live"`, 5*time.Second)
-	pg.until("the lag event is listed", `document.getElementById("lags").textContent.includes("lag s 0.6200")`, 5*time.Second)
+	pg.until("the lag event is listed", `document.getElementById("lags").textContent.includes("t90 0.62 s") && document.getElementById("lags").textContent.includes("boost final 80 kPa")`, 5*time.Second)
 	if !evalAs[bool](pg, `document.getElementById("start").disabled`) {
 		t.Error("run start enabled without a token")
 	}

@@ -6,6 +6,7 @@ import (
 	"math"
 	"net/http"
 	"strconv"
+	"strings"
 	"sync"
 	"sync/atomic"
 	"time"
@@ -121,7 +122,10 @@ type eventJSON struct {
 	End      int64              `json:"end"`
 	Acked    bool               `json:"acked,omitempty"`
 	Fields   map[string]float64 `json:"fields,omitempty"`
-	Tags     map[string]string  `json:"tags,omitempty"`
+	// Text holds the fields for people: the name without its unit, the
+	// value in the configured display units ("boost final": "110 kPa").
+	Text map[string]string `json:"text,omitempty"`
+	Tags map[string]string `json:"tags,omitempty"`
 }
 
 type snapshotJSON struct {
@@ -163,7 +167,7 @@ func (h *hub) value(f Formatter, s pipeline.Sample, stale bool) valueJSON {
 	return v
 }
 
-func toEventJSON(e pipeline.Event) eventJSON {
+func toEventJSON(e pipeline.Event, f Formatter) eventJSON {
 	j := eventJSON{Kind: e.Kind, Name: e.Name, Start: ms(e.Start), End: ms(e.End), Tags: e.Tags}
 	if e.Tags != nil {
 		j.Severity = e.Tags["severity"]
@@ -173,11 +177,37 @@ func toEventJSON(e pipeline.Event) eventJSON {
 			continue
 		}
 		if j.Fields == nil {
-			j.Fields = map[string]float64{}
+			j.Fields, j.Text = map[string]float64{}, map[string]string{}
 		}
 		j.Fields[k] = v
+		if f != nil && k != "active" {
+			name, text := fieldText(f, k, v)
+			j.Text[name] = text
+		}
 	}
 	return j
+}
+
+// fieldText names an event field for people and gives its value in display
+// units, by the unit its name ends in: boost_final_pascals is "boost
+// final", shown as a boost pressure; t90_seconds is "t90" in seconds.
+func fieldText(f Formatter, field string, v float64) (name, text string) {
+	for _, u := range []struct{ suffix, channel string }{
+		{"_pascals", "boost_pressure"}, {"_rpm", "engine_speed"},
+	} {
+		if n, ok := strings.CutSuffix(field, u.suffix); ok {
+			ch, _ := pipeline.Catalogued(u.channel)
+			t, unit := f.Format(ch, v)
+			return strings.ReplaceAll(n, "_", " "), strings.TrimSpace(t + " " + unit)
+		}
+	}
+	if n, ok := strings.CutSuffix(field, "_seconds"); ok {
+		return strings.ReplaceAll(n, "_", " "), strconv.FormatFloat(v, 'f', 2, 64) + " s"
+	}
+	if n, ok := strings.CutSuffix(field, "_ratio"); ok {
+		return strings.ReplaceAll(n, "_", " "), strconv.FormatFloat(100*v, 'f', 1, 64) + " %"
+	}
+	return strings.ReplaceAll(field, "_", " "), strconv.FormatFloat(v, 'g', 4, 64)
 }
 
 // loop is the loop: it drains the subscription, sends what the rate allows,
@@ -284,7 +314,7 @@ func (h *hub) onTick(now time.Time) {
 // event records what a snapshot needs and sends the event at once:
 // warnings as "warning", the rest as "event".
 func (h *hub) event(e pipeline.Event) {
-	j := toEventJSON(e)
+	j := toEventJSON(e, h.cfg.Formatter)
 	kind := "event"
 	h.mu.Lock()
 	switch e.Kind {

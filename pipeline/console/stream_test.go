@@ -483,3 +483,24 @@ func TestPages(t *testing.T) {
 		}
 	}
 }
+
+// Event fields reach people in display units, named without their unit.
+func TestEventFieldText(t *testing.T) {
+	f := People{}
+	for _, tc := range []struct {
+		field      string
+		v          float64
+		name, text string
+	}{
+		{"boost_final_pascals", 109749, "boost final", "110 kPa"},
+		{"engine_speed_rpm", 1998.4, "engine speed", "1998 rpm"},
+		{"t90_seconds", 1.0391, "t90", "1.04 s"},
+		{"overshoot_ratio", 0.003327, "overshoot", "0.3 %"},
+		{"count", 3, "count", "3"},
+	} {
+		name, text := fieldText(f, tc.field, tc.v)
+		if name != tc.name || text != tc.text {
+			t.Errorf("fieldText(%s, %g) = %q, %q; want %q, %q", tc.field, tc.v, name, text, tc.name, tc.text)
+		}
+	}
+}

@@ -211,9 +211,14 @@ const Plenum = (() => {
 
   function fieldsText(e) {
     const parts = [];
-    for (const [k, v] of Object.entries(e.fields || {})) {
-      if (k === "active") continue;
-      parts.push(pretty(k).toLowerCase() + " " + (Math.abs(v) >= 1000 || Number.isInteger(v) ? Math.round(v) : v.toPrecision(4)));
+    if (e.text) {
+      // The server's words and display units for the fields.
+      for (const [k, v] of Object.entries(e.text)) parts.push(k + " " + v);
+    } else {
+      for (const [k, v] of Object.entries(e.fields || {})) {
+        if (k === "active") continue;
+        parts.push(pretty(k).toLowerCase() + " " + (Math.abs(v) >= 1000 || Number.isInteger(v) ? Math.round(v) : v.toPrecision(4)));
+      }
     }
     for (const [k, v] of Object.entries(e.tags || {})) {
       if (k === "severity") continue;
