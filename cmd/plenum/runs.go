@@ -11,13 +11,15 @@ import (
 	"os/user"
 
 	"github.com/plenum-engine/plenum/cmd/plenum/config"
+	"github.com/plenum-engine/plenum/pipeline/runlist"
 	"github.com/plenum-engine/plenum/pipeline/runs"
 )
 
 // cmdRunControl is `plenum run-start` and `plenum run-stop`: they ask a
 // running daemon's local HTTP API, with the control token from
 // PLENUM_CONTROL_TOKEN or -token-file. Only run-start takes a label, notes
-// and conditions. run-start prints {"run": id}, run-stop the run's summary.
+// and conditions. run-start prints {"run": id}, run-stop the run's summary
+// for a person (-json: as the daemon sent it, in SI units).
 func cmdRunControl(verb string, args []string, stdout io.Writer) error {
 	name := "run-" + verb
 	what := "Starts a run in a running daemon and prints its id."
@@ -26,6 +28,8 @@ func cmdRunControl(verb string, args []string, stdout io.Writer) error {
 	}
 	fs := newFlagSet(name, "[flags]", what+"\nThe control token (the daemon's record.control_token_file) comes from\n$PLENUM_CONTROL_TOKEN or -token-file.", stdout)
 	addr, tokenFile := clientFlags(fs)
+	asJSON := fs.Bool("json", false, "print the reply as JSON, in SI units (for scripts)")
+	shown := unitFlags(fs, metric)
 	form := url.Values{}
 	if verb == "start" {
 		for _, f := range []struct{ flag, field, usage string }{
@@ -45,11 +49,16 @@ func cmdRunControl(verb string, args []string, stdout io.Writer) error {
 	if err != nil {
 		return err
 	}
-	var out []byte
+	if rep.Summary != nil && !*asJSON {
+		people, err := shown()
+		if err != nil {
+			return err
+		}
+		return runlist.WriteSummary(stdout, *rep.Summary, people)
+	}
+	out, _ := json.Marshal(map[string]string{"run": rep.Run})
 	if rep.Summary != nil {
 		out = rep.Summary.JSON()
-	} else {
-		out, _ = json.Marshal(map[string]string{"run": rep.Run})
 	}
 	fmt.Fprintf(stdout, "%s\n", out)
 	return nil

@@ -51,7 +51,7 @@ func TestRunStartStopCommands(t *testing.T) {
 	}
 	time.Sleep(1500 * time.Millisecond)
 	out.Reset()
-	if code := run([]string{"run-stop", "-addr", httpAddr}, &out, &errb); code != 0 {
+	if code := run([]string{"run-stop", "-addr", httpAddr, "-json"}, &out, &errb); code != 0 {
 		t.Fatalf("run-stop: %d %s", code, errb.String())
 	}
 	var sum record.Summary
@@ -71,7 +71,7 @@ func TestRunStartStopCommands(t *testing.T) {
 		m.Conditions.TemperatureC == nil || m.Conditions.RelativeHumidity == nil {
 		t.Errorf("run.json (%v): %s", err, meta)
 	}
-	if code := run([]string{"run-stop", "-addr", httpAddr}, &out, &errb); code == 0 {
+	if code := run([]string{"run-stop", "-addr", httpAddr, "-json"}, &out, &errb); code == 0 {
 		t.Fatal("run-stop with no run succeeded")
 	}
 	cancel()
@@ -218,7 +218,7 @@ func TestEnteredConditionsCorrectTheRun(t *testing.T) {
 		time.Sleep(50 * time.Millisecond)
 	}
 	out.Reset()
-	if code := run([]string{"run-stop", "-addr", httpAddr}, &out, &errb); code != 0 {
+	if code := run([]string{"run-stop", "-addr", httpAddr, "-json"}, &out, &errb); code != 0 {
 		t.Fatalf("run-stop: %d %s", code, errb.String())
 	}
 	var sum record.Summary

@@ -1,6 +1,7 @@
 package runlist
 
 import (
+	"bytes"
 	"math"
 	"os"
 	"path/filepath"
@@ -156,5 +157,25 @@ func TestListUnended(t *testing.T) {
 	}
 	if _, err := List(Config{}, Filter{}); err == nil {
 		t.Error("List without a directory succeeded")
+	}
+}
+
+// A stopped run's summary for a person: display units, no float noise.
+func TestWriteSummary(t *testing.T) {
+	p, rpm, tq, trpm, boost := 220749.64, 6594.0, 330.12345, 4266.0, 109749.9
+	s := record.Summary{Run: "r1", Start: time.Unix(0, 0), End: time.Unix(62, 0), Samples: 52488,
+		PeakCorrectedPowerW: &p, PeakPowerRPM: &rpm, PeakTorqueNm: &tq, PeakTorqueRPM: &trpm, PeakBoostPa: &boost,
+		LagEvents: 2, WarningsRaised: 5}
+	var b bytes.Buffer
+	if err := WriteSummary(&b, s, display.Formatter{}); err != nil {
+		t.Fatal(err)
+	}
+	for _, want := range []string{"run r1 stopped: 1 min 02 s, 52488 samples written, 0 lost", "221 kW at 6594 rpm", "330 N·m at 4266 rpm", "110 kPa gauge", "turbo-lag events      2"} {
+		if !strings.Contains(b.String(), want) {
+			t.Errorf("summary lacks %q:\n%s", want, b.String())
+		}
+	}
+	if strings.Contains(b.String(), "220749") || strings.Contains(b.String(), "330.12") {
+		t.Errorf("SI float noise in:\n%s", b.String())
 	}
 }

@@ -273,3 +273,22 @@ func WriteShow(w io.Writer, r Run, f display.Formatter) error {
 	_, err := io.WriteString(w, b.String())
 	return err
 }
+
+// WriteSummary writes a run's summary as its recorder wrote it, for a
+// person: what `plenum run-stop` prints when a run ends.
+func WriteSummary(w io.Writer, s record.Summary, f display.Formatter) error {
+	pk := func(ch string, v, rpm *float64) string {
+		t := ptr(f, ch, v)
+		if v != nil && rpm != nil {
+			t += " at " + value(f, "engine_speed", *rpm)
+		}
+		return t
+	}
+	_, err := fmt.Fprintf(w, "run %s stopped: %s, %d samples written, %d lost\n"+
+		"  peak corrected power  %s\n  peak torque           %s\n  peak boost            %s\n"+
+		"  turbo-lag events      %d\n  warnings raised       %d\n",
+		s.Run, duration(s.End.Sub(s.Start)), s.Samples, s.SamplesLost,
+		pk("corrected_power", s.PeakCorrectedPowerW, s.PeakPowerRPM), pk("dyno_torque", s.PeakTorqueNm, s.PeakTorqueRPM),
+		ptr(f, "boost_pressure", s.PeakBoostPa), s.LagEvents, s.WarningsRaised)
+	return err
+}
