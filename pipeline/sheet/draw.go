@@ -6,7 +6,6 @@ import (
 	"io"
 	"math"
 	"os"
-	"path/filepath"
 	"sort"
 	"strings"
 
@@ -21,27 +20,20 @@ import (
 
 	"github.com/plenum-engine/plenum/pipeline"
 	"github.com/plenum-engine/plenum/pipeline/display"
+	"github.com/plenum-engine/plenum/pipeline/plot"
 )
 
-// Format is an image format.
-type Format string
+// Format is an image format, as pipeline/plot draws them.
+type Format = plot.Format
 
 // The formats Write draws in.
 const (
-	PNG Format = "png"
-	SVG Format = "svg"
+	PNG = plot.PNG
+	SVG = plot.SVG
 )
 
 // FormatOf returns the format a file name's extension asks for.
-func FormatOf(path string) (Format, bool) {
-	switch strings.ToLower(filepath.Ext(path)) {
-	case ".png":
-		return PNG, true
-	case ".svg":
-		return SVG, true
-	}
-	return "", false
-}
+func FormatOf(path string) (Format, bool) { return plot.FormatOf(path) }
 
 // PNGDPI is the PNG's resolution: an A4 landscape sheet 1600 pixels wide.
 const PNGDPI = 137
