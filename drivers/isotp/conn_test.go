@@ -105,27 +105,58 @@ func TestSendHonoursBlockSizeAndPads(t *testing.T) {
 	}
 }
 
-// STmin from the FC spaces the CFs at the receiver by at least that much.
+// STmin from the FC spaces the CFs by at least that much: the sender waits
+// STmin of real time between them. (The gap is read from the sender's own
+// waits: a receiver's timestamps shrink a gap whenever the receiver is late
+// for the frame before it, as on a loaded machine.)
 func TestSendHonoursSTmin(t *testing.T) {
 	b := vbus(t, can.VirtualConfig{BitRate: 500_000})
-	c := newConn(t, b.NewNode(), Config{TxID: 0x7E0, RxID: 0x7E8})
+	clk := &waitingClock{}
+	c := newConn(t, b.NewNode(), Config{TxID: 0x7E0, RxID: 0x7E8, Clock: clk})
 	peer := b.NewNode()
-	go func() { _ = c.Send(context.Background(), payload(6+7*5)) }()
+	errc := make(chan error, 1)
+	go func() { errc <- c.Send(context.Background(), payload(6+7*5)) }()
 	rawRecv(t, peer)
 	rawSend(t, peer, 0x7E8, 0x30, 0, 0x05) // 5 ms
-	last := time.Time{}
+	start := time.Now()
 	for i := 0; i < 5; i++ {
 		rawRecv(t, peer)
-		now := time.Now()
-		if !last.IsZero() && now.Sub(last) < 5*time.Millisecond {
-			t.Fatalf("CF gap %v < STmin 5 ms", now.Sub(last))
+	}
+	if err := <-errc; err != nil {
+		t.Fatal(err)
+	}
+	clk.mu.Lock()
+	defer clk.mu.Unlock()
+	if len(clk.waits) != 4 {
+		t.Fatalf("%d waits between 5 CFs (%v), want 4", len(clk.waits), clk.waits)
+	}
+	for _, w := range clk.waits {
+		if w < 5*time.Millisecond {
+			t.Fatalf("waited %v between CFs, STmin is 5 ms", w)
 		}
-		last = now
+	}
+	if d := time.Since(start); d < 20*time.Millisecond {
+		t.Fatalf("5 CFs in %v, 4 gaps of STmin 5 ms take 20 ms", d)
 	}
 }
 
-// recordingClock records the durations the sender asks to wait and fires
-// short ones (≤ 127 ms, STmin) immediately; long ones (timeouts) run for real.
+// waitingClock is the wall clock, recording the short waits it is asked for
+// (STmin gaps; the long protocol timeouts are left out).
+type waitingClock struct {
+	mu    sync.Mutex
+	waits []time.Duration
+}
+
+func (c *waitingClock) Now() time.Time { return time.Now() }
+func (c *waitingClock) After(d time.Duration) <-chan time.Time {
+	if d <= 127*time.Millisecond {
+		c.mu.Lock()
+		c.waits = append(c.waits, d)
+		c.mu.Unlock()
+	}
+	return time.After(d)
+}
+
 type recordingClock struct {
 	mu    sync.Mutex
 	waits []time.Duration
