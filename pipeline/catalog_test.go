@@ -85,3 +85,19 @@ func TestZeroValuesUsable(t *testing.T) {
 		t.Fatalf("zero Health report %+v", r)
 	}
 }
+
+func TestHealthReportLookups(t *testing.T) {
+	r := HealthReport{Counters: []NamedCount{{"frames", 7}}, Gauges: []NamedValue{{"backlog_bytes", 4096}}}
+	if v, ok := r.Counter("frames"); !ok || v != 7 {
+		t.Errorf("Counter(frames) = %d, %v", v, ok)
+	}
+	if _, ok := r.Counter("nope"); ok {
+		t.Error("a counter the report lacks was found")
+	}
+	if v, ok := r.Gauge("backlog_bytes"); !ok || v != 4096 {
+		t.Errorf("Gauge(backlog_bytes) = %g, %v", v, ok)
+	}
+	if _, ok := r.Gauge("frames"); ok {
+		t.Error("a counter was found as a gauge")
+	}
+}

@@ -86,3 +86,23 @@ type NamedValue struct {
 	Name  string
 	Value float64
 }
+
+// Counter returns the value of r's counter name; false when r has none.
+func (r HealthReport) Counter(name string) (uint64, bool) {
+	for _, c := range r.Counters {
+		if c.Name == name {
+			return c.Value, true
+		}
+	}
+	return 0, false
+}
+
+// Gauge returns the value of r's gauge name; false when r has none.
+func (r HealthReport) Gauge(name string) (float64, bool) {
+	for _, g := range r.Gauges {
+		if g.Name == name {
+			return g.Value, true
+		}
+	}
+	return 0, false
+}

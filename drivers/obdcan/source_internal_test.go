@@ -70,21 +70,13 @@ func TestReportUpWindow(t *testing.T) {
 	if s.Report().Up {
 		t.Error("up while not running")
 	}
-	if n, _ := counterOf(s.Report(), "readings"); n != 3 {
+	if n, _ := s.Report().Counter("readings"); n != 3 {
 		t.Errorf("readings %d, want 3", n)
 	}
 	for _, name := range []string{"isotp_aborted_receptions", "isotp_interrupted_receptions", "isotp_dropped_messages", "isotp_unexpected_flow_controls"} {
-		if _, ok := counterOf(s.Report(), name); !ok {
+		if _, ok := s.Report().Counter(name); !ok {
 			t.Errorf("the report lacks the ISO-TP counter %s", name)
 		}
 	}
 }
 
-func counterOf(r pipeline.HealthReport, name string) (uint64, bool) {
-	for _, c := range r.Counters {
-		if c.Name == name {
-			return c.Value, true
-		}
-	}
-	return 0, false
-}

@@ -34,14 +34,6 @@ func (r *frames) snapshot() [][]pipeline.Sample {
 	return append([][]pipeline.Sample(nil), r.f...)
 }
 
-func counter(r pipeline.HealthReport, name string) (uint64, bool) {
-	for _, c := range r.Counters {
-		if c.Name == name {
-			return c.Value, true
-		}
-	}
-	return 0, false
-}
 
 // TestSourceOneFramePerAnswer runs a Source against the simulated ECU: the
 // channels are registered under the source's name, each answer reaches the
@@ -131,16 +123,16 @@ func TestSourceOneFramePerAnswer(t *testing.T) {
 	if final.Up {
 		t.Error("still up after Run returned")
 	}
-	if n, _ := counter(final, "readings"); n != uint64(total) {
+	if n, _ := final.Counter("readings"); n != uint64(total) {
 		t.Errorf("readings counter %d, sink got %d samples", n, total)
 	}
 	for _, name := range []string{"requests", "responses"} {
-		if n, _ := counter(final, name); n == 0 {
+		if n, _ := final.Counter(name); n == 0 {
 			t.Errorf("%s counter is 0", name)
 		}
 	}
 	for _, name := range []string{"timeouts", "negative_responses", "receive_errors"} {
-		if _, ok := counter(final, name); !ok {
+		if _, ok := final.Counter(name); !ok {
 			t.Errorf("counter %s missing", name)
 		}
 	}

@@ -15,14 +15,7 @@ import (
 	"github.com/plenum-engine/plenum/pipeline"
 )
 
-func counter(r pipeline.HealthReport, name string) uint64 {
-	for _, c := range r.Counters {
-		if c.Name == name {
-			return c.Value
-		}
-	}
-	return 0
-}
+func counter(r pipeline.HealthReport, name string) uint64 { v, _ := r.Counter(name); return v }
 
 // shop is an embedded broker as the daemon runs it: the daemon's publisher
 // connected with its reserved client ID and its will, a read-only user and

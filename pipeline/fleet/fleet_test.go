@@ -420,22 +420,13 @@ func only1(t *testing.T, f *Follower, name string) Vehicle {
 }
 
 func gauge(r pipeline.HealthReport, name string) float64 {
-	for _, g := range r.Gauges {
-		if g.Name == name {
-			return g.Value
-		}
+	if v, ok := r.Gauge(name); ok {
+		return v
 	}
 	return -1
 }
 
-func counter(r pipeline.HealthReport, name string) uint64 {
-	for _, c := range r.Counters {
-		if c.Name == name {
-			return c.Value
-		}
-	}
-	return 0
-}
+func counter(r pipeline.HealthReport, name string) uint64 { v, _ := r.Counter(name); return v }
 
 // waitFor waits for cond, polling; it fails the test after 10 s.
 func waitFor(t *testing.T, what string, cond func() bool) {

@@ -175,22 +175,13 @@ func tlsListener(t *testing.T, dir string) string {
 }
 
 func gauge(r pipeline.HealthReport, name string) float64 {
-	for _, g := range r.Gauges {
-		if g.Name == name {
-			return g.Value
-		}
+	if v, ok := r.Gauge(name); ok {
+		return v
 	}
 	return -1
 }
 
-func counter(r pipeline.HealthReport, name string) uint64 {
-	for _, c := range r.Counters {
-		if c.Name == name {
-			return c.Value
-		}
-	}
-	return 0
-}
+func counter(r pipeline.HealthReport, name string) uint64 { v, _ := r.Counter(name); return v }
 
 // TestExternalBrokerRefusals runs the publisher against a real mosquitto
 // that refuses it: a wrong password, a certificate from another CA, an ACL

@@ -113,23 +113,13 @@ func (h *harness) lastEvent() pipeline.Event {
 
 func counter(t *testing.T, r pipeline.HealthReport, name string) uint64 {
 	t.Helper()
-	for _, c := range r.Counters {
-		if c.Name == name {
-			return c.Value
-		}
+	v, ok := r.Counter(name)
+	if !ok {
+		t.Fatalf("report %+v lacks %s", r, name)
 	}
-	t.Fatalf("report %+v lacks %s", r, name)
-	return 0
+	return v
 }
 
-func gauge(r pipeline.HealthReport, name string) (float64, bool) {
-	for _, g := range r.Gauges {
-		if g.Name == name {
-			return g.Value, true
-		}
-	}
-	return 0, false
-}
 
 // countLines counts the sample lines and the recording_gap events in data.
 func countLines(t *testing.T, data string) (samples, gaps int) {
@@ -183,7 +173,7 @@ func TestDiskFullRun(t *testing.T) {
 		t.Fatalf("at the first refused write: %+v", w)
 	}
 	r := h.c.Report()
-	if u, _ := gauge(r, "unwritten_bytes"); r.Up || counter(t, r, "write_failures") == 0 || u == 0 || counter(t, r, "lost_samples") != 0 {
+	if u, _ := r.Gauge("unwritten_bytes"); r.Up || counter(t, r, "write_failures") == 0 || u == 0 || counter(t, r, "lost_samples") != 0 {
 		t.Fatalf("report while refused, nothing lost yet: %+v", r)
 	}
 	// Still refused for 40 s, losing samples past the 16 MiB held (a big disk): the
@@ -315,7 +305,7 @@ func TestFreeSpaceGuard(t *testing.T) {
 			if raised := len(w) == 1; raised != c.raised {
 				t.Fatalf("warnings %+v", w)
 			}
-			if g, ok := gauge(h.c.Report(), "free_bytes"); !ok || g != float64(c.free) {
+			if g, ok := h.c.Report().Gauge("free_bytes"); !ok || g != float64(c.free) {
 				t.Fatalf("free_bytes %v %v", g, ok)
 			}
 			if !c.raised {
