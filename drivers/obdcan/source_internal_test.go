@@ -79,4 +79,3 @@ func TestReportUpWindow(t *testing.T) {
 		}
 	}
 }
-

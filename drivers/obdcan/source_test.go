@@ -34,7 +34,6 @@ func (r *frames) snapshot() [][]pipeline.Sample {
 	return append([][]pipeline.Sample(nil), r.f...)
 }
 
-
 // TestSourceOneFramePerAnswer runs a Source against the simulated ECU: the
 // channels are registered under the source's name, each answer reaches the
 // sink as one frame with one time, the values agree with the engine within

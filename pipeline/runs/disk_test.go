@@ -120,7 +120,6 @@ func counter(t *testing.T, r pipeline.HealthReport, name string) uint64 {
 	return v
 }
 
-
 // countLines counts the sample lines and the recording_gap events in data.
 func countLines(t *testing.T, data string) (samples, gaps int) {
 	t.Helper()
