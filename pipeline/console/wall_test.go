@@ -4,7 +4,6 @@ import (
 	"context"
 	"encoding/json"
 	"fmt"
-	"io"
 	"log/slog"
 	"net"
 	"net/http"
@@ -160,69 +159,6 @@ func TestFleetStream(t *testing.T) {
 	}
 }
 
-// freezer is a TCP proxy in front of the broker for one vehicle; frozen,
-// it passes no byte either way while the connections stay open: the
-// vehicle goes quiet without a word to the broker.
-type freezer struct {
-	ln   net.Listener
-	flow sync.RWMutex
-	mu   sync.Mutex
-	cs   []net.Conn
-}
-
-func newFreezer(t *testing.T, upstream string) *freezer {
-	t.Helper()
-	ln, err := net.Listen("tcp", "127.0.0.1:0")
-	if err != nil {
-		t.Fatal(err)
-	}
-	z := &freezer{ln: ln}
-	pump := func(dst io.Writer, src io.Reader) {
-		b := make([]byte, 32<<10)
-		for {
-			n, err := src.Read(b)
-			if n > 0 {
-				z.flow.RLock()
-				_, werr := dst.Write(b[:n])
-				z.flow.RUnlock()
-				if werr != nil {
-					return
-				}
-			}
-			if err != nil {
-				return
-			}
-		}
-	}
-	go func() {
-		for {
-			c, err := ln.Accept()
-			if err != nil {
-				return
-			}
-			u, err := net.Dial("tcp", upstream)
-			if err != nil {
-				c.Close()
-				continue
-			}
-			z.mu.Lock()
-			z.cs = append(z.cs, c, u)
-			z.mu.Unlock()
-			go pump(u, c)
-			go pump(c, u)
-		}
-	}()
-	t.Cleanup(func() {
-		ln.Close()
-		z.mu.Lock()
-		for _, c := range z.cs {
-			c.Close()
-		}
-		z.mu.Unlock()
-	})
-	return z
-}
-
 // startCar runs a fake vehicle: a pipeline with engine speed and oil
 // temperature fed every 50 ms, and a real publisher over it.
 func startCar(t *testing.T, ctx context.Context, name, broker string, wg *sync.WaitGroup) {
@@ -311,9 +247,9 @@ func TestBrowserWallFollowsTwoVehicles(t *testing.T) {
 	}
 	wg.Add(1)
 	go func() { defer wg.Done(); f.Run(ctx) }()
-	z := newFreezer(t, addr)
+	z := interop.NewProxy(t, addr)
 	startCar(t, ctx, "car-a", "tcp://"+addr, &wg)
-	startCar(t, ctx, "car-b", "tcp://"+z.ln.Addr().String(), &wg)
+	startCar(t, ctx, "car-b", z.URL(), &wg)
 
 	r := newRig(t, Config{Vehicle: "workshop-pc", Fleet: f}, false)
 	feed := r.feed()
@@ -331,8 +267,8 @@ func TestBrowserWallFollowsTwoVehicles(t *testing.T) {
 	pg.noHorizontalScroll("wall with three tiles")
 	pg.shot("wall-fleet-live-1920x1080")
 
-	z.flow.Lock() // car-b goes quiet
-	defer z.flow.Unlock()
+	z.Freeze() // car-b goes quiet
+	defer z.Thaw()
 	pg.until("car-b's tile stale, car-a's live", tile("car-b")+`.dataset.state === "stale" && `+tile("car-b")+`.querySelector('.tstatus').textContent.includes("STALE") && `+
 		tile("car-a")+`.dataset.state === "live"`, 10*time.Second)
 	if s := evalAs[string](pg, tile("car-b")+`.querySelector('.tv dd').textContent`); !strings.Contains(s, "STALE") {

@@ -4,7 +4,6 @@ import (
 	"context"
 	"errors"
 	"fmt"
-	"io"
 	"log/slog"
 	"net"
 	"os"
@@ -18,85 +17,6 @@ import (
 	"github.com/plenum-engine/plenum/pipeline/interop"
 	"github.com/plenum-engine/plenum/pipeline/mqttpub"
 )
-
-// gate is a TCP proxy in front of the broker for one vehicle: frozen, it
-// stops passing bytes (the vehicle goes quiet with its connection open);
-// cut, it drops every connection without a word, as a car driving out of
-// the workshop's network does, so that the broker sends the vehicle's will.
-type gate struct {
-	ln    net.Listener
-	flow  sync.RWMutex // held for writing while frozen
-	mu    sync.Mutex
-	conns []net.Conn
-}
-
-func newGate(t *testing.T, upstream string) *gate {
-	t.Helper()
-	ln, err := net.Listen("tcp", "127.0.0.1:0")
-	if err != nil {
-		t.Fatal(err)
-	}
-	g := &gate{ln: ln}
-	go func() {
-		for {
-			c, err := ln.Accept()
-			if err != nil {
-				return
-			}
-			u, err := net.Dial("tcp", upstream)
-			if err != nil {
-				c.Close()
-				continue
-			}
-			g.mu.Lock()
-			g.conns = append(g.conns, c, u)
-			g.mu.Unlock()
-			go g.pump(u, c)
-			go g.pump(c, u)
-		}
-	}()
-	t.Cleanup(func() { ln.Close(); g.closeAll() })
-	return g
-}
-
-func (g *gate) pump(dst io.Writer, src io.Reader) {
-	buf := make([]byte, 32<<10)
-	for {
-		n, err := src.Read(buf)
-		if n > 0 {
-			g.flow.RLock()
-			_, werr := dst.Write(buf[:n])
-			g.flow.RUnlock()
-			if werr != nil {
-				return
-			}
-		}
-		if err != nil {
-			return
-		}
-	}
-}
-
-func (g *gate) closeAll() {
-	g.mu.Lock()
-	defer g.mu.Unlock()
-	for _, c := range g.conns {
-		c.Close()
-	}
-	g.conns = nil
-}
-
-func (g *gate) url() string { return "tcp://" + g.ln.Addr().String() }
-
-// freeze stops every byte in both directions; the connections stay open.
-func (g *gate) freeze() { g.flow.Lock() }
-
-// cut drops the connections (after a freeze) and refuses new ones.
-func (g *gate) cut() {
-	g.ln.Close()
-	g.closeAll()
-	g.flow.Unlock()
-}
 
 // car is a fake vehicle: a pipeline with one channel fed every 50 ms and a
 // real mqttpub.Publisher over it.
@@ -197,9 +117,9 @@ func TestFollowTwoVehiclesThroughMosquitto(t *testing.T) {
 		}
 	}()
 
-	g := newGate(t, addr)
+	g := interop.NewProxy(t, addr)
 	a := startCar(t, ctx, "car-a", "tcp://"+addr, &wg)
-	startCar(t, ctx, "car-b", g.url(), &wg)
+	startCar(t, ctx, "car-b", g.URL(), &wg)
 
 	// Both vehicles, online and fresh, with their values.
 	waitChange(t, f, "both vehicles online, fresh, with a manifold pressure", func(vs []Vehicle) bool {
@@ -229,12 +149,12 @@ func TestFollowTwoVehiclesThroughMosquitto(t *testing.T) {
 	})
 
 	// car-b goes quiet: stale, still online, while car-a stays fresh.
-	g.freeze()
+	g.Freeze()
 	waitChange(t, f, "car-b stale while still online", func(vs []Vehicle) bool {
 		return len(vs) == 2 && !vs[0].Stale && vs[1].Stale && vs[1].State == "online"
 	})
 	// Its connection drops: the broker sends its will.
-	g.cut()
+	g.Cut()
 	waitChange(t, f, "car-b offline by its will", func(vs []Vehicle) bool {
 		return len(vs) == 2 && vs[1].State == "offline" && vs[1].Stale && !vs[0].Stale && vs[0].State == "online"
 	})
