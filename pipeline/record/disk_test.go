@@ -13,79 +13,13 @@ import (
 	"time"
 
 	"github.com/plenum-engine/plenum/pipeline"
+	"github.com/plenum-engine/plenum/pipeline/record/recordtest"
 )
 
-// quotaDisk is a disk with a fixed amount of free space: a write beyond it
-// is taken in part and refused with ENOSPC, as a full filesystem does. A
-// failing fsync can be switched on.
-type quotaDisk struct {
-	mu      sync.Mutex
-	free    int64
-	syncErr error
-	files   map[string]*quotaFile
-	writes  int // write calls, refused or not
+// createOn is Config.Create for a test disk.
+func createOn(d *recordtest.Disk) func(string) (File, error) {
+	return func(path string) (File, error) { return d.Create(path) }
 }
-
-type quotaFile struct {
-	d    *quotaDisk
-	data []byte
-}
-
-func newQuotaDisk(free int64) *quotaDisk {
-	return &quotaDisk{free: free, files: map[string]*quotaFile{}}
-}
-
-func (d *quotaDisk) create(path string) (File, error) {
-	d.mu.Lock()
-	defer d.mu.Unlock()
-	f := &quotaFile{d: d}
-	d.files[filepath.Base(path)] = f
-	return f, nil
-}
-
-func (d *quotaDisk) setFree(n int64) {
-	d.mu.Lock()
-	d.free = n
-	d.mu.Unlock()
-}
-
-func (d *quotaDisk) data(name string) []byte {
-	d.mu.Lock()
-	defer d.mu.Unlock()
-	if f := d.files[name]; f != nil {
-		return append([]byte(nil), f.data...)
-	}
-	return nil
-}
-
-func (f *quotaFile) Write(b []byte) (int, error) {
-	f.d.mu.Lock()
-	defer f.d.mu.Unlock()
-	f.d.writes++
-	n := min(int64(len(b)), max(f.d.free, 0))
-	f.data = append(f.data, b[:n]...)
-	f.d.free -= n
-	if int(n) < len(b) {
-		return int(n), syscall.ENOSPC
-	}
-	return int(n), nil
-}
-
-func (f *quotaFile) Truncate(size int64) error {
-	f.d.mu.Lock()
-	defer f.d.mu.Unlock()
-	f.d.free += int64(len(f.data)) - size
-	f.data = f.data[:size]
-	return nil
-}
-
-func (f *quotaFile) Sync() error {
-	f.d.mu.Lock()
-	defer f.d.mu.Unlock()
-	return f.d.syncErr
-}
-
-func (f *quotaFile) Close() error { return nil }
 
 // fakeClock is a clock moved by hand.
 type fakeClock struct {
@@ -132,9 +66,9 @@ func lines(t *testing.T, b []byte, kind string) (samples, events int, ev []strin
 // again; the summary and Close say what was written and what was lost.
 func TestDiskRefusesThenResumes(t *testing.T) {
 	dir := t.TempDir()
-	disk := newQuotaDisk(100_000)
+	disk := recordtest.NewDisk(100_000)
 	clk := &fakeClock{t: time.Unix(5000, 0)}
-	r, err := Open(Config{Dir: dir, Run: "full", Vehicle: "v", Create: disk.create, Now: clk.now}, testRegistry(t))
+	r, err := Open(Config{Dir: dir, Run: "full", Vehicle: "v", Create: createOn(disk), Now: clk.now}, testRegistry(t))
 	if err != nil {
 		t.Fatal(err)
 	}
@@ -150,13 +84,13 @@ func TestDiskRefusesThenResumes(t *testing.T) {
 	if err := r.Sync(); err != nil || r.Refusing() {
 		t.Fatalf("sync with room: %v (refusing %v)", err, r.Refusing())
 	}
-	before := disk.data("0001.lp")
+	before := disk.Data("0001.lp")
 	put(5000) // more than the 100 kB of room, in one block
 	err = r.Sync()
 	if !errors.Is(err, syscall.ENOSPC) || !r.Refusing() || r.WriteFailures() != 1 {
 		t.Fatalf("first refused write: err %v, refusing %v, failures %d", err, r.Refusing(), r.WriteFailures())
 	}
-	if got := disk.data("0001.lp"); !bytes.Equal(got, before) {
+	if got := disk.Data("0001.lp"); !bytes.Equal(got, before) {
 		t.Fatalf("a part-written block was left in the file: %d bytes, %d before", len(got), len(before))
 	}
 	if r.Lost() != 0 {
@@ -172,9 +106,9 @@ func TestDiskRefusesThenResumes(t *testing.T) {
 		{300 * time.Millisecond, false}, {100 * time.Millisecond, true}, {800 * time.Millisecond, true}, {1600 * time.Millisecond, true},
 		{1999 * time.Millisecond, false}, {time.Millisecond, true}} {
 		clk.add(step.wait)
-		w := disk.writes
+		w := disk.Writes()
 		r.Sync()
-		if tried := disk.writes > w; tried != step.tried {
+		if tried := disk.Writes() > w; tried != step.tried {
 			t.Fatalf("after %v more: tried %v, want %v", step.wait, tried, step.tried)
 		}
 	}
@@ -195,7 +129,7 @@ func TestDiskRefusesThenResumes(t *testing.T) {
 	}
 
 	// Room again: the retry writes everything held, then the gap event.
-	disk.setFree(1 << 30)
+	disk.SetFree(1 << 30)
 	clk.add(maxRetry)
 	if err := r.Sync(); err != nil || r.Refusing() {
 		t.Fatalf("sync after room came back: %v (refusing %v)", err, r.Refusing())
@@ -209,7 +143,7 @@ func TestDiskRefusesThenResumes(t *testing.T) {
 	if err := r.Close(); !errors.Is(err, ErrDataLost) {
 		t.Fatalf("Close of a run that lost data: %v", err)
 	}
-	samples, nGap, ev := lines(t, disk.data("0001.lp"), "recording_gap")
+	samples, nGap, ev := lines(t, disk.Data("0001.lp"), "recording_gap")
 	if nGap != 1 || !strings.Contains(ev[0], "lost_samples=1000,") || !strings.Contains(ev[0], "lost_events=1,") {
 		t.Fatalf("gap events %q", ev)
 	}
@@ -230,11 +164,11 @@ func TestDiskRefusesThenResumes(t *testing.T) {
 // and the summary counts only what reached the disk: its peaks too.
 func TestCloseWhileRefused(t *testing.T) {
 	dir := t.TempDir()
-	disk := newQuotaDisk(1 << 20)
+	disk := recordtest.NewDisk(1 << 20)
 	clk := &fakeClock{t: time.Unix(5000, 0)}
 	reg := pipeline.NewRegistry()
 	boost, _ := reg.Register(pipeline.Channel{Name: "boost_pressure", Quantity: "pressure", Source: "s"})
-	r, err := Open(Config{Dir: dir, Run: "cut", Vehicle: "v", Create: disk.create, Now: clk.now}, reg)
+	r, err := Open(Config{Dir: dir, Run: "cut", Vehicle: "v", Create: createOn(disk), Now: clk.now}, reg)
 	if err != nil {
 		t.Fatal(err)
 	}
@@ -245,7 +179,7 @@ func TestCloseWhileRefused(t *testing.T) {
 	if err := r.Sync(); err != nil {
 		t.Fatal(err)
 	}
-	disk.setFree(0)
+	disk.SetFree(0)
 	r.Write(pipeline.Sample{Channel: boost, Value: 90000, Time: t0.Add(20 * time.Second)})
 	r.WriteEvent(pipeline.Event{Kind: "warning_raised", Name: "over_boost", Start: t0.Add(20 * time.Second)})
 	if err := r.Sync(); !errors.Is(err, syscall.ENOSPC) {
@@ -260,7 +194,7 @@ func TestCloseWhileRefused(t *testing.T) {
 		!s.End.Equal(t0.Add(9*time.Second)) || s.Gaps != 0 {
 		t.Fatalf("summary %s", s.JSON())
 	}
-	if n, _, _ := lines(t, disk.data("0001.lp"), ""); n != 10 || r.Written() != 10 {
+	if n, _, _ := lines(t, disk.Data("0001.lp"), ""); n != 10 || r.Written() != 10 {
 		t.Fatalf("%d lines in the file, %d written", n, r.Written())
 	}
 	if !exists(filepath.Join(dir, "cut", "ended")) || !exists(filepath.Join(dir, "cut", "summary.json")) {
@@ -271,18 +205,18 @@ func TestCloseWhileRefused(t *testing.T) {
 // TestFsyncRefused: a failing fsync is an outage too; it ends, without a
 // gap event, when an fsync works again.
 func TestFsyncRefused(t *testing.T) {
-	disk := newQuotaDisk(1 << 20)
+	disk := recordtest.NewDisk(1 << 20)
 	clk := &fakeClock{t: time.Unix(5000, 0)}
-	r, err := Open(Config{Dir: t.TempDir(), Run: "eio", Vehicle: "v", Create: disk.create, Now: clk.now}, testRegistry(t))
+	r, err := Open(Config{Dir: t.TempDir(), Run: "eio", Vehicle: "v", Create: createOn(disk), Now: clk.now}, testRegistry(t))
 	if err != nil {
 		t.Fatal(err)
 	}
-	disk.syncErr = syscall.EIO
+	disk.SetSyncErr(syscall.EIO)
 	r.Write(pipeline.Sample{Channel: 0, Value: 1, Time: time.Unix(1, 0)})
 	if err := r.Sync(); !errors.Is(err, syscall.EIO) || !r.Refusing() {
 		t.Fatalf("failing fsync: %v (refusing %v)", err, r.Refusing())
 	}
-	disk.syncErr = nil
+	disk.SetSyncErr(nil)
 	clk.add(firstRetry)
 	if err := r.Sync(); err != nil || r.Refusing() {
 		t.Fatalf("fsync works again: %v (refusing %v)", err, r.Refusing())
@@ -293,7 +227,7 @@ func TestFsyncRefused(t *testing.T) {
 	if err := r.Close(); err != nil {
 		t.Fatal(err)
 	}
-	if _, n, _ := lines(t, disk.data("0001.lp"), "recording_gap"); n != 0 {
+	if _, n, _ := lines(t, disk.Data("0001.lp"), "recording_gap"); n != 0 {
 		t.Fatal("a gap event without a loss")
 	}
 }

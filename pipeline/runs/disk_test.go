@@ -3,75 +3,14 @@ package runs
 import (
 	"context"
 	"errors"
-	"path/filepath"
 	"strings"
-	"sync"
-	"syscall"
 	"testing"
 	"time"
 
 	"github.com/plenum-engine/plenum/pipeline"
 	"github.com/plenum-engine/plenum/pipeline/record"
+	"github.com/plenum-engine/plenum/pipeline/record/recordtest"
 )
-
-// fullDisk is a disk with a fixed amount of free space: a write beyond it
-// is taken in part and refused with ENOSPC, as a full filesystem does.
-type fullDisk struct {
-	mu    sync.Mutex
-	free  int64
-	files map[string]*fullFile
-}
-
-type fullFile struct {
-	d    *fullDisk
-	data []byte
-}
-
-func (d *fullDisk) create(path string) (record.File, error) {
-	d.mu.Lock()
-	defer d.mu.Unlock()
-	f := &fullFile{d: d}
-	d.files[filepath.Base(path)] = f
-	return f, nil
-}
-
-func (d *fullDisk) setFree(n int64) {
-	d.mu.Lock()
-	d.free = n
-	d.mu.Unlock()
-}
-
-func (d *fullDisk) data(name string) string {
-	d.mu.Lock()
-	defer d.mu.Unlock()
-	if f := d.files[name]; f != nil {
-		return string(f.data)
-	}
-	return ""
-}
-
-func (f *fullFile) Write(b []byte) (int, error) {
-	f.d.mu.Lock()
-	defer f.d.mu.Unlock()
-	n := min(int64(len(b)), max(f.d.free, 0))
-	f.data = append(f.data, b[:n]...)
-	f.d.free -= n
-	if int(n) < len(b) {
-		return int(n), syscall.ENOSPC
-	}
-	return int(n), nil
-}
-
-func (f *fullFile) Truncate(size int64) error {
-	f.d.mu.Lock()
-	defer f.d.mu.Unlock()
-	f.d.free += int64(len(f.data)) - size
-	f.data = f.data[:size]
-	return nil
-}
-
-func (f *fullFile) Sync() error  { return nil }
-func (f *fullFile) Close() error { return nil }
 
 // feed puts n samples of x through the pipeline and records them, as
 // Run's drain does.
@@ -146,9 +85,9 @@ func countLines(t *testing.T, data string) (samples, gaps int) {
 // summary and run_ended that count what reached the disk and what was
 // lost.
 func TestDiskFullRun(t *testing.T) {
-	disk := &fullDisk{free: 50_000, files: map[string]*fullFile{}}
+	disk := recordtest.NewDisk(50_000)
 	h := newHarnessSized(t, Config{}, 1<<12)
-	h.c.create = disk.create
+	h.c.create = func(path string) (record.File, error) { return disk.Create(path) }
 	id, err := h.c.Start(StartRequest{})
 	if err != nil {
 		t.Fatal(err)
@@ -190,7 +129,7 @@ func TestDiskFullRun(t *testing.T) {
 		t.Fatalf("the warning flickered while samples were being lost: %+v", w)
 	}
 	// Room again: writing resumes (the harness clock makes each retry due).
-	disk.setFree(1 << 40)
+	disk.SetFree(1 << 40)
 	step(time.Second)
 	if h.c.cur.Refusing() {
 		t.Fatal("still refusing with room on the disk")
@@ -212,7 +151,7 @@ func TestDiskFullRun(t *testing.T) {
 	if logs := h.logs.String(); !strings.Contains(logs, "ERROR the run ended incomplete") {
 		t.Fatalf("no error logged at the end:\n%s", logs)
 	}
-	samples, gaps := countLines(t, disk.data("0001.lp"))
+	samples, gaps := countLines(t, string(disk.Data("0001.lp")))
 	if gaps != 1 || sum.Samples != uint64(samples) || sum.SamplesLost != lost || sum.Gaps != 1 || sum.Samples+sum.SamplesLost != 2100+40*5000+100 {
 		t.Fatalf("summary %s: %d samples and %d gaps in the file, %d lost", sum.JSON(), samples, gaps, lost)
 	}
