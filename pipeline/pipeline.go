@@ -21,7 +21,8 @@ type Pipeline struct {
 	evIn  chan Event
 	fan   fanout
 	done  chan struct{}
-	dirty []bool // per node, in topological order: ProcessFrame's work list
+	probe chan struct{} // taken by the ingest loop between frames (Probe)
+	dirty []bool        // per node, in topological order: ProcessFrame's work list
 
 	accepted  atomic.Uint64
 	flagged   atomic.Uint64
@@ -56,6 +57,7 @@ func New(reg *Registry, g *Graph, opt Options) *Pipeline {
 		free:  make(chan []Sample, opt.QueueSize),
 		evIn:  make(chan Event, 256),
 		done:  make(chan struct{}),
+		probe: make(chan struct{}),
 		dirty: make([]bool, len(g.nodes)),
 	}
 }
@@ -189,6 +191,7 @@ func (p *Pipeline) Run(ctx context.Context) error {
 			p.take(f)
 		case e := <-p.evIn:
 			p.fan.event(e)
+		case <-p.probe:
 		case <-ctx.Done():
 			for {
 				select {
