@@ -399,6 +399,9 @@ func (cfg *Config) check(file string, root *yaml.Node) Errors {
 		}
 	}
 	checkFollow(c, cfg.Follow)
+	if _, err := ParseLogLevel(cfg.LogLevel); err != nil {
+		c.fail(err.Error(), "log_level")
+	}
 	if _, err := derive.ParseStandard(cfg.Power.Standard); err != nil {
 		c.fail(err.Error(), "power", "standard")
 	}

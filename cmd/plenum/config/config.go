@@ -37,6 +37,9 @@ type Config struct {
 	Record   Record        `yaml:"record"`
 	Display  Display       `yaml:"display"`
 	Follow   Follow        `yaml:"follow"`
+	// LogLevel is the least severe log line written: debug, info
+	// (default), warn or error. A reload (SIGHUP) applies it live.
+	LogLevel string `yaml:"log_level"`
 
 	// Raw is the text the configuration was parsed from.
 	Raw []byte `yaml:"-"`

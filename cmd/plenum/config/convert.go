@@ -355,33 +355,19 @@ func (c *Config) WithoutAbsentFiles() (*Config, []string) {
 			*path = ""
 		}
 	}
+	cp.HTTP.Users = append([]HTTPUser(nil), c.HTTP.Users...)
 	m := &cp.MQTT
 	cert, key := m.CertFile, m.KeyFile
-	leave(&cp.Record.ControlTokenFile, "record.control_token_file")
-	leave(&cp.Record.Push.TokenFile, "record.push.token_file")
-	leave(&cp.Record.Push.PasswordFile, "record.push.password_file")
-	leave(&m.PasswordFile, "mqtt.password_file")
-	leave(&m.CAFile, "mqtt.ca_file")
-	leave(&m.CertFile, "mqtt.cert_file")
-	leave(&m.KeyFile, "mqtt.key_file")
+	hcert, hkey := cp.HTTP.TLSCertFile, cp.HTTP.TLSKeyFile
+	for _, f := range cp.files() {
+		leave(f.p, f.key())
+	}
 	if m.CertFile != cert || m.KeyFile != key {
 		m.CertFile, m.KeyFile = "", "" // a client certificate is loaded as a pair
 	}
-	for i := range m.Users {
-		leave(&m.Users[i].PasswordFile, fmt.Sprintf("mqtt.users[%d].password_file", i))
-	}
-	cp.HTTP.Users = append([]HTTPUser(nil), c.HTTP.Users...)
-	for i := range cp.HTTP.Users {
-		leave(&cp.HTTP.Users[i].PasswordFile, fmt.Sprintf("http.users[%d].password_file", i))
-	}
-	hcert, hkey := cp.HTTP.TLSCertFile, cp.HTTP.TLSKeyFile
-	leave(&cp.HTTP.TLSCertFile, "http.tls_cert_file")
-	leave(&cp.HTTP.TLSKeyFile, "http.tls_key_file")
 	if cp.HTTP.TLSCertFile != hcert || cp.HTTP.TLSKeyFile != hkey {
 		cp.HTTP.TLSCertFile, cp.HTTP.TLSKeyFile = "", "" // loaded as a pair
 	}
-	leave(&cp.Follow.PasswordFile, "follow.password_file")
-	leave(&cp.Follow.CAFile, "follow.ca_file")
 	return &cp, gone
 }
 
