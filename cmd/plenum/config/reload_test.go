@@ -27,7 +27,9 @@ func TestPlanReload(t *testing.T) {
 		refused       string
 	}{
 		{"same file", func(s string) string { return s }, nil, nil, ""},
-		{"comment and layout only", func(s string) string { return "# a comment\n" + strings.Replace(s, "  fuel: gasoline\n", "  fuel:   gasoline # petrol\n", 1) }, nil, nil, ""},
+		{"comment and layout only", func(s string) string {
+			return "# a comment\n" + strings.Replace(s, "  fuel: gasoline\n", "  fuel:   gasoline # petrol\n", 1)
+		}, nil, nil, ""},
 		{"log level", func(s string) string { return s + "log_level: debug\n" }, []string{"log_level"}, nil, ""},
 		{"serial device", func(s string) string {
 			return strings.Replace(s, "/dev/serial/by-id/usb-bench-mcu", "/dev/plenum-mcu", 1)
