@@ -46,6 +46,8 @@ type daemon struct {
 	mux     *http.ServeMux
 	web     *httpserve.Server // the HTTP listener, not yet bound
 	closers []func()          // closed in reverse order
+
+	extraParts []promexport.Reporter // the service's health reports (watchdog, reload)
 }
 
 // close closes what build opened, in reverse order.
@@ -60,8 +62,19 @@ func (d *daemon) close() {
 // and reads every file the configuration names; run builds with open true,
 // so that whatever check accepts, run starts. Errors name file:line and
 // field where the fault has a key. On error nothing is left open.
-func build(ctx context.Context, cfg *config.Config, log *slog.Logger, open bool) (_ *daemon, err error) {
-	d := &daemon{cfg: cfg, log: log, reg: pipeline.NewRegistry(), mux: http.NewServeMux()}
+func build(ctx context.Context, cfg *config.Config, log *slog.Logger, open bool) (*daemon, error) {
+	return buildWith(ctx, cfg, log, open, extras{})
+}
+
+// extras are parts the service adds to what the configuration builds.
+type extras struct {
+	reporters   []promexport.Reporter // more health reports for the collector
+	derivations []pipeline.Derivation // tests only: e.g. one that stalls the ingest loop
+}
+
+// buildWith is build with ex added.
+func buildWith(ctx context.Context, cfg *config.Config, log *slog.Logger, open bool, ex extras) (_ *daemon, err error) {
+	d := &daemon{cfg: cfg, log: log, reg: pipeline.NewRegistry(), mux: http.NewServeMux(), extraParts: ex.reporters}
 	defer func() {
 		if err != nil {
 			d.close()
@@ -74,6 +87,7 @@ func build(ctx context.Context, cfg *config.Config, log *slog.Logger, open bool)
 	if err != nil {
 		return nil, err
 	}
+	ds = append(ds, ex.derivations...)
 	d.set = set
 	g, err := pipeline.BuildGraph(d.reg, ds)
 	if err != nil {
@@ -195,7 +209,7 @@ func build(ctx context.Context, cfg *config.Config, log *slog.Logger, open bool)
 // serveMetrics builds the Prometheus collector, every part reporting its
 // health at scrape time, the event metrics and log, and the HTTP pages.
 func (d *daemon) serveMetrics() error {
-	parts := []promexport.Reporter{d.pub, d.con}
+	parts := append([]promexport.Reporter{d.pub, d.con}, d.extraParts...)
 	if d.rr != nil {
 		parts = append(parts, d.rr)
 	}
@@ -248,11 +262,20 @@ func (d *daemon) serveMetrics() error {
 // reverse order: sources first, so that what they took last is processed,
 // recorded, pushed and published.
 func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *slog.Logger) error {
+	return runDaemonWith(ctx, cfg, stdout, log, service{})
+}
+
+// runDaemonWith is runDaemon under a service manager (service.go): it
+// says when the daemon is ready and stopping, pings the watchdog while the
+// ingest loop turns, and reloads the configuration on request.
+func runDaemonWith(ctx context.Context, cfg *config.Config, stdout io.Writer, log *slog.Logger, svc service) error {
 	fmt.Fprintln(stdout, Safety)
 	if cfg.StateDir != "" {
 		fmt.Fprintf(stdout, "state:    %s\n", cfg.StateDir)
 	}
-	d, err := build(ctx, cfg, log, true)
+	sm, log := svc.start(cfg, log)
+	defer sm.close()
+	d, err := buildWith(ctx, cfg, log, true, sm.extras())
 	if err != nil {
 		return err
 	}
@@ -312,10 +335,11 @@ func runDaemon(ctx context.Context, cfg *config.Config, stdout io.Writer, log *s
 	if d.rr != nil {
 		st = append(st, stages.Stage{{Name: "recorder", Run: d.rr.Run}})
 	}
-	st = append(st, stages.Stage{{Name: "pipeline", Run: d.p.Run}})
+	st = append(st, stages.Stage{{Name: "pipeline", Run: d.p.Run}, {Name: "watchdog", Run: sm.watchdog(d.p)}})
 	var drivers stages.Stage
 	for _, s := range d.srcs {
-		drivers = append(drivers, stages.Part{Name: s.name, Run: func(ctx context.Context) error { return s.run(ctx, d.p) }})
+		drivers = append(drivers, stages.Part{Name: s.name, Run: sm.started(func(ctx context.Context) error { return s.run(ctx, d.p) })})
 	}
+	drivers = append(drivers, stages.Part{Name: "service manager", Run: sm.run(d)})
 	return stages.Run(ctx, log, shutdownGrace, append(st, drivers)...)
 }

@@ -20,6 +20,7 @@ import (
 	"time"
 
 	"github.com/plenum-engine/plenum/cmd/plenum/config"
+	"github.com/plenum-engine/plenum/pipeline/sdnotify"
 )
 
 // version is set at build time with -ldflags "-X main.version=...".
@@ -71,7 +72,8 @@ const commands = "demo, run, run-start, run-stop, warning-ack, check, probe, rep
 func run(args []string, stdout, stderr io.Writer) int {
 	ctx, stop := signal.NotifyContext(context.Background(), os.Interrupt, syscall.SIGTERM)
 	defer stop()
-	log := slog.New(slog.NewTextHandler(stderr, &slog.HandlerOptions{Level: slog.LevelInfo}))
+	// Debug passes here: the daemon filters by its log_level (info by default).
+	log := slog.New(slog.NewTextHandler(stderr, &slog.HandlerOptions{Level: slog.LevelDebug}))
 	return runCommand(ctx, args, stdout, stderr, log)
 }
 
@@ -278,7 +280,7 @@ func cmdDemo(ctx context.Context, args []string, stdout io.Writer, log *slog.Log
 }
 
 func cmdRun(ctx context.Context, args []string, stdout io.Writer, log *slog.Logger) error {
-	fs := newFlagSet("run", "-config FILE", "Runs the daemon on real hardware with the configuration in FILE.", stdout)
+	fs := newFlagSet("run", "-config FILE", "Runs the daemon on real hardware with the configuration in FILE.\nSIGHUP reloads FILE (log_level applies live; other changes are refused, named).", stdout)
 	path := fs.String("config", "", "configuration file")
 	if err := parseFlags(fs, args); err != nil {
 		return err
@@ -286,11 +288,21 @@ func cmdRun(ctx context.Context, args []string, stdout io.Writer, log *slog.Logg
 	if *path == "" {
 		return usageError{"run needs -config FILE"}
 	}
+	// SIGHUP reloads the configuration (ExecReload= in the unit); taken
+	// before anything else, so that an early one does not end the process.
+	hup := make(chan os.Signal, 1)
+	signal.Notify(hup, syscall.SIGHUP)
+	defer signal.Stop(hup)
 	cfg, err := config.Load(*path)
 	if err != nil {
 		return err
 	}
-	return runDaemon(ctx, cfg, stdout, log)
+	creds := os.Getenv("CREDENTIALS_DIRECTORY")
+	if err := cfg.ExpandCredentials(creds); err != nil {
+		return err
+	}
+	return runDaemonWith(ctx, cfg, stdout, log, service{notify: sdnotify.FromEnv(os.Getenv, os.Getpid()),
+		reload: hup, configPath: *path, credentials: creds})
 }
 
 // shutdownGrace bounds how long the daemon waits for its parts to stop.
