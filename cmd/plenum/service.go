@@ -152,7 +152,6 @@ func (sm *serviceRun) reload() {
 		return
 	}
 	lvl, _ := config.ParseLogLevel(nc.LogLevel) // checked by Load
-	sm.level.Set(lvl)
 	sm.cfg = nc
 	sm.reloads.Counter("applied").Add(1)
 	sm.reloads.SetUp(true)
@@ -160,5 +159,12 @@ func (sm *serviceRun) reload() {
 		sm.log.Info("reload: the configuration is unchanged", "config", path)
 		return
 	}
+	// The line saying so is written under the less strict of the two
+	// levels, so that a person sees the change either way.
+	raise := lvl > sm.level.Level()
+	if !raise {
+		sm.level.Set(lvl)
+	}
 	sm.log.Info("reload applied", "config", path, "changed", strings.Join(plan.Live, ","), "log_level", lvl.String())
+	sm.level.Set(lvl)
 }
