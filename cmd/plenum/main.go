@@ -216,6 +216,10 @@ func cmdCheck(args []string, stdout io.Writer, log *slog.Logger) error {
 	}
 	logLeftOut(log, rep.LeftOut)
 	for _, f := range rep.Absent {
+		if strings.HasPrefix(f, "$CREDENTIALS_DIRECTORY/") || strings.HasPrefix(f, "${CREDENTIALS_DIRECTORY}/") {
+			fmt.Fprintf(stdout, "note: %s is a systemd credential; run reads it at start-up under its unit (LoadCredential=).\n", f)
+			continue
+		}
 		fmt.Fprintf(stdout, "note: %s does not exist on this machine; run reads it at start-up.\n", f)
 	}
 	fmt.Fprintf(stdout, "%s: ok (vehicle %s, %d serial source(s), %d channels)\n", *path, cfg.Vehicle, len(cfg.Serial), len(rep.Channels))
