@@ -10,7 +10,9 @@
 package sdnotify
 
 import (
+	"errors"
 	"fmt"
+	"math"
 	"net"
 	"strconv"
 	"strings"
@@ -58,6 +60,9 @@ func (c Config) WatchdogInterval() (time.Duration, error) {
 		}
 	}
 	us, err := strconv.ParseUint(c.WatchdogUSec, 10, 63)
+	if err == nil && us > uint64(math.MaxInt64/int64(time.Microsecond)) {
+		err = errors.New("longer than a time.Duration holds")
+	}
 	if err != nil {
 		return 0, fmt.Errorf("WATCHDOG_USEC=%q: %w", c.WatchdogUSec, err)
 	}

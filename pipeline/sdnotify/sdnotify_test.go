@@ -256,3 +256,27 @@ func (l *lockedWriter) Write(p []byte) (int, error) {
 	defer l.mu.Unlock()
 	return l.w.Write(p)
 }
+
+// FuzzWatchdogInterval: the environment's values never panic the parse, a
+// malformed one is an error naming its variable, and an interval comes
+// only for this process.
+func FuzzWatchdogInterval(f *testing.F) {
+	for _, s := range [][2]string{{"20000000", ""}, {"500000", "42"}, {"1", "41"}, {"-5", ""}, {"2s", "x"}, {"18446744073709551615", "42"}, {"9223372036854775", ""}, {"9223372036854776", ""}} {
+		f.Add(s[0], s[1])
+	}
+	f.Fuzz(func(t *testing.T, usec, pid string) {
+		iv, err := Config{Socket: "@s", WatchdogUSec: usec, WatchdogPID: pid, PID: 42}.WatchdogInterval()
+		if err != nil {
+			if !strings.Contains(err.Error(), "WATCHDOG_") {
+				t.Fatalf("error %v names no variable", err)
+			}
+			return
+		}
+		if iv < 0 {
+			t.Fatalf("negative interval %v", iv)
+		}
+		if iv > 0 && pid != "" && pid != "42" && strings.TrimLeft(pid, "+0") != "42" {
+			t.Fatalf("an interval %v for WATCHDOG_PID=%q, not this process", iv, pid)
+		}
+	})
+}

@@ -100,3 +100,37 @@ func TestExpandCredentials(t *testing.T) {
 		t.Fatalf("without CREDENTIALS_DIRECTORY: %v", err)
 	}
 }
+
+// FuzzChanged: a configuration compared with itself has no changed key,
+// and comparing two never panics; the keys named are those written.
+func FuzzChanged(f *testing.F) {
+	good, err := os.ReadFile("testdata/good.yaml")
+	if err != nil {
+		f.Fatal(err)
+	}
+	f.Add(good, append(append([]byte(nil), good...), "log_level: warn\n"...))
+	f.Add(good, []byte(strings.Replace(string(good), "bench_mcu", "car_mcu", 1)))
+	f.Add([]byte("vehicle: x\nengine: {displacement_l: 2, volumetric_efficiency: 0.9}\n"), []byte("vehicle: y\nengine: {displacement_l: 2, volumetric_efficiency: 0.9}\nsimulator: {}\n"))
+	f.Fuzz(func(t *testing.T, a, b []byte) {
+		ca, err := Parse("a.yaml", a)
+		if err != nil {
+			return
+		}
+		if ch := Changed(ca, ca); len(ch) != 0 {
+			t.Fatalf("a configuration differs from itself in %q", ch)
+		}
+		cb, err := Parse("b.yaml", b)
+		if err != nil {
+			return
+		}
+		r := PlanReload(ca, cb)
+		for _, k := range append(r.Live, r.Restart...) {
+			if k == "" || strings.Contains(k, "..") {
+				t.Fatalf("a changed key is named %q", k)
+			}
+		}
+		if (len(r.Restart) == 0) != (r.Refused() == "") {
+			t.Fatalf("Refused() = %q with restart keys %q", r.Refused(), r.Restart)
+		}
+	})
+}
