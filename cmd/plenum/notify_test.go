@@ -206,7 +206,7 @@ func TestDaemonNotifiesServiceManager(t *testing.T) {
 	at = notify.waitFor(t, 0, "TEST-MARKER=1")
 	sent := 0
 	for _, m := range notify.all()[:at] {
-		if m == "WATCHDOG=1\n" {
+		if m == "WATCHDOG=1" {
 			sent++
 		}
 	}

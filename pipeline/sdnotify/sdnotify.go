@@ -4,8 +4,8 @@
 // $WATCHDOG_PID give. Without a socket every call is a no-op, so a daemon
 // started by hand or in a test behaves the same with or without systemd.
 //
-// The protocol is written out here (a datagram of newline-separated
-// KEY=VALUE assignments) rather than taken from a library: it is about
+// The protocol (sd_notify(3): one datagram of newline-separated KEY=VALUE
+// assignments) is written out here rather than taken from a library: it is about
 // twenty lines, and the daemon needs nothing else of the service manager.
 package sdnotify
 
@@ -107,7 +107,8 @@ func (n *Notifier) Send(state ...string) error {
 		}
 		n.conn = c
 	}
-	if _, err := n.conn.Write([]byte(strings.Join(state, "\n") + "\n")); err != nil {
+	// Newline-separated, without a final newline: what systemd-notify sends.
+	if _, err := n.conn.Write([]byte(strings.Join(state, "\n"))); err != nil {
 		n.conn.Close()
 		n.conn = nil // the manager may have been restarted: dial again next time
 		return fmt.Errorf("sdnotify: NOTIFY_SOCKET %s: %w", n.addr.Name, err)

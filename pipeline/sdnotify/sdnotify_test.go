@@ -44,7 +44,7 @@ func recv(t *testing.T, c *net.UnixConn) string {
 	return string(buf[:n])
 }
 
-// Every message arrives as one datagram of newline-terminated assignments,
+// Every message arrives as one datagram of newline-separated assignments,
 // on a path socket and on an abstract one.
 func TestSend(t *testing.T) {
 	for _, tc := range []struct {
@@ -64,11 +64,11 @@ func TestSend(t *testing.T) {
 				send func() error
 				want string
 			}{
-				{func() error { return n.Ready("running\ntwo lines") }, "READY=1\nSTATUS=running two lines\n"},
-				{n.Ping, "WATCHDOG=1\n"},
-				{func() error { return n.Reloading("reloading") }, "RELOADING=1\nSTATUS=reloading\n"},
-				{func() error { return n.Status("idle") }, "STATUS=idle\n"},
-				{func() error { return n.Stopping("bye") }, "STOPPING=1\nSTATUS=bye\n"},
+				{func() error { return n.Ready("running\ntwo lines") }, "READY=1\nSTATUS=running two lines"},
+				{n.Ping, "WATCHDOG=1"},
+				{func() error { return n.Reloading("reloading") }, "RELOADING=1\nSTATUS=reloading"},
+				{func() error { return n.Status("idle") }, "STATUS=idle"},
+				{func() error { return n.Stopping("bye") }, "STOPPING=1\nSTATUS=bye"},
 			} {
 				if err := step.send(); err != nil {
 					t.Fatal(err)
@@ -196,7 +196,7 @@ func TestWatchdogStopsWhileStuck(t *testing.T) {
 		tick()
 		<-g.asked
 		waitFor(uint64(i), 0)
-		if got := recv(t, srv); got != "WATCHDOG=1\n" {
+		if got := recv(t, srv); got != "WATCHDOG=1" {
 			t.Fatalf("ping %d: %q", i, got)
 		}
 	}
@@ -220,7 +220,7 @@ func TestWatchdogStopsWhileStuck(t *testing.T) {
 	clk.Advance(time.Second) // the stuck probe's bound passes: a fourth miss
 	<-g.asked                // the next probe, answered
 	waitFor(4, 4)
-	if got := recv(t, srv); got != "WATCHDOG=1\n" {
+	if got := recv(t, srv); got != "WATCHDOG=1" {
 		t.Fatalf("after recovery: %q", got)
 	}
 	cancel()
