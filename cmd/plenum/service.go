@@ -59,9 +59,14 @@ func (svc service) start(cfg *config.Config, log *slog.Logger) (*serviceRun, *sl
 // close closes the notification socket.
 func (sm *serviceRun) close() { sm.n.Close() }
 
-// extras are the service's health reports and the tests' derivations.
+// extras are the service's health reports (the watchdog's only when
+// the service manager asked for one) and the tests' derivations.
 func (sm *serviceRun) extras() extras {
-	return extras{reporters: []promexport.Reporter{sm.wd, sm.reloads}, derivations: sm.svc.derivations}
+	ex := extras{reporters: []promexport.Reporter{sm.reloads}, derivations: sm.svc.derivations}
+	if sm.wd.Interval > 0 {
+		ex.reporters = append(ex.reporters, sm.wd)
+	}
+	return ex
 }
 
 // watchdog returns the watchdog's Run, probing p's ingest loop.
