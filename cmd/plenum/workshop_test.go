@@ -317,11 +317,11 @@ type wallTile struct {
 	Stale bool   `json:"stale"`
 }
 
-// vmQuery runs an instant PromQL query on VictoriaMetrics and returns each
-// result's value by the values of the labels by, joined with "/".
-func vmQuery(base, q string, by ...string) (map[string]float64, error) {
-	u := base + "/api/v1/query?" + url.Values{"query": {q}, "nocache": {"1"},
-		"time": {strconv.FormatInt(time.Now().Add(5*time.Second).Unix(), 10)}}.Encode()
+// promQuery runs an instant PromQL query now on Prometheus or
+// VictoriaMetrics and returns each result's value by the values of the
+// labels by, joined with "/".
+func promQuery(base, q string, by ...string) (map[string]float64, error) {
+	u := base + "/api/v1/query?" + url.Values{"query": {q}, "nocache": {"1"}}.Encode()
 	resp, err := http.Get(u)
 	if err != nil {
 		return nil, err
@@ -501,7 +501,7 @@ var ruleMetricRE = regexp.MustCompile(`(^|[^:a-z_])(plenum_[a-z0-9_]+)`)
 func TestWorkshopTenCars(t *testing.T) {
 	const cars = 10
 	const window = 10 * time.Second // the load measurement
-	paths := interop.Need(t, "mosquitto victoria-metrics", "mosquitto", "mosquitto_passwd", "victoria-metrics")
+	paths := interop.Need(t, "mosquitto victoria-metrics prometheus", "mosquitto", "mosquitto_passwd", "victoria-metrics", "prometheus")
 	began := time.Now()
 	dir := t.TempDir()
 	bin := buildPlenum(t)
@@ -648,6 +648,37 @@ func TestWorkshopTenCars(t *testing.T) {
 	for _, c := range fleet {
 		c.p = startBg(t, c.name, bin, "run", "-config", filepath.Join(dir, c.name+".yaml"))
 	}
+
+	// Prometheus: the shipped prometheus.yml and rules, with a targets file
+	// naming the ten daemons and their vehicles.
+	promDir := filepath.Join(dir, "prometheus")
+	if err := os.MkdirAll(promDir, 0o755); err != nil {
+		t.Fatal(err)
+	}
+	for _, f := range []string{"prometheus.yml", "workshop-rules.yml"} {
+		b, err := os.ReadFile(filepath.Join(workshopDir, f))
+		if err != nil {
+			t.Fatal(err)
+		}
+		if err := os.WriteFile(filepath.Join(promDir, f), b, 0o644); err != nil {
+			t.Fatal(err)
+		}
+	}
+	var targets strings.Builder
+	for _, c := range fleet {
+		fmt.Fprintf(&targets, "- targets: ['%s']\n  labels: {vehicle: %s}\n", c.http, c.name)
+	}
+	if err := os.WriteFile(filepath.Join(promDir, "plenum-targets.yml"), []byte(targets.String()), 0o644); err != nil {
+		t.Fatal(err)
+	}
+	promBase := fmt.Sprintf("http://127.0.0.1:%d", interop.FreePort(t))
+	prom := startBg(t, "prometheus", paths[3], "--config.file="+filepath.Join(promDir, "prometheus.yml"),
+		"--storage.tsdb.path="+filepath.Join(promDir, "data"), "--web.listen-address="+strings.TrimPrefix(promBase, "http://"))
+	defer func() {
+		if t.Failed() {
+			t.Logf("prometheus:\n%s", tail(prom.out.String(), 3000))
+		}
+	}()
 	defer func() {
 		if t.Failed() {
 			for _, c := range fleet {
@@ -763,11 +794,11 @@ func TestWorkshopTenCars(t *testing.T) {
 
 	// The load of ten cars over a window.
 	type sample struct {
-		at                time.Time
-		mq, vm, cars, wal int64
-		msgs, msgBytes    float64
-		published         float64
-		rows, pushed      float64
+		at                 time.Time
+		mq, vm, prom, cars int64
+		msgs, msgBytes     float64
+		published          float64
+		rows, pushed       float64
 	}
 	vmRows := func() float64 {
 		n, ok := vmMetric(t, vmBase, "vm_rows_inserted_total", "type", "influx")
@@ -778,7 +809,7 @@ func TestWorkshopTenCars(t *testing.T) {
 	}
 	take := func() sample {
 		n, b := w.count()
-		s := sample{at: time.Now(), mq: cpuTicks(t, mq.cmd.Process.Pid), vm: cpuTicks(t, vm.cmd.Process.Pid),
+		s := sample{at: time.Now(), mq: cpuTicks(t, mq.cmd.Process.Pid), vm: cpuTicks(t, vm.cmd.Process.Pid), prom: cpuTicks(t, prom.cmd.Process.Pid),
 			msgs: float64(n), msgBytes: float64(b), rows: vmRows()}
 		for _, c := range fleet {
 			s.cars += cpuTicks(t, c.p.cmd.Process.Pid)
@@ -799,8 +830,8 @@ func TestWorkshopTenCars(t *testing.T) {
 	secs := s1.at.Sub(s0.at).Seconds()
 	hz := clockTicks()
 	core := func(d int64) float64 { return 100 * float64(d) / hz / secs } // % of one core
-	mqCPU, vmCPU, carsCPU := core(s1.mq-s0.mq), core(s1.vm-s0.vm), core(s1.cars-s0.cars)
-	mqRSS, vmRSS := residentBytes(t, mq.cmd.Process.Pid), residentBytes(t, vm.cmd.Process.Pid)
+	mqCPU, vmCPU, promCPU, carsCPU := core(s1.mq-s0.mq), core(s1.vm-s0.vm), core(s1.prom-s0.prom), core(s1.cars-s0.cars)
+	mqRSS, vmRSS, promRSS := residentBytes(t, mq.cmd.Process.Pid), residentBytes(t, vm.cmd.Process.Pid), residentBytes(t, prom.cmd.Process.Pid)
 	var carRSS int64
 	for _, c := range fleet {
 		carRSS += residentBytes(t, c.p.cmd.Process.Pid)
@@ -811,7 +842,24 @@ func TestWorkshopTenCars(t *testing.T) {
 	t.Logf("load of %d cars over %.1f s (CPU in %% of one core, from /proc/<pid>/stat utime+stime; memory VmRSS):", cars, secs)
 	t.Logf("  mosquitto:        CPU %5.1f %%, RSS %5.1f MiB; %6.0f messages/s published by the cars (their plenum_mqtt_published_messages_total), %6.0f/s (%.0f KiB/s of topics and payloads) delivered to one wall account on plenum/#", mqCPU, float64(mqRSS)/mib, published, msgs, msgBytes/1024)
 	t.Logf("  victoria-metrics: CPU %5.1f %%, RSS %5.1f MiB; %6.0f rows/s inserted (vm_rows_inserted_total{type=\"influx\"}) from %6.0f lines/s pushed (plenum_push_sent_lines_total)", vmCPU, float64(vmRSS)/mib, rows, pushed)
+	t.Logf("  prometheus:       CPU %5.1f %%, RSS %5.1f MiB; scraping %d daemons every 5 s, evaluating the workshop's rules", promCPU, float64(promRSS)/mib, cars)
 	t.Logf("  the %d daemons:   CPU %5.1f %% in all (%.1f %% each), RSS %5.1f MiB each", cars, carsCPU, carsCPU/cars, float64(carRSS)/cars/mib)
+
+	// Prometheus scrapes every daemon under its vehicle label, and the
+	// workshop's recording rules see every car's frames.
+	waitUntil(t, 40*time.Second, "prometheus to scrape every car and record its frame rate", func() (bool, string) {
+		ups, err1 := promQuery(promBase, `up{job="plenum"} == 1`, "vehicle")
+		rates, err2 := promQuery(promBase, `vehicle:plenum_source_frames:rate1m > 0`, "vehicle")
+		if err := errors.Join(err1, err2); err != nil {
+			return false, err.Error()
+		}
+		for _, n := range names {
+			if ups[n] != 1 || rates[n] == 0 {
+				return false, fmt.Sprintf("up %v, frame rates %v", ups, rates)
+			}
+		}
+		return len(ups) == cars && len(rates) == cars, fmt.Sprintf("up %v, frame rates %v", ups, rates)
+	})
 
 	// A car stops: the wall view shows it stale (and offline, by its last
 	// status), the others stay live.
@@ -829,6 +877,15 @@ func TestWorkshopTenCars(t *testing.T) {
 		return true
 	})
 	scancel()
+	// And Prometheus finds it down: WorkshopCarDown pending (it fires after
+	// a minute) for that car alone.
+	waitUntil(t, 40*time.Second, "WorkshopCarDown for "+stopped.name, func() (bool, string) {
+		down, err := promQuery(promBase, `ALERTS{alertname="WorkshopCarDown"}`, "vehicle", "alertstate")
+		if err != nil {
+			return false, err.Error()
+		}
+		return len(down) == 1 && down[stopped.name+"/pending"] == 1, fmt.Sprint(down)
+	})
 
 	// The metrics the workshop's rules read exist in a real scrape.
 	rules, err := os.ReadFile(filepath.Join(workshopDir, "workshop-rules.yml"))
@@ -894,10 +951,10 @@ func TestWorkshopTenCars(t *testing.T) {
 			resp.Body.Close()
 		}
 		var err1, err2, err3, err4 error
-		got, err1 = vmQuery(vmBase, `sum by (vehicle) (count_over_time(plenum_value[1h]))`, "vehicle")
-		gotEvents, err2 = vmQuery(vmBase, `sum by (vehicle) (count_over_time(plenum_event_duration_seconds[1h]))`, "vehicle")
-		gotSeries, err3 = vmQuery(vmBase, `count by (vehicle) (last_over_time(plenum_value[1h]))`, "vehicle")
-		runs, err4 = vmQuery(vmBase, `count by (vehicle, run) (last_over_time({__name__=~"plenum_.*"}[1h]))`, "vehicle", "run")
+		got, err1 = promQuery(vmBase, `sum by (vehicle) (count_over_time(plenum_value[1h]))`, "vehicle")
+		gotEvents, err2 = promQuery(vmBase, `sum by (vehicle) (count_over_time(plenum_event_duration_seconds[1h]))`, "vehicle")
+		gotSeries, err3 = promQuery(vmBase, `count by (vehicle) (last_over_time(plenum_value[1h]))`, "vehicle")
+		runs, err4 = promQuery(vmBase, `count by (vehicle, run) (last_over_time({__name__=~"plenum_.*"}[1h]))`, "vehicle", "run")
 		if err := errors.Join(err1, err2, err3, err4); err != nil {
 			t.Fatal(err)
 		}
@@ -962,8 +1019,8 @@ func TestWorkshopTenCars(t *testing.T) {
 	pushBytes := pushed * lineBytes
 	t.Logf("  push traffic: %.0f bytes a line, %.0f KiB/s of line protocol in all, %.0f KiB/s gzipped (gzip takes it %.1f times smaller)", lineBytes, pushBytes/1024, pushBytes/zratio/1024, zratio)
 	t.Logf("  victoria-metrics data: %.1f MiB after the test (vm_data_size_bytes), %.2f bytes per stored value sample, quality samples and indexes included; parts of a database this young are not merged yet, so this is more than a long-running one takes", vmDisk/mib, vmDisk/stored)
-	t.Logf("  at 50 cars, scaled linearly: mosquitto %.0f %% of a core, %.0f messages/s in (and as many out to each client reading plenum/#), victoria-metrics %.0f %% of a core, %.0f rows/s, %.1f GiB a day on disk; %.1f MiB/s of pushes (%.1f gzipped) and %.1f MiB/s of MQTT into the workshop network",
-		5*mqCPU, 5*published, 5*vmCPU, 5*rows, 5*pushed*vmDisk/stored*86400/(1<<30), 5*pushBytes/mib, 5*pushBytes/zratio/mib, 5*msgBytes/mib)
+	t.Logf("  at 50 cars, scaled linearly: mosquitto %.0f %% of a core, %.0f messages/s in (and as many out to each client reading plenum/#), victoria-metrics %.0f %% of a core, %.0f rows/s, %.1f GiB a day on disk, prometheus %.0f %% of a core; %.1f MiB/s of pushes (%.1f gzipped) and %.1f MiB/s of MQTT into the workshop network",
+		5*mqCPU, 5*published, 5*vmCPU, 5*rows, 5*pushed*vmDisk/stored*86400/(1<<30), 5*promCPU, 5*pushBytes/mib, 5*pushBytes/zratio/mib, 5*msgBytes/mib)
 	t.Logf("%d cars: %d lines recorded and stored; built in %v, all up after %v, done in %v",
 		cars, lines, built.Round(time.Millisecond), up.Round(time.Millisecond), time.Since(began).Round(time.Millisecond))
 }
