@@ -541,7 +541,8 @@ func TestWorkshopTenCars(t *testing.T) {
 		}
 	}
 
-	// The broker: the shipped configuration and ACL file, on a free port.
+	// The broker: the shipped configuration and ACL file, on a free port,
+	// included from a main configuration as Debian's includes conf.d.
 	aclText, err := os.ReadFile(filepath.Join(workshopDir, "mosquitto.acl"))
 	if err != nil {
 		t.Fatal(err)
@@ -555,15 +556,20 @@ func TestWorkshopTenCars(t *testing.T) {
 	}
 	mqPort := interop.FreePort(t)
 	conf := workshopBrokerConf(t, map[string]string{
-		"listener":             fmt.Sprintf("%d 127.0.0.1", mqPort),
-		"password_file":        pwFile,
-		"acl_file":             acl,
-		"persistence":          "false",
-		"persistence_location": mqDir + "/",
-		"log_dest":             "stdout",
+		"listener":      fmt.Sprintf("%d 127.0.0.1", mqPort),
+		"password_file": pwFile,
+		"acl_file":      acl,
 	})
+	confD := filepath.Join(mqDir, "conf.d")
+	if err := os.Mkdir(confD, 0o755); err != nil {
+		t.Fatal(err)
+	}
+	if err := os.WriteFile(filepath.Join(confD, "plenum.conf"), []byte(conf), 0o644); err != nil {
+		t.Fatal(err)
+	}
 	confPath := filepath.Join(mqDir, "mosquitto.conf")
-	if err := os.WriteFile(confPath, []byte(conf), 0o644); err != nil {
+	mainConf := fmt.Sprintf("persistence true\npersistence_location %s/\nlog_dest stdout\ninclude_dir %s\n", mqDir, confD)
+	if err := os.WriteFile(confPath, []byte(mainConf), 0o644); err != nil {
 		t.Fatal(err)
 	}
 	mq := startBg(t, "mosquitto", paths[0], "-c", confPath)
