@@ -112,7 +112,7 @@ func buildWith(ctx context.Context, cfg *config.Config, log *slog.Logger, open b
 	}
 
 	// MQTT: the embedded broker unless an external one is configured.
-	mcfg, err := cfg.Publisher(version, log)
+	mcfg, err := cfg.Publisher(thisBuild().Version, log)
 	if err != nil {
 		return nil, err
 	}
@@ -252,7 +252,7 @@ func (d *daemon) serveMetrics() error {
 		d.mux.Handle("/ve-table.csv", ve)
 	}
 	d.mux.HandleFunc("/{$}", func(w http.ResponseWriter, r *http.Request) { // "/" alone; other paths 404
-		fmt.Fprintf(w, "plenum %s for %s\n/console/  live console (driver, cell, wall)\n/metrics  Prometheus exposition\n\n%s\n", version, d.cfg.Vehicle, Safety)
+		fmt.Fprintf(w, "plenum %s for %s\n/console/  live console (driver, cell, wall)\n/metrics  Prometheus exposition\n\n%s\n", thisBuild().Version, d.cfg.Vehicle, Safety)
 	})
 	return nil
 }

@@ -23,9 +23,6 @@ import (
 	"github.com/plenum-engine/plenum/pipeline/sdnotify"
 )
 
-// version is set at build time with -ldflags "-X main.version=...".
-var version = "0.1.0-dev"
-
 // Safety is printed at start-up and in the README.
 const Safety = `Plenum is advisory only and is not a safety system. Never watch a screen while
 driving on a public road. Follow your dyno cell's and track's safety rules. Plenum only
@@ -60,7 +57,7 @@ commands:
   run-start   start a run in a running daemon
   run-stop    stop the run of a running daemon
   warning-ack acknowledge a raised warning in a running daemon
-  version     print the version
+  version     print the version, commit, date, Go version and platform
   help        print this, or help COMMAND for a command's flags
 
 plenum COMMAND -h lists a command's flags.
@@ -103,7 +100,7 @@ func runCommand(ctx context.Context, args []string, stdout, stderr io.Writer, lo
 	case "version":
 		fs := newFlagSet("version", "", "print the version", stdout)
 		if err = parseFlags(fs, args[1:]); err == nil {
-			fmt.Fprintln(stdout, "plenum", version)
+			fmt.Fprintln(stdout, thisBuild())
 		}
 	case "check":
 		err = cmdCheck(args[1:], stdout, log)
