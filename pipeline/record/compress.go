@@ -75,7 +75,8 @@ func DataFiles(dir string) ([]string, error) {
 }
 
 // CompressSegment compresses one closed data file (<n>.lp) into <n>.lp.gz
-// crash-safely (see above) at the given gzip level, and removes the .lp.
+// crash-safely (see above) at the given gzip level (0: DefaultGzipLevel),
+// and removes the .lp.
 // A segment already compressed (no .lp left) is not an error. On any error
 // the .lp is left in place and the .tmp removed. ctx ends a compression
 // in progress (the .lp stays).
@@ -91,6 +92,9 @@ func CompressSegment(ctx context.Context, path string, level int) error {
 		return fmt.Errorf("record: compress: %w", err)
 	}
 	defer in.Close()
+	if level == 0 {
+		level = DefaultGzipLevel
+	}
 	gzPath := path + ".gz"
 	tmp := gzPath + ".tmp"
 	if err := writeGzip(ctx, in, tmp, level); err != nil {
