@@ -192,7 +192,7 @@ func RecoverCompression(dir string) ([]CompressRecovered, error) {
 	var out []CompressRecovered
 	var errs []error
 	for _, r := range runs {
-		if !r.IsDir() {
+		if !r.IsDir() || strings.HasPrefix(r.Name(), ".") {
 			continue
 		}
 		rd := filepath.Join(dir, r.Name())
@@ -368,7 +368,7 @@ func ClosedSegments(dir string) ([]string, error) {
 	}
 	var out []string
 	for _, r := range runs {
-		if !r.IsDir() {
+		if !r.IsDir() || strings.HasPrefix(r.Name(), ".") {
 			continue
 		}
 		rd := filepath.Join(dir, r.Name())
@@ -490,4 +490,37 @@ func (c *Compressor) Report() pipeline.HealthReport {
 		},
 		Gauges: []pipeline.NamedValue{{Name: "queued_segments", Value: float64(len(c.q))}},
 	}
+}
+
+// PushedFile is the marker a run gets once the push target has
+// acknowledged its lines (MarkPushed): "complete" when every line was
+// acknowledged, "incomplete" when the pusher dropped some unsent.
+const PushedFile = "pushed"
+
+// MarkPushed writes the run directory's pushed marker, synced. A marker
+// already there is replaced.
+func MarkPushed(runDir string, complete bool) error {
+	text := "complete\n"
+	if !complete {
+		text = "incomplete: the pusher dropped lines of this run unsent\n"
+	}
+	p := filepath.Join(runDir, PushedFile)
+	os.Remove(p)
+	if err := writeSynced(p, []byte(text)); err != nil {
+		return err
+	}
+	if err := syncDir(runDir); err != nil {
+		return fmt.Errorf("record: %w", err)
+	}
+	return nil
+}
+
+// Pushed reports whether the run directory has a pushed marker and whether
+// it says every line was acknowledged.
+func Pushed(runDir string) (marked, complete bool) {
+	b, err := os.ReadFile(filepath.Join(runDir, PushedFile))
+	if err != nil {
+		return false, false
+	}
+	return true, strings.HasPrefix(string(b), "complete")
 }

@@ -176,7 +176,7 @@ func New(cfg Config, d Deps) *Controller {
 		c.cfg.MinFreeBytes = DefaultMinFreeBytes
 	}
 	if c.space == nil {
-		c.space = diskSpace
+		c.space = DiskSpace
 	}
 	if c.emit == nil {
 		c.emit = func(pipeline.Event) {}
