@@ -498,8 +498,12 @@ func (c *Compressor) Report() pipeline.HealthReport {
 const PushedFile = "pushed"
 
 // MarkPushed writes the run directory's pushed marker, synced. A marker
-// already there is replaced.
+// already there is replaced; a run directory that is gone (removed) needs
+// none.
 func MarkPushed(runDir string, complete bool) error {
+	if _, err := os.Stat(filepath.Join(runDir, "run.json")); errors.Is(err, os.ErrNotExist) {
+		return nil
+	}
 	text := "complete\n"
 	if !complete {
 		text = "incomplete: the pusher dropped lines of this run unsent\n"
