@@ -13,6 +13,7 @@ import (
 	"time"
 
 	"github.com/plenum-engine/plenum/cmd/plenum/config"
+	"github.com/plenum-engine/plenum/pipeline/record"
 )
 
 // The recorded lines reach an InfluxDB-compatible write endpoint exactly as
@@ -59,7 +60,7 @@ func TestPushRecordedRun(t *testing.T) {
 	if len(ents) != 1 {
 		t.Fatalf("%d runs", len(ents))
 	}
-	want, err := os.ReadFile(filepath.Join(recDir, ents[0].Name(), "0001.lp"))
+	want, err := record.ReadFile(filepath.Join(recDir, ents[0].Name(), "0001.lp")) // or its .lp.gz
 	if err != nil || len(want) == 0 {
 		t.Fatalf("run data: %v", err)
 	}
