@@ -34,10 +34,10 @@ import (
 // such a pair (DataFiles). A failed compression leaves the .lp in place,
 // readable as before.
 
-// DefaultGzipLevel is the level segments are compressed with: the demo's
-// data takes 8.9 bytes a point at level 6 against 11.1 at level 1 and 8.1
-// at level 9 (gzip(1) on a 60 s demo recording of 33 MB), and level 6
-// costs a fraction of level 9's time.
+// DefaultGzipLevel is the level segments are compressed with: 60 s of the
+// demo's data (136 bytes a point written) takes 8.2 bytes a point at level
+// 6 against 11.1 at level 1 and 7.1 at level 9, and level 9 takes ten
+// times level 6's time (BenchmarkDemoBytesPerPoint in cmd/plenum).
 const DefaultGzipLevel = gzip.DefaultCompression
 
 // DataFiles returns the data files of a run directory in recorded order:
