@@ -389,16 +389,29 @@ func ClosedSegments(dir string) ([]string, error) {
 }
 
 // Run compresses what Closed and the rescans find until ctx ends, then
-// goes on for at most Config.Drain with what is queued. It returns nil.
+// goes on for at most Config.Drain with what is queued (the segment the
+// shutdown closed last). It returns nil.
 func (c *Compressor) Run(ctx context.Context) error {
+	// Work goes on past ctx by the drain: a compression under way when
+	// ctx ends is finished, not thrown away.
+	wctx, stopWork := context.WithCancel(context.WithoutCancel(ctx))
+	defer stopWork()
+	var timer atomic.Pointer[time.Timer]
+	stopAfter := context.AfterFunc(ctx, func() { timer.Store(time.AfterFunc(c.cfg.Drain, stopWork)) })
+	defer func() {
+		stopAfter()
+		if t := timer.Load(); t != nil {
+			t.Stop()
+		}
+	}()
 	c.rescan()
 	for {
 		select {
 		case <-ctx.Done():
-			c.drain()
+			c.drain(wctx)
 			return nil
 		case p := <-c.q:
-			c.compress(ctx, p)
+			c.compress(wctx, p)
 		case <-c.kick:
 			c.rescan()
 		case <-c.cfg.After(c.cfg.RescanEvery):
@@ -407,23 +420,18 @@ func (c *Compressor) Run(ctx context.Context) error {
 	}
 }
 
-// drain compresses what is queued, for at most Config.Drain.
-func (c *Compressor) drain() {
-	ctx, cancel := context.WithTimeout(context.Background(), c.cfg.Drain)
-	defer cancel()
-	for {
+// drain compresses what is queued until ctx ends.
+func (c *Compressor) drain(ctx context.Context) {
+	for ctx.Err() == nil {
 		select {
 		case p := <-c.q:
 			c.compress(ctx, p)
 		default:
 			return
 		}
-		if ctx.Err() != nil {
-			if n := len(c.q); n > 0 {
-				c.cfg.Log.Warn("record: stopping with closed segments not yet compressed; they are compressed at the next start", "segments", n)
-			}
-			return
-		}
+	}
+	if n := len(c.q); n > 0 || ctx.Err() != nil {
+		c.cfg.Log.Warn("record: stopping with closed segments not yet compressed; they are compressed at the next start", "queued", n)
 	}
 }
 

@@ -328,3 +328,24 @@ func TestCompressorRescanFindsLeftovers(t *testing.T) {
 		t.Error("run b's failed compression did not leave its .lp")
 	}
 }
+
+// TestCompressorFinishesTheLastSegmentAtShutdown: the segment a shutdown
+// closes reaches the compressor just as its own context ends (its stage
+// stops right after the recorder's); it is compressed all the same, within
+// the drain.
+func TestCompressorFinishesTheLastSegmentAtShutdown(t *testing.T) {
+	for range 20 { // either select case may win: both must compress
+		dir := t.TempDir()
+		_, closed := recordRun(t, dir, "r1", 500, 0)
+		c := NewCompressor(CompressorConfig{After: func(time.Duration) <-chan time.Time { return nil }})
+		c.Closed(closed[0])
+		ctx, cancel := context.WithCancel(context.Background())
+		cancel()
+		if err := c.Run(ctx); err != nil {
+			t.Fatal(err)
+		}
+		if !exists(closed[0]+".gz") || exists(closed[0]) {
+			t.Fatalf("the last segment was not compressed at the shutdown; report %+v", c.Report())
+		}
+	}
+}
