@@ -94,4 +94,9 @@ func TestPushRecordedRun(t *testing.T) {
 			got.Len(), bytes.Count(got.Bytes(), []byte{'\n'}), len(want), bytes.Count(want, []byte{'\n'}))
 	}
 	t.Logf("%d lines pushed in %d requests (a third of them refused with 503 and retried)", bytes.Count(want, []byte{'\n'}), calls)
+	// Every line acknowledged, across the restart: the run is marked
+	// pushed (what retention waits for when pushing is on).
+	if marked, complete := record.Pushed(filepath.Join(recDir, ents[0].Name())); !marked || !complete {
+		t.Errorf("the run's pushed marker: there %v, complete %v", marked, complete)
+	}
 }
