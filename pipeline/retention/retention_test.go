@@ -200,7 +200,9 @@ func TestKeeper(t *testing.T) {
 		t.Errorf("the removal's log lacks run, age, size or reason:\n%s", s)
 	}
 
-	// 20 h later r2 is over the age but not pushed: held, logged once.
+	// 20 h later r2 is over the age but not pushed: held, logged once. The
+	// keeper waits on the clock once its first pass is done.
+	waitFor("the keeper waiting on the clock", func() bool { return clk.Pending() > 0 })
 	clk.Advance(20 * time.Hour)
 	waitFor("r2 held", func() bool { return gauge("held_unpushed_runs") == 1 })
 	for range 3 { // more passes, as the minutes go by
