@@ -267,10 +267,10 @@ func (k *Keeper) Pass() ([]Removal, error) {
 		}
 		gone[r.Run.ID] = true
 		done = append(done, r)
-		k.removed.Add(1)
-		k.removedBytes.Add(uint64(r.Run.Bytes))
 		k.cfg.Log.Info("retention: run removed", "run", r.Run.ID, "age", r.Age.Round(time.Second),
 			"bytes", r.Run.Bytes, "reason", r.Reason, "free_bytes", free)
+		k.removedBytes.Add(uint64(r.Run.Bytes))
+		k.removed.Add(1)
 	}
 	var heldN, heldB int64
 	heldNow := map[string]bool{}
