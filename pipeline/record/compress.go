@@ -170,6 +170,26 @@ func syncDir(dir string) error {
 	return d.Sync()
 }
 
+// RunDirs returns the run directories under dir, in name order: its
+// subdirectories, less those whose name starts with a dot (a run being
+// removed). A dir that does not exist holds none.
+func RunDirs(dir string) ([]string, error) {
+	ents, err := os.ReadDir(dir)
+	if err != nil {
+		if errors.Is(err, os.ErrNotExist) {
+			return nil, nil
+		}
+		return nil, fmt.Errorf("record: %w", err)
+	}
+	var out []string
+	for _, e := range ents {
+		if e.IsDir() && !strings.HasPrefix(e.Name(), ".") {
+			out = append(out, filepath.Join(dir, e.Name()))
+		}
+	}
+	return out, nil
+}
+
 // CompressRecovered says what RecoverCompression did in one run directory.
 type CompressRecovered struct {
 	Path   string // the file acted on
@@ -182,20 +202,13 @@ type CompressRecovered struct {
 // to the same bytes, else the .lp.gz is removed (the .lp is compressed
 // again later).
 func RecoverCompression(dir string) ([]CompressRecovered, error) {
-	runs, err := os.ReadDir(dir)
+	runs, err := RunDirs(dir)
 	if err != nil {
-		if errors.Is(err, os.ErrNotExist) {
-			return nil, nil
-		}
-		return nil, fmt.Errorf("record: %w", err)
+		return nil, err
 	}
 	var out []CompressRecovered
 	var errs []error
-	for _, r := range runs {
-		if !r.IsDir() || strings.HasPrefix(r.Name(), ".") {
-			continue
-		}
-		rd := filepath.Join(dir, r.Name())
+	for _, rd := range runs {
 		tmps, _ := filepath.Glob(filepath.Join(rd, "*.lp.gz.tmp"))
 		for _, t := range tmps {
 			if err := os.Remove(t); err != nil {
@@ -362,16 +375,12 @@ func (c *Compressor) Rescan() {
 // to: every .lp of a run that has ended (normally or not), and every .lp
 // but the last of a run still being recorded.
 func ClosedSegments(dir string) ([]string, error) {
-	runs, err := os.ReadDir(dir)
+	runs, err := RunDirs(dir)
 	if err != nil {
 		return nil, err
 	}
 	var out []string
-	for _, r := range runs {
-		if !r.IsDir() || strings.HasPrefix(r.Name(), ".") {
-			continue
-		}
-		rd := filepath.Join(dir, r.Name())
+	for _, rd := range runs {
 		lps, _ := filepath.Glob(filepath.Join(rd, "*.lp"))
 		sort.Strings(lps)
 		ended := exists(filepath.Join(rd, "ended")) || exists(filepath.Join(rd, "ended_abnormally"))

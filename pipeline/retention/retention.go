@@ -20,7 +20,6 @@ import (
 	"os"
 	"path/filepath"
 	"sort"
-	"strings"
 	"sync"
 	"sync/atomic"
 	"time"
@@ -197,25 +196,19 @@ func (k *Keeper) Run(ctx context.Context) error {
 // from run.json (else the directory's time), its size on disk, whether it
 // is marked pushed completely. current is the id being recorded.
 func List(dir, current string) ([]Run, error) {
-	ents, err := os.ReadDir(dir)
+	dirs, err := record.RunDirs(dir)
 	if err != nil {
-		if errors.Is(err, os.ErrNotExist) {
-			return nil, nil
-		}
 		return nil, fmt.Errorf("retention: %w", err)
 	}
 	var out []Run
-	for _, e := range ents {
-		if !e.IsDir() || strings.HasPrefix(e.Name(), ".") {
-			continue
-		}
-		rd := filepath.Join(dir, e.Name())
+	for _, rd := range dirs {
+		id := filepath.Base(rd)
 		b, err := os.ReadFile(filepath.Join(rd, "run.json"))
 		if err != nil {
 			continue // not a run
 		}
 		var m record.Meta
-		r := Run{ID: e.Name(), Current: e.Name() == current}
+		r := Run{ID: id, Current: id == current}
 		if json.Unmarshal(b, &m) == nil && !m.Start.IsZero() {
 			r.Start = m.Start
 		} else if st, err := os.Stat(rd); err == nil {
