@@ -59,7 +59,16 @@ func loadMarks(dir string, end int64) (*marks, error) {
 	if err != nil {
 		return nil, fmt.Errorf("tsdbpush: marks: %w", err)
 	}
+	m.resolved = parseMarks(b)
+	return m, nil
+}
+
+// parseMarks reads the lines of a marks file; a damaged line is skipped
+// (its run is then never told pushed: kept rather than lost).
+func parseMarks(b []byte) []resolvedMark {
+	var out []resolvedMark
 	sc := bufio.NewScanner(bytes.NewReader(b))
+	sc.Buffer(nil, 1<<20)
 	for sc.Scan() {
 		f := strings.Fields(sc.Text())
 		if len(f) != 4 {
@@ -67,12 +76,25 @@ func loadMarks(dir string, end int64) (*marks, error) {
 		}
 		start, err1 := strconv.ParseInt(f[1], 10, 64)
 		e, err2 := strconv.ParseInt(f[2], 10, 64)
-		if err1 != nil || err2 != nil || (f[3] != "0" && f[3] != "1") {
+		if err1 != nil || err2 != nil || start < 0 || e < start || (f[3] != "0" && f[3] != "1") {
 			continue
 		}
-		m.resolved = append(m.resolved, resolvedMark{name: f[0], start: start, end: e, lossy: f[3] == "1"})
+		out = append(out, resolvedMark{name: f[0], start: start, end: e, lossy: f[3] == "1"})
 	}
-	return m, nil
+	return out
+}
+
+// formatMarks is the file's text for marks.
+func formatMarks(marks []resolvedMark) []byte {
+	var b bytes.Buffer
+	for _, r := range marks {
+		lossy := 0
+		if r.lossy {
+			lossy = 1
+		}
+		fmt.Fprintf(&b, "%s %d %d %d\n", r.name, r.start, r.end, lossy)
+	}
+	return b.Bytes()
 }
 
 // add notes a mark at the bytes appended so far.
@@ -119,6 +141,15 @@ func (m *marks) flushed(n int, next, from, to int64) error {
 				r.lossy, changed = true, true
 			}
 		}
+		if to > m.lastEnd {
+			// Bytes after the last resolved mark: every byte written since
+			// it belongs to the next mark, pending or not yet made.
+			if len(m.pending) > 0 {
+				m.pending[0].lossy = true
+			} else {
+				m.lossNext = true
+			}
+		}
 	}
 	if !changed {
 		return nil
@@ -161,14 +192,7 @@ func (m *marks) settle(acked int64, onPushed func(name string, complete bool) er
 
 // write replaces the file with the resolved marks; mu is held.
 func (m *marks) write() error {
-	var b bytes.Buffer
-	for _, r := range m.resolved {
-		lossy := 0
-		if r.lossy {
-			lossy = 1
-		}
-		fmt.Fprintf(&b, "%s %d %d %d\n", r.name, r.start, r.end, lossy)
-	}
+	b := bytes.NewBuffer(formatMarks(m.resolved))
 	tmp := m.path + ".tmp"
 	f, err := os.Create(tmp)
 	if err != nil {

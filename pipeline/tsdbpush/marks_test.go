@@ -178,3 +178,51 @@ func TestMarkCoversWhatAnEarlierProcessLeft(t *testing.T) {
 		t.Fatalf("server has %d lines", len(s.got()))
 	}
 }
+
+// TestMarkIncompleteWhenTheBoundDrops: while the server is away the
+// backlog's bound removes the oldest unsent segments; the runs whose lines
+// were in them are told incomplete, a later run complete.
+func TestMarkIncompleteWhenTheBoundDrops(t *testing.T) {
+	s := newSink(t, func(int, []byte, http.ResponseWriter) int { return 503 })
+	cfg := testConfig(t, s.url())
+	cfg.MaxBacklogBytes = 16 << 10
+	cfg.SegmentBytes = 4 << 10
+	var o told
+	cfg.OnPushed = o.onPushed
+	p, err := Open(cfg)
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer p.Close()
+	stop := running(t, p)
+	feed := func(lines []string) {
+		for i := 0; i < len(lines); i += 10 {
+			appendAll(t, p, lines[i:min(i+10, len(lines))], 10)
+			waitFor(t, "staged lines written", func() bool { return p.stage.size() == 0 })
+		}
+	}
+	feed(genLines(100, 1e18)) // about 11 KB: within the bound
+	p.Mark("early")
+	feed(genLines(300, 2e18)) // 33 KB more: the oldest segments go
+	p.Mark("middle")
+	waitFor(t, "segments dropped", func() bool { return p.Stats().DroppedSegments > 0 })
+	s.setAnswer(nil)
+	waitFor(t, "both told", func() bool {
+		_, a := o.get("early")
+		_, b := o.get("middle")
+		return a && b
+	})
+	feed(genLines(10, 3e18))
+	p.Mark("late")
+	waitFor(t, "late told", func() bool { _, ok := o.get("late"); return ok })
+	stop()
+	if c, _ := o.get("early"); c {
+		t.Error("early: its lines were dropped by the bound, told complete")
+	}
+	if c, _ := o.get("middle"); c {
+		t.Error("middle: lines of it were dropped by the bound, told complete")
+	}
+	if c, _ := o.get("late"); !c {
+		t.Error("late: nothing dropped, told incomplete")
+	}
+}
