@@ -121,10 +121,10 @@ func (m *marks) dropped() {
 // put them in the backlog (or dropped them), which now ends at next, and
 // that the bound removed the unsent bytes [from, to). It resolves the
 // marks whose bytes are all in, and rewrites the file when anything
-// changed.
+// changed. Only the writer calls flushed and settle, one at a time; the
+// file is written outside the mutex, so Mark never waits on the disk.
 func (m *marks) flushed(n int, next, from, to int64) error {
 	m.mu.Lock()
-	defer m.mu.Unlock()
 	m.taken += uint64(n)
 	changed := false
 	for len(m.pending) > 0 && m.pending[0].at <= m.taken {
@@ -151,48 +151,64 @@ func (m *marks) flushed(n int, next, from, to int64) error {
 			}
 		}
 	}
+	text := formatMarks(m.resolved)
+	m.mu.Unlock()
 	if !changed {
 		return nil
 	}
-	return m.write()
+	return m.write(text)
 }
 
 // settle tells onPushed of every resolved mark the cursor has passed and
 // forgets those it took; it returns the first error.
 func (m *marks) settle(acked int64, onPushed func(name string, complete bool) error) error {
+	if onPushed == nil {
+		return nil
+	}
 	m.mu.Lock()
-	defer m.mu.Unlock()
-	if onPushed == nil || len(m.resolved) == 0 {
+	var due []resolvedMark
+	for _, r := range m.resolved {
+		if r.end <= acked {
+			due = append(due, r)
+		}
+	}
+	m.mu.Unlock()
+	if len(due) == 0 {
 		return nil
 	}
 	var firstErr error
-	keep := m.resolved[:0]
-	for _, r := range m.resolved {
-		if r.end > acked {
-			keep = append(keep, r)
-			continue
-		}
+	told := map[resolvedMark]bool{}
+	for _, r := range due {
 		if err := onPushed(r.name, !r.lossy); err != nil {
 			if firstErr == nil {
 				firstErr = err
 			}
+			continue
+		}
+		told[r] = true
+	}
+	if len(told) == 0 {
+		return firstErr
+	}
+	m.mu.Lock()
+	keep := m.resolved[:0]
+	for _, r := range m.resolved {
+		if !told[r] {
 			keep = append(keep, r)
 		}
 	}
-	changed := len(keep) != len(m.resolved)
 	m.resolved = keep
-	if !changed {
-		return firstErr
-	}
-	if err := m.write(); err != nil && firstErr == nil {
+	text := formatMarks(m.resolved)
+	m.mu.Unlock()
+	if err := m.write(text); err != nil && firstErr == nil {
 		firstErr = err
 	}
 	return firstErr
 }
 
-// write replaces the file with the resolved marks; mu is held.
-func (m *marks) write() error {
-	b := bytes.NewBuffer(formatMarks(m.resolved))
+// write replaces the file with text (tmp, fsync, rename).
+func (m *marks) write(text []byte) error {
+	b := bytes.NewBuffer(text)
 	tmp := m.path + ".tmp"
 	f, err := os.Create(tmp)
 	if err != nil {
