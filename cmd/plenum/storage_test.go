@@ -3,13 +3,17 @@ package main
 import (
 	"bytes"
 	"context"
+	"encoding/json"
 	"fmt"
+	"io"
+	"net/http"
 	"os"
 	"path/filepath"
 	"strings"
 	"testing"
 	"time"
 
+	"github.com/plenum-engine/plenum/cmd/plenum/config"
 	"github.com/plenum-engine/plenum/pipeline"
 	"github.com/plenum-engine/plenum/pipeline/record"
 )
@@ -197,5 +201,74 @@ func BenchmarkDemoBytesPerPoint(b *testing.B) {
 			b.ReportMetric(float64(b.Elapsed().Nanoseconds())/float64(b.N)/float64(points), "ns/point-compress")
 			b.ReportMetric(float64(points), "points")
 		})
+	}
+}
+
+// TestDaemonCompressesAndRetains runs the demo daemon over a record
+// directory holding earlier runs: the runs older than record.retain's age
+// are removed at the start, the recent one is kept and its segment
+// compressed, both counted in the metrics; the daemon's own run ends
+// compressed.
+func TestDaemonCompressesAndRetains(t *testing.T) {
+	recDir := t.TempDir()
+	mk := func(id string, start time.Time) string {
+		rd := filepath.Join(recDir, id)
+		os.MkdirAll(rd, 0o755)
+		m, _ := json.Marshal(record.Meta{ID: id, Vehicle: "brackenfell-rs", Start: start})
+		os.WriteFile(filepath.Join(rd, "run.json"), m, 0o644)
+		os.WriteFile(filepath.Join(rd, "0001.lp"), []byte("plenum,channel=engine_speed,run="+id+",source=bench_mcu,vehicle=brackenfell-rs value=900,quality=\"ok\" "+
+			fmt.Sprint(start.UnixNano())+"\n"), 0o644)
+		os.WriteFile(filepath.Join(rd, "ended"), []byte("x\n"), 0o644)
+		return rd
+	}
+	now := time.Now()
+	old1 := mk("old-1", now.Add(-90*24*time.Hour))
+	old2 := mk("old-2", now.Add(-31*24*time.Hour))
+	recent := mk("recent", now.Add(-2*time.Hour))
+	ctx, cancel := context.WithCancel(context.Background())
+	defer cancel()
+	httpAddr, _, done := startDemo(t, ctx, 4, func(c *config.Config) {
+		c.Record.Dir = recDir
+		c.Record.Retain = config.Retain{MaxAgeDays: 30}
+	})
+	gone := func(p string) bool { _, err := os.Stat(p); return os.IsNotExist(err) }
+	deadline := time.Now().Add(20 * time.Second)
+	for !(gone(old1) && gone(old2) && gone(filepath.Join(recent, "0001.lp"))) {
+		if time.Now().After(deadline) {
+			t.Fatalf("old runs gone %v %v, recent run compressed %v", gone(old1), gone(old2), gone(filepath.Join(recent, "0001.lp")))
+		}
+		time.Sleep(20 * time.Millisecond)
+	}
+	if b, err := record.ReadFile(filepath.Join(recent, "0001.lp.gz")); err != nil || !bytes.Contains(b, []byte("run=recent")) {
+		t.Errorf("the recent run's compressed segment: %q, %v", b, err)
+	}
+	resp, err := http.Get("http://" + httpAddr + "/metrics")
+	if err != nil {
+		t.Fatal(err)
+	}
+	metrics, _ := io.ReadAll(resp.Body)
+	resp.Body.Close()
+	for _, want := range []string{
+		`plenum_retention_removed_runs_total{retention="record"} 2`,
+		`plenum_compressor_compressed_segments_total{compressor="record"} 1`,
+		`plenum_retention_held_unpushed_runs{retention="record"} 0`,
+	} {
+		if !bytes.Contains(metrics, []byte(want)) {
+			t.Errorf("metrics lack %s", want)
+		}
+	}
+	cancel()
+	if err := <-done; err != nil {
+		t.Fatal(err)
+	}
+	runDirs, _ := record.RunDirs(recDir)
+	if len(runDirs) != 2 {
+		t.Fatalf("runs left: %v, want the recent one and the daemon's own", runDirs)
+	}
+	for _, rd := range runDirs {
+		files, _ := record.DataFiles(rd)
+		if len(files) != 1 || !strings.HasSuffix(files[0], ".lp.gz") {
+			t.Errorf("%s: data files %v, want one .lp.gz", rd, files)
+		}
 	}
 }
