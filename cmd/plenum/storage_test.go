@@ -242,20 +242,33 @@ func TestDaemonCompressesAndRetains(t *testing.T) {
 	if b, err := record.ReadFile(filepath.Join(recent, "0001.lp.gz")); err != nil || !bytes.Contains(b, []byte("run=recent")) {
 		t.Errorf("the recent run's compressed segment: %q, %v", b, err)
 	}
-	resp, err := http.Get("http://" + httpAddr + "/metrics")
-	if err != nil {
-		t.Fatal(err)
-	}
-	metrics, _ := io.ReadAll(resp.Body)
-	resp.Body.Close()
-	for _, want := range []string{
+	// The counters follow the files by a moment: wait for them.
+	wants := []string{
 		`plenum_retention_removed_runs_total{retention="record"} 2`,
 		`plenum_compressor_compressed_segments_total{compressor="record"} 1`,
 		`plenum_retention_held_unpushed_runs{retention="record"} 0`,
-	} {
-		if !bytes.Contains(metrics, []byte(want)) {
-			t.Errorf("metrics lack %s", want)
+	}
+	var metrics []byte
+	for {
+		resp, err := http.Get("http://" + httpAddr + "/metrics")
+		if err != nil {
+			t.Fatal(err)
 		}
+		metrics, _ = io.ReadAll(resp.Body)
+		resp.Body.Close()
+		missing := ""
+		for _, w := range wants {
+			if !bytes.Contains(metrics, []byte(w)) {
+				missing = w
+			}
+		}
+		if missing == "" {
+			break
+		}
+		if time.Now().After(deadline) {
+			t.Fatalf("metrics lack %s", missing)
+		}
+		time.Sleep(20 * time.Millisecond)
 	}
 	cancel()
 	if err := <-done; err != nil {
