@@ -22,6 +22,7 @@ import (
 	"github.com/plenum-engine/plenum/pipeline/mqttpub"
 	"github.com/plenum-engine/plenum/pipeline/promexport"
 	"github.com/plenum-engine/plenum/pipeline/record"
+	"github.com/plenum-engine/plenum/pipeline/retention"
 	"github.com/plenum-engine/plenum/pipeline/runs"
 	"github.com/plenum-engine/plenum/pipeline/stages"
 	"github.com/plenum-engine/plenum/pipeline/tsdbpush"
@@ -38,6 +39,8 @@ type daemon struct {
 	rr      *runs.Controller   // nil without record.dir
 	pub     *mqttpub.Publisher // live values, events and summaries
 	pusher  *tsdbpush.Pusher   // nil without record.push
+	comp    *record.Compressor // nil without record.dir or with compress: off
+	keep    *retention.Keeper  // nil without record.retain
 	brk     *broker.Broker     // nil with an external broker
 	follow  *fleet.Follower    // nil unless following other vehicles
 	evm     *promexport.Events
@@ -105,6 +108,13 @@ func buildWith(ctx context.Context, cfg *config.Config, log *slog.Logger, open b
 		return nil, err
 	}
 	if push && open {
+		recDir := cfg.Record.Dir
+		pc.OnPushed = func(run string, complete bool) error {
+			if d.keep != nil {
+				d.keep.Kick()
+			}
+			return record.MarkPushed(filepath.Join(recDir, run), complete)
+		}
 		if d.pusher, err = tsdbpush.Open(pc); err != nil {
 			return nil, fmt.Errorf("record.push: %w", err)
 		}
@@ -138,13 +148,26 @@ func buildWith(ctx context.Context, cfg *config.Config, log *slog.Logger, open b
 			return nil, err
 		}
 		if open {
+			fixedGz, err := record.RecoverCompression(cfg.Record.Dir)
+			if err != nil {
+				log.Warn("recovering compressions cut short", "err", err)
+			}
+			for _, f := range fixedGz {
+				log.Warn("a compression was cut short; finished", "file", f.Path, "action", f.Action)
+			}
 			if fixed, err := record.Recover(cfg.Record.Dir); err != nil {
 				log.Warn("recovering earlier runs", "err", err)
 			} else {
 				for _, f := range fixed {
 					log.Warn("a run was cut short; its torn tail was cut and it is marked ended_abnormally", "run", f.Run, "cut_bytes", f.CutBytes)
+					if d.pusher != nil {
+						d.pusher.Mark(f.Run) // pushed once what the backlog holds of it is acknowledged
+					}
 				}
 			}
+		}
+		if cc, ok := cfg.Compressor(log); ok {
+			d.comp = record.NewCompressor(cc)
 		}
 		// The recorder must see every sample: a ring of several seconds.
 		deps := runs.Deps{Registry: d.reg, Sub: d.p.Subscribe("recorder", 1<<18), Store: d.p.Store(), Emit: d.p.Emit, Log: log,
@@ -153,7 +176,22 @@ func buildWith(ctx context.Context, cfg *config.Config, log *slog.Logger, open b
 		if d.pusher != nil {
 			deps.Forward = d.pusher
 		}
+		if d.comp != nil {
+			deps.Closed = d.comp.Closed
+		}
+		deps.Ended = func(run string) {
+			if d.pusher != nil {
+				d.pusher.Mark(run)
+			}
+			if d.keep != nil {
+				d.keep.Kick()
+			}
+		}
 		d.rr = runs.New(rc, deps)
+		if kc, ok := cfg.Retention(log); ok {
+			kc.Current = d.rr.Current
+			d.keep = retention.New(kc)
+		}
 		d.mux.Handle("/api/runs/", d.rr.Handler())
 		d.mux.Handle("/api/warnings/", d.rr.Handler())
 		if cfg.MQTT.Commands {
@@ -215,6 +253,12 @@ func (d *daemon) serveMetrics() error {
 	}
 	if d.pusher != nil {
 		parts = append(parts, d.pusher)
+	}
+	if d.comp != nil {
+		parts = append(parts, d.comp)
+	}
+	if d.keep != nil {
+		parts = append(parts, d.keep)
 	}
 	if d.brk != nil {
 		parts = append(parts, d.brk)
@@ -328,6 +372,18 @@ func runDaemonWith(ctx context.Context, cfg *config.Config, stdout io.Writer, lo
 	}
 	if d.follow != nil {
 		st[1] = append(st[1], stages.Part{Name: "follow", Run: d.follow.Run})
+	}
+	// Compression and retention stop after the recorder and the pusher:
+	// the run closed by the shutdown is compressed now.
+	var storage stages.Stage
+	if d.comp != nil {
+		storage = append(storage, stages.Part{Name: "compress", Run: d.comp.Run})
+	}
+	if d.keep != nil {
+		storage = append(storage, stages.Part{Name: "retention", Run: d.keep.Run})
+	}
+	if storage != nil {
+		st = append(st, storage)
 	}
 	if d.pusher != nil {
 		st = append(st, stages.Stage{{Name: "push", Run: d.pusher.Run}})

@@ -143,7 +143,12 @@ func TestDemoRecordingHasNoDuplicateKeys(t *testing.T) {
 	if code := run(args, &so, &se); code != 0 {
 		t.Fatalf("demo: %d %s %s", code, so.String(), se.String())
 	}
-	files, _ := filepath.Glob(filepath.Join(dir, "*", "*.lp"))
+	var files []string // .lp, or .lp.gz once the compressor has had it
+	runDirs, _ := record.RunDirs(dir)
+	for _, rd := range runDirs {
+		f, _ := record.DataFiles(rd)
+		files = append(files, f...)
+	}
 	if len(files) == 0 {
 		t.Fatalf("no recording under %s:\n%s", dir, so.String())
 	}

@@ -18,6 +18,7 @@ import (
 	"github.com/plenum-engine/plenum/cmd/plenum/config"
 	"github.com/plenum-engine/plenum/pipeline/broker"
 	"github.com/plenum-engine/plenum/pipeline/mqttpub"
+	"github.com/plenum-engine/plenum/pipeline/record"
 )
 
 // gate is a TCP forwarder standing in for the network path to the broker:
@@ -73,7 +74,7 @@ type lpEvent struct {
 // recordedEvents reads the plenum_event points of a run, in file order.
 func recordedEvents(t *testing.T, dir string) []lpEvent {
 	t.Helper()
-	b, err := os.ReadFile(filepath.Join(dir, "0001.lp"))
+	b, err := record.ReadFile(filepath.Join(dir, "0001.lp")) // or its .lp.gz
 	if err != nil {
 		t.Fatal(err)
 	}

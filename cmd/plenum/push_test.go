@@ -13,6 +13,7 @@ import (
 	"time"
 
 	"github.com/plenum-engine/plenum/cmd/plenum/config"
+	"github.com/plenum-engine/plenum/pipeline/record"
 )
 
 // The recorded lines reach an InfluxDB-compatible write endpoint exactly as
@@ -59,7 +60,7 @@ func TestPushRecordedRun(t *testing.T) {
 	if len(ents) != 1 {
 		t.Fatalf("%d runs", len(ents))
 	}
-	want, err := os.ReadFile(filepath.Join(recDir, ents[0].Name(), "0001.lp"))
+	want, err := record.ReadFile(filepath.Join(recDir, ents[0].Name(), "0001.lp")) // or its .lp.gz
 	if err != nil || len(want) == 0 {
 		t.Fatalf("run data: %v", err)
 	}
@@ -93,4 +94,9 @@ func TestPushRecordedRun(t *testing.T) {
 			got.Len(), bytes.Count(got.Bytes(), []byte{'\n'}), len(want), bytes.Count(want, []byte{'\n'}))
 	}
 	t.Logf("%d lines pushed in %d requests (a third of them refused with 503 and retried)", bytes.Count(want, []byte{'\n'}), calls)
+	// Every line acknowledged, across the restart: the run is marked
+	// pushed (what retention waits for when pushing is on).
+	if marked, complete := record.Pushed(filepath.Join(recDir, ents[0].Name())); !marked || !complete {
+		t.Errorf("the run's pushed marker: there %v, complete %v", marked, complete)
+	}
 }

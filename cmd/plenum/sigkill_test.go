@@ -15,6 +15,8 @@ import (
 	"time"
 
 	"github.com/influxdata/line-protocol/v2/lineprotocol"
+
+	"github.com/plenum-engine/plenum/pipeline/record"
 )
 
 // childEnv, when set, makes this test binary act as the plenum command with
@@ -111,10 +113,11 @@ func hashTree(t *testing.T, dir string) map[string][32]byte {
 }
 
 // decodeAll parses every line with the line-protocol decoder and returns
-// the points' times (ns) in order.
+// the points' times (ns) in order. A .lp the compressor has replaced is
+// read from its .lp.gz.
 func decodeAll(t *testing.T, path string) []int64 {
 	t.Helper()
-	b, err := os.ReadFile(path)
+	b, err := record.ReadFile(path)
 	if err != nil {
 		t.Fatal(err)
 	}
@@ -181,6 +184,14 @@ func TestSIGKILLMidRun(t *testing.T) {
 	if _, ok := hashA["ended"]; !ok {
 		t.Fatalf("run A has no ended marker: %v", hashA)
 	}
+	// Compression is on (the default): the run's one segment was
+	// compressed as the daemon stopped.
+	if _, ok := hashA["0001.lp.gz"]; !ok {
+		t.Fatalf("run A's segment was not compressed at the stop: %v", keys(hashA))
+	}
+	if _, ok := hashA["0001.lp"]; ok {
+		t.Fatalf("run A keeps its .lp beside the .lp.gz: %v", keys(hashA))
+	}
 	time.Sleep(1100 * time.Millisecond) // run ids have millisecond resolution; keep them apart in the listing
 
 	// Run B is killed.
@@ -243,7 +254,12 @@ func TestSIGKILLMidRun(t *testing.T) {
 	dirC := c.runDir(t)
 	waitLines(t, dirC, 500)
 	c.stop(t)
-	fixed, err := os.ReadFile(lpB)
+	// The start-up cut B's tail, marked it, and (a run that has ended)
+	// compressed its segment: the .lp.gz holds the cut lines exactly.
+	if _, err := os.Stat(lpB + ".gz"); err != nil {
+		t.Errorf("the recovered run's segment was not compressed: %v", err)
+	}
+	fixed, err := record.ReadFile(lpB)
 	if err != nil {
 		t.Fatal(err)
 	}

@@ -197,10 +197,17 @@ func readSamples(files []string, derived bool, keep func(line []byte) bool) (Rec
 }
 
 // ReadFile reads a recorded file, gunzipping it when its name ends in .gz
-// (archived runs).
+// (compressed segments). A <n>.lp that is gone is read from <n>.lp.gz: the
+// compressor may have replaced it since the caller listed the run.
 func ReadFile(path string) ([]byte, error) {
 	if !strings.HasSuffix(path, ".gz") {
-		return os.ReadFile(path)
+		b, err := os.ReadFile(path)
+		if errors.Is(err, os.ErrNotExist) && strings.HasSuffix(path, ".lp") {
+			if b, err2 := ReadFile(path + ".gz"); err2 == nil {
+				return b, nil
+			}
+		}
+		return b, err
 	}
 	f, err := os.Open(path)
 	if err != nil {

@@ -6,7 +6,9 @@
 // start), <dir>/<run id>/0001.lp, 0002.lp, … (rotated by size), and, once the
 // run closes normally, <dir>/<run id>/ended. A run directory without "ended"
 // was cut short: Recover cuts a torn last line from its last file and adds
-// "ended_abnormally". Data files of earlier runs are never rewritten.
+// "ended_abnormally". Data files of earlier runs are never rewritten; a
+// closed data file may be compressed into <n>.lp.gz (see Compressor and
+// CompressSegment), which every reader takes in its place (DataFiles).
 //
 // Points:
 //
@@ -61,6 +63,10 @@ type Config struct {
 	// written to the run's file, e.g. to push them to a time-series
 	// database. It must copy and must not block.
 	Forward Forwarder
+	// Closed, when set, is called with the path of each data file once
+	// the recorder has synced and closed it for good (at a rotation, and
+	// the last one at Close), e.g. to compress it. It must not block.
+	Closed func(path string)
 	// Create creates a data file of the run; nil: os.OpenFile (append-only,
 	// never an existing file). Tests inject a disk that refuses writes.
 	Create func(path string) (File, error)
@@ -124,6 +130,7 @@ type Recorder struct {
 	chans  []pipeline.Channel
 	reg    *pipeline.Registry
 	f      File
+	path   string // of f
 	fileNo int
 	size   int64 // bytes of whole lines in the current file
 	enc    lineprotocol.Encoder
@@ -284,9 +291,12 @@ func (r *Recorder) rotate() error {
 	}
 	if r.f != nil {
 		r.f.Close()
+		if r.cfg.Closed != nil {
+			r.cfg.Closed(r.path)
+		}
 	}
 	r.fileNo++
-	r.f, r.size = f, 0
+	r.f, r.size, r.path = f, 0, name
 	return nil
 }
 
@@ -645,6 +655,11 @@ func (r *Recorder) Close() error {
 		errs = append(errs, fmt.Errorf("record: %w", err))
 	}
 	sum := r.Summary()
+	defer func() {
+		if r.cfg.Closed != nil {
+			r.cfg.Closed(r.path) // after the end marker: the run's files are final
+		}
+	}()
 	if err := writeSynced(filepath.Join(r.dir, "summary.json"), sum.JSON()); err != nil {
 		errs = append(errs, err)
 	} else if err := writeSynced(filepath.Join(r.dir, "ended"), []byte(time.Now().UTC().Format(time.RFC3339Nano)+"\n")); err != nil {

@@ -14,7 +14,6 @@ import (
 	"io"
 	"os"
 	"path/filepath"
-	"sort"
 	"strings"
 	"time"
 
@@ -104,10 +103,10 @@ func Resolve(in, dir string) (Input, error) {
 	if !st.IsDir() {
 		return Input{Files: []string{in}}, nil
 	}
-	files, _ := filepath.Glob(filepath.Join(in, "*.lp"))
-	gz, _ := filepath.Glob(filepath.Join(in, "*.lp.gz"))
-	files = append(files, gz...)
-	sort.Strings(files) // 0001.lp, 0001.lp.gz, 0002.lp: in recorded order either way
+	files, err := record.DataFiles(in) // 0001.lp.gz, 0002.lp: one per segment, in recorded order
+	if err != nil {
+		return Input{}, fmt.Errorf("replay: -in %s: %w", in, err)
+	}
 	if len(files) == 0 {
 		return Input{}, fmt.Errorf("replay: %s holds no .lp or .lp.gz files", in)
 	}

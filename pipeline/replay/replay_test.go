@@ -211,7 +211,9 @@ func TestResolve(t *testing.T) {
 	dir := t.TempDir()
 	run := filepath.Join(dir, "r1")
 	os.Mkdir(run, 0o755)
-	for _, f := range []string{"0002.lp", "0001.lp.gz", "0003.lp.gz", "config.yaml"} {
+	// 0003 is there twice (a compression cut before it removed the .lp):
+	// the .lp.gz is read; a .tmp being written is not.
+	for _, f := range []string{"0002.lp", "0001.lp.gz", "0003.lp.gz", "0003.lp", "0004.lp.gz.tmp", "config.yaml"} {
 		os.WriteFile(filepath.Join(run, f), nil, 0o644)
 	}
 	os.Mkdir(filepath.Join(dir, "empty"), 0o755)

@@ -234,10 +234,10 @@ func read(dir string, m record.Meta) (Run, error) {
 		r.Summary = &s
 		r.Start, r.End = s.Start, s.End
 	}
-	files, _ := filepath.Glob(filepath.Join(dir, "*.lp"))
-	gz, _ := filepath.Glob(filepath.Join(dir, "*.lp.gz"))
-	files = append(files, gz...)
-	sort.Strings(files)
+	files, err := record.DataFiles(dir)
+	if err != nil {
+		return Run{}, err
+	}
 	if len(files) == 0 {
 		return r, nil
 	}

@@ -82,8 +82,16 @@ type Deps struct {
 	Emit     func(pipeline.Event) // run_started, run_ended, recorder_behind; nil: dropped
 	Publish  func([]byte)         // the run summary, at least once; nil: not published (see SetPublish)
 	Forward  record.Forwarder     // the push backlog; nil: none
-	Log      *slog.Logger         // nil: discarded
-	Now      func() time.Time     // the clock; nil: time.Now
+	// Closed is told of every data file a run closed for good (see
+	// record.Config.Closed), e.g. the compressor's Closed; must not block.
+	// nil: none.
+	Closed func(path string)
+	// Ended is told the id of every run once it is closed (its files are
+	// final), e.g. to mark it for the pusher and to let retention look;
+	// must not block. nil: none.
+	Ended func(run string)
+	Log   *slog.Logger     // nil: discarded
+	Now   func() time.Time // the clock; nil: time.Now
 	// Create creates the runs' data files; nil: the recorder's default
 	// (files on disk). Tests inject a disk that refuses writes.
 	Create func(path string) (record.File, error)
@@ -114,6 +122,8 @@ type Controller struct {
 	store   Latest
 	emit    func(pipeline.Event)
 	forward record.Forwarder
+	closed  func(string)
+	ended   func(string)
 	log     *slog.Logger
 	now     func() time.Time
 	create  func(string) (record.File, error)
@@ -160,13 +170,13 @@ type Controller struct {
 // being recorded until Start or StartUnlessManual.
 func New(cfg Config, d Deps) *Controller {
 	c := &Controller{cfg: cfg, reg: d.Registry, sub: d.Sub, store: d.Store, emit: d.Emit, publish: d.Publish,
-		forward: d.Forward, log: d.Log, now: d.Now, create: d.Create, space: d.DiskSpace,
+		forward: d.Forward, closed: d.Closed, ended: d.Ended, log: d.Log, now: d.Now, create: d.Create, space: d.DiskSpace,
 		ack: d.Acknowledge, enter: d.EnterConditions}
 	if c.cfg.MinFreeBytes == 0 {
 		c.cfg.MinFreeBytes = DefaultMinFreeBytes
 	}
 	if c.space == nil {
-		c.space = diskSpace
+		c.space = DiskSpace
 	}
 	if c.emit == nil {
 		c.emit = func(pipeline.Event) {}
@@ -227,7 +237,7 @@ func (c *Controller) start(req StartRequest, auto bool) (string, error) {
 	cond, pending := c.startConditions(req.Entered, now)
 	rec, err := record.Open(record.Config{Dir: c.cfg.Dir, Run: id, Vehicle: c.cfg.Vehicle, Label: req.Label, Notes: req.Notes,
 		SyncEvery: c.cfg.SyncEvery, RotateBytes: c.cfg.RotateBytes, ConfigYAML: c.cfg.ConfigYAML,
-		Conditions: cond, Correction: c.enterConditions(req.Entered), Forward: c.forward, Create: c.create, Now: c.now,
+		Conditions: cond, Correction: c.enterConditions(req.Entered), Forward: c.forward, Closed: c.closed, Create: c.create, Now: c.now,
 		HoldBytes: holdBytes(total, serr)}, c.reg)
 	if err != nil {
 		c.enterConditions(record.Conditions{})
@@ -272,6 +282,9 @@ func (c *Controller) stop(by string) (record.Summary, error) {
 		c.log.Error("push: blocks of this run were refused by the push backlog; they are in the run's files but were not pushed", "run", rec.ID(), "blocks", n)
 	}
 	sum := rec.Summary()
+	if c.ended != nil {
+		c.ended(rec.ID())
+	}
 	if c.publish != nil {
 		c.publish(sum.JSON())
 	}

@@ -23,6 +23,8 @@
 //	<Dir>/cursor            "tsdbpush cursor v1 acked=<offset> crc=<crc32>\n":
 //	                        every byte before <offset> was accepted (2xx)
 //	<Dir>/rejected/<offset>.lp  batches the server refused as malformed
+//	<Dir>/marks             runs whose end is in the backlog, not yet told
+//	                        pushed (Mark, Config.OnPushed; see marks.go)
 //
 // Segments are removed once fully acknowledged. The directory is bounded by
 // MaxBacklogBytes (plus at most one line): when it is exceeded the oldest
@@ -139,6 +141,12 @@ type Config struct {
 	// the next start. Default 3 s (inside the daemon's 5 s shutdown grace);
 	// negative: no drain, only a request in flight is given 2 s.
 	Drain time.Duration
+	// OnPushed, when set, is told the name of each Mark once every line
+	// appended before it has been acknowledged by the server (complete),
+	// or has been acknowledged or dropped unsent (complete false). It is
+	// called from Run's writer, at most every FlushEvery; an error keeps
+	// the mark for the next call.
+	OnPushed func(name string, complete bool) error
 }
 
 // Stats are the Pusher's counters since Open (BacklogBytes and LastError are
@@ -178,6 +186,7 @@ type Pusher struct {
 	kick    chan struct{} // staging has a batch's worth
 	ready   chan struct{} // new bytes on disk
 
+	marks                  *marks
 	flushing               atomic.Int64 // bytes taken from staging, not yet on disk
 	appLines, appBytes     atomic.Uint64
 	stageDropL, stageDropB atomic.Uint64
@@ -240,10 +249,17 @@ func Open(cfg Config) (*Pusher, error) {
 	if err != nil {
 		return nil, fmt.Errorf("tsdbpush: %w", err)
 	}
+	_, next := disk.Offsets()
+	mk, err := loadMarks(cfg.Dir, next)
+	if err != nil {
+		disk.Close()
+		return nil, err
+	}
 	p := &Pusher{
 		cfg:   cfg,
 		log:   cfg.Logger,
 		disk:  disk,
+		marks: mk,
 		kick:  make(chan struct{}, 1),
 		ready: make(chan struct{}, 1),
 	}
@@ -274,6 +290,7 @@ func (p *Pusher) Append(lines []byte) error {
 	case putClosed:
 		return ErrClosed
 	case putFull:
+		p.marks.dropped()
 		p.stageDropL.Add(n)
 		p.stageDropB.Add(uint64(len(lines)))
 		return nil
@@ -371,6 +388,7 @@ func (p *Pusher) Run(ctx context.Context) error {
 	before := p.send.sentBytes.Load()
 	p.send.run(ctx, sctx, flushed, p.cfg.Drain > 0)
 	<-flushed
+	p.settle()
 	p.reportDrain(ctx, before)
 	return flushErr
 }
@@ -409,6 +427,15 @@ func (p *Pusher) writeLoop(ctx context.Context) error {
 		if err := p.flush(); err != nil {
 			p.log.Error("tsdbpush: backlog write failed", "err", err)
 		}
+		p.settle()
+	}
+}
+
+// settle tells Config.OnPushed of the marks the server has acknowledged.
+func (p *Pusher) settle() {
+	acked, _ := p.disk.Offsets()
+	if err := p.marks.settle(acked, p.cfg.OnPushed); err != nil {
+		p.log.Error("tsdbpush: telling that a run was pushed failed; told again later", "err", err)
 	}
 }
 
@@ -423,16 +450,27 @@ func (p *Pusher) flush() error {
 		p.errs.set(errors.New("tsdbpush: staging full, lines dropped"))
 	}
 	var err error
+	lost := false
 	for _, c := range chunks {
 		werr := p.disk.Write(c)
 		p.flushing.Add(-int64(len(c)))
-		if werr != nil && err == nil {
-			err = fmt.Errorf("tsdbpush: backlog write: %w", werr)
+		if werr != nil {
+			lost = true
+			if err == nil {
+				err = fmt.Errorf("tsdbpush: backlog write: %w", werr)
+			}
 		}
 	}
 	d, serr := p.disk.Sync()
 	if serr != nil && err == nil {
 		err = fmt.Errorf("tsdbpush: %w", serr)
+	}
+	if lost {
+		p.marks.dropped() // lines of the pending marks may be among those lost
+	}
+	_, next := p.disk.Offsets()
+	if merr := p.marks.flushed(n, next, d.From, d.To); merr != nil {
+		p.log.Error("tsdbpush: writing the marks failed; the runs they name are told pushed only once written", "err", merr)
 	}
 	if d.Segments > 0 {
 		p.errs.set(fmt.Errorf("tsdbpush: backlog full, dropped %d unsent bytes of %s", d.Bytes, d.LastSegment))

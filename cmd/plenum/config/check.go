@@ -314,6 +314,18 @@ func (cfg *Config) check(file string, root *yaml.Node) Errors {
 	if cfg.Record.MinFreeMB < 0 || cfg.Record.MinFreeMB > 1<<24 {
 		c.fail("must be between 0 (default 256) and 16777216", "record", "min_free_mb")
 	}
+	if m := cfg.Record.Compress; m != "" && m != "gzip" && m != "off" {
+		c.fail(fmt.Sprintf("is %q; it takes gzip (the default) or off", m), "record", "compress")
+	}
+	if r := cfg.Record.Retain; r.MaxTotalMB < 0 || r.MaxTotalMB > 1<<30 {
+		c.fail("must be between 0 (no bound) and 1073741824", "record", "retain", "max_total_mb")
+	}
+	if r := cfg.Record.Retain; r.MaxAgeDays < 0 || r.MaxAgeDays > 100000 || r.MaxAgeDays != r.MaxAgeDays {
+		c.fail("must be between 0 (no bound) and 100000", "record", "retain", "max_age_days")
+	}
+	if cfg.Record.Retain.On() && cfg.Record.Dir == "" {
+		c.fail("retention needs record.dir: it removes recorded runs", "record", "retain")
+	}
 	if pu := cfg.Record.Push; pu.URL != "" {
 		u, err := url.Parse(pu.URL)
 		switch {

@@ -81,7 +81,25 @@ type Record struct {
 	// Push sends the recorded lines to an InfluxDB-compatible write
 	// endpoint as well; empty URL: off.
 	Push Push `yaml:"push"`
+	// Compress is how closed segments are kept: "gzip" (the default, also
+	// for "") compresses each into <n>.lp.gz in the background; "off"
+	// keeps them as written.
+	Compress string `yaml:"compress"`
+	// Retain removes old runs, oldest first; empty: every run is kept.
+	Retain Retain `yaml:"retain"`
 }
+
+// Retain bounds the recorded runs. The run being recorded is never
+// removed, nor, with record.push, a run the database has not acknowledged.
+// With any limit set, runs are also removed while the disk's free space is
+// below record.min_free_mb.
+type Retain struct {
+	MaxTotalMB int     `yaml:"max_total_mb"` // the runs together; 0: no bound
+	MaxAgeDays float64 `yaml:"max_age_days"` // from a run's start; 0: no bound
+}
+
+// On reports whether any limit is set.
+func (r Retain) On() bool { return r.MaxTotalMB > 0 || r.MaxAgeDays > 0 }
 
 // Push configures sending the recorded line protocol over HTTP.
 type Push struct {

@@ -1,9 +1,11 @@
 package config
 
 import (
+	"log/slog"
 	"math"
 	"strings"
 	"testing"
+	"time"
 
 	"github.com/plenum-engine/plenum/pipeline"
 	"github.com/plenum-engine/plenum/pipeline/display"
@@ -55,6 +57,14 @@ func TestErrorsNameFileLineAndField(t *testing.T) {
 			"record.push: pushing needs record.dir"},
 		{"negative free-space guard", "vehicle: x\nengine: {displacement_l: 2, volumetric_efficiency: 0.9}\nrecord:\n  dir: /tmp/r\n  min_free_mb: -1\n",
 			"bad.yaml:5: record.min_free_mb: must be between 0"},
+		{"unknown compression", "vehicle: x\nengine: {displacement_l: 2, volumetric_efficiency: 0.9}\nrecord:\n  dir: /tmp/r\n  compress: zstd\n",
+			`bad.yaml:5: record.compress: is "zstd"; it takes gzip (the default) or off`},
+		{"negative retention size", "vehicle: x\nengine: {displacement_l: 2, volumetric_efficiency: 0.9}\nrecord:\n  dir: /tmp/r\n  retain: {max_total_mb: -5}\n",
+			"bad.yaml:5: record.retain.max_total_mb: must be between 0"},
+		{"negative retention age", "vehicle: x\nengine: {displacement_l: 2, volumetric_efficiency: 0.9}\nrecord:\n  dir: /tmp/r\n  retain:\n    max_age_days: -1\n",
+			"bad.yaml:6: record.retain.max_age_days: must be between 0"},
+		{"retention without recording", "vehicle: x\nengine: {displacement_l: 2, volumetric_efficiency: 0.9}\nrecord:\n  retain: {max_age_days: 30}\n",
+			"record.retain: retention needs record.dir"},
 		{"bad broker", "vehicle: x\nengine: {displacement_l: 2, volumetric_efficiency: 0.9}\nmqtt:\n  broker: http://x\n", "bad.yaml:4: mqtt.broker"},
 		{"display: which horsepower", "vehicle: x\nengine: {displacement_l: 2, volumetric_efficiency: 0.9}\ndisplay:\n  pressure: bar\n  power: hp\n",
 			"bad.yaml:5: display.power: say which horsepower, hp_mech"},
@@ -233,5 +243,45 @@ func TestDisplayUnits(t *testing.T) {
 		if err != nil || u != c.want {
 			t.Errorf("%q: %+v, %v; want %+v", c.yaml, u, err, c.want)
 		}
+	}
+}
+
+func TestRetentionAndCompressorConvert(t *testing.T) {
+	base := "vehicle: x\nengine: {displacement_l: 2, volumetric_efficiency: 0.9}\nrecord:\n  dir: /tmp/r\n"
+	cases := []struct {
+		name, yaml string
+		keep       bool
+		total      int64
+		age        time.Duration
+		minFree    int64
+		pushed     bool
+		compress   bool
+	}{
+		{"defaults: compress, keep everything", base, false, 0, 0, 0, false, true},
+		{"limits", base + "  retain: {max_total_mb: 100, max_age_days: 1.5}\n  min_free_mb: 512\n", true, 100 << 20, 36 * time.Hour, 512 << 20, false, true},
+		{"age alone, default guard", base + "  retain: {max_age_days: 30}\n", true, 0, 30 * 24 * time.Hour, 256 << 20, false, true},
+		{"with push: unpushed runs kept", base + "  retain: {max_total_mb: 1}\n  push: {url: 'http://db:8086/write?db=p&precision=ns'}\nstate_dir: /tmp/s\n", true, 1 << 20, 0, 256 << 20, true, true},
+		{"compress off", base + "  compress: off\n", false, 0, 0, 0, false, false},
+	}
+	for _, c := range cases {
+		t.Run(c.name, func(t *testing.T) {
+			cfg, err := Parse("t.yaml", []byte(c.yaml))
+			if err != nil {
+				t.Fatal(err)
+			}
+			log := slog.New(slog.DiscardHandler)
+			rc, ok := cfg.Retention(log)
+			if ok != c.keep || rc.Policy.MaxTotalBytes != c.total || rc.Policy.MaxAge != c.age ||
+				rc.MinFreeBytes != c.minFree || rc.Policy.NeedPushed != c.pushed {
+				t.Errorf("retention %v %+v", ok, rc.Policy)
+			}
+			if ok && (rc.Dir != "/tmp/r" || rc.DiskSpace == nil) {
+				t.Errorf("retention dir %q, disk space set %v", rc.Dir, rc.DiskSpace != nil)
+			}
+			cc, ok := cfg.Compressor(log)
+			if ok != c.compress || (ok && cc.Dir != "/tmp/r") {
+				t.Errorf("compressor %v %+v", ok, cc)
+			}
+		})
 	}
 }

@@ -28,6 +28,8 @@ import (
 	"github.com/plenum-engine/plenum/pipeline/fleet"
 	"github.com/plenum-engine/plenum/pipeline/httpserve"
 	"github.com/plenum-engine/plenum/pipeline/mqttpub"
+	"github.com/plenum-engine/plenum/pipeline/record"
+	"github.com/plenum-engine/plenum/pipeline/retention"
 	"github.com/plenum-engine/plenum/pipeline/runs"
 	"github.com/plenum-engine/plenum/pipeline/tsdbpush"
 )
@@ -191,6 +193,39 @@ func (c *Config) Runs() (runs.Config, error) {
 		ControlToken: tok,
 		StartLabel:   c.Record.StartLabel,
 	}, nil
+}
+
+// Compressor converts record.compress into the compressor's Config; ok is
+// false without recording or with compress: off.
+func (c *Config) Compressor(log *slog.Logger) (cc record.CompressorConfig, ok bool) {
+	if c.Record.Dir == "" || c.Record.Compress == "off" {
+		return cc, false
+	}
+	return record.CompressorConfig{Dir: c.Record.Dir, Log: log.With("component", "compress")}, true
+}
+
+// Retention converts record.retain into the keeper's Config (without its
+// Current, which the binary sets); ok is false when no limit is set.
+func (c *Config) Retention(log *slog.Logger) (rc retention.Config, ok bool) {
+	r := c.Record.Retain
+	if c.Record.Dir == "" || !r.On() {
+		return rc, false
+	}
+	minFree := int64(c.Record.MinFreeMB) << 20
+	if minFree == 0 {
+		minFree = runs.DefaultMinFreeBytes
+	}
+	return retention.Config{
+		Dir: c.Record.Dir,
+		Policy: retention.Policy{
+			MaxTotalBytes: int64(r.MaxTotalMB) << 20,
+			MaxAge:        time.Duration(r.MaxAgeDays * float64(24*time.Hour)),
+			NeedPushed:    c.Record.Push.URL != "",
+		},
+		MinFreeBytes: minFree,
+		DiskSpace:    runs.DiskSpace,
+		Log:          log.With("component", "retention"),
+	}, true
 }
 
 // Push converts record.push into the pusher's Config, reading its token

@@ -73,6 +73,9 @@ type Dropped struct {
 	Lines       uint64
 	Bytes       uint64
 	LastSegment string // path of the last such segment, "" if none
+	// From and To span the unsent bytes removed, [From, To) in logical
+	// offsets (0, 0 when none).
+	From, To int64
 }
 
 // Stats are a Backlog's counters since Open and its current size.
@@ -248,6 +251,14 @@ func (b *Backlog) Pending() int64 {
 	return max(b.next-b.acked, 0)
 }
 
+// Offsets returns the logical offsets: every byte before acked is done
+// with, and next is where the next byte written goes.
+func (b *Backlog) Offsets() (acked, next int64) {
+	b.mu.Lock()
+	defer b.mu.Unlock()
+	return b.acked, b.next
+}
+
 // Stats returns the counters and the current size.
 func (b *Backlog) Stats() Stats {
 	b.mu.Lock()
@@ -399,6 +410,10 @@ func (b *Backlog) enforceBound() Dropped {
 			d.Lines += uint64(lines)
 			d.Bytes += uint64(s.end() - from)
 			d.LastSegment = s.path
+			if d.To == 0 {
+				d.From = from
+			}
+			d.To = s.end()
 			b.dropB.Add(uint64(s.end() - from))
 			b.dropL.Add(uint64(lines))
 			b.dropSegs.Add(1)
