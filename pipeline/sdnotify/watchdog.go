@@ -3,6 +3,7 @@ package sdnotify
 import (
 	"context"
 	"log/slog"
+	"sync"
 	"time"
 
 	"github.com/plenum-engine/plenum/drivers/clock"
@@ -34,6 +35,7 @@ type Watchdog struct {
 	// Log receives the stall and recovery lines (default: discarded).
 	Log *slog.Logger
 
+	once   sync.Once // makes health: Report may come first, from a scrape
 	health *pipeline.Health
 }
 
@@ -43,9 +45,7 @@ type Watchdog struct {
 func (w *Watchdog) Report() pipeline.HealthReport { return w.h().Report() }
 
 func (w *Watchdog) h() *pipeline.Health {
-	if w.health == nil {
-		w.health = pipeline.NewHealth("watchdog", "service")
-	}
+	w.once.Do(func() { w.health = pipeline.NewHealth("watchdog", "service") })
 	return w.health
 }
 
