@@ -18,7 +18,6 @@ import (
 	"path/filepath"
 	"regexp"
 	"runtime"
-	"sort"
 	"strconv"
 	"strings"
 	"sync"
@@ -35,6 +34,7 @@ import (
 
 	"github.com/plenum-engine/plenum/pipeline/interop"
 	"github.com/plenum-engine/plenum/pipeline/mqttpub"
+	"github.com/plenum-engine/plenum/pipeline/record"
 )
 
 // The workshop of deploy/workshop: many cars, one mosquitto with the
@@ -377,8 +377,10 @@ func readCarRecording(t *testing.T, dir, vehicle string) carRecording {
 		t.Fatalf("%s: %d runs recorded, want 1", dir, len(runs))
 	}
 	rc := carRecording{run: filepath.Base(filepath.Dir(runs[0]))}
-	files, _ := filepath.Glob(filepath.Join(filepath.Dir(runs[0]), "*.lp"))
-	sort.Strings(files)
+	files, err := record.DataFiles(filepath.Dir(runs[0])) // .lp, or .lp.gz once compressed
+	if err != nil {
+		t.Fatal(err)
+	}
 	type key struct {
 		series string
 		ms     int64
@@ -386,7 +388,7 @@ func readCarRecording(t *testing.T, dir, vehicle string) carRecording {
 	seen := map[key]bool{}
 	series := map[string]bool{}
 	for _, f := range files {
-		b, err := os.ReadFile(f)
+		b, err := record.ReadFile(f)
 		if err != nil {
 			t.Fatal(err)
 		}
@@ -1004,7 +1006,11 @@ func TestWorkshopTenCars(t *testing.T) {
 		recBytes += r.bytes
 	}
 	lineBytes := float64(recBytes) / float64(lines)
-	lp, err := os.ReadFile(filepath.Join(fleet[1].rec, recs[fleet[1].name].run, "0001.lp"))
+	segs, err := record.DataFiles(filepath.Join(fleet[1].rec, recs[fleet[1].name].run))
+	if err != nil || len(segs) == 0 {
+		t.Fatalf("%s's segments: %v (%d)", fleet[1].name, err, len(segs))
+	}
+	lp, err := record.ReadFile(segs[0])
 	if err != nil {
 		t.Fatal(err)
 	}
