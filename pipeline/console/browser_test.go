@@ -86,7 +86,8 @@ func (pg *page) do(a ...chromedp.Action[chromedp.Void]) {
 func (pg *page) until(what, expr string, timeout time.Duration) {
 	pg.t.Helper()
 	if _, err := chromedp.Run(pg.ctx, chromedp.Poll[chromedp.Void](expr, chromedp.WithPollingTimeout(timeout), chromedp.WithPollingInterval(20*time.Millisecond))); err != nil {
-		pg.t.Fatalf("waiting until %s (%s): %v", what, expr, err)
+		text, _ := chromedp.Run(pg.ctx, chromedp.Evaluate[string](`document.body.innerText.slice(0, 1500)`))
+		pg.t.Fatalf("waiting until %s (%s): %v\nthe page's text then:\n%s", what, expr, err, text)
 	}
 }
 
@@ -257,6 +258,9 @@ func TestBrowserDriver(t *testing.T) {
 	r.p.Emit(pipeline.Event{Kind: "warning_raised", Name: "boost_high", Start: raised, End: raised, Tags: map[string]string{"severity": "warning"}})
 	pg.until("the second warning shows", `document.querySelector('#alarms article[data-rule="boost_high"] .ack') !== null`, 5*time.Second)
 	pg.do(chromedp.Evaluate[chromedp.Void](`sessionStorage.setItem("plenum.control_token", "wrong")`))
+	// The list is drawn anew once it sees the new token; a click while it
+	// is redrawn can land on a button just taken away.
+	pg.until("the list is drawn with the new token", `document.getElementById("alarms").dataset.key.includes("]wrong[")`, 5*time.Second)
 	pg.do(chromedp.Click(`#alarms article[data-rule="boost_high"] .ack`))
 	pg.until("the refusal shows", `document.querySelector('#alarms article[data-rule="boost_high"] .result')?.textContent.startsWith("401")`, 5*time.Second)
 
