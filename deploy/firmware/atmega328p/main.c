@@ -282,9 +282,10 @@ static void setup(void) {
   DDRD = _BV(PD1);
   PORTD = (uint8_t)~_BV(PD1);
 
-  /* USART0: 8N1, double speed, transmitter only. */
-  UBRR0 = (uint16_t)PM_UBRR;
+  /* USART0: 8N1, double speed, transmitter only (U2X0 before the rate:
+   * simavr computes the bit time when UBRR0L is written). */
   UCSR0A = _BV(U2X0);
+  UBRR0 = (uint16_t)PM_UBRR;
   UCSR0C = _BV(UCSZ01) | _BV(UCSZ00);
   UCSR0B = _BV(TXEN0);
 
