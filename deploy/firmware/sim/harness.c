@@ -11,7 +11,8 @@
  *   -m  millivolts on ADC0, ADC1, ... (AVcc = AREF = 5000 mV)
  *   -s  engine speed schedule: rpm for ms, in order; 0 rpm sends no pulses
  *   -p  pulses per revolution of the train (as the firmware's config)
- *   -g  a 20 us spike 15% into every g-th period (for the glitch filter)
+ *   -g  a 20 us spike 15% into every g-th period (for the glitch filter),
+ *       none in the first two periods after a stop
  *   -t  emulated milliseconds to run
  *   -n  no pseudo-terminal: count the UART's lines and drop them
  *   -o  no pseudo-terminal: write the UART's bytes to this file
@@ -49,6 +50,7 @@ static struct {
 static int nseg;
 static unsigned long pulses_per_rev = 1, glitch_every;
 static unsigned long long pulses, glitches;
+static unsigned long run_pulses; /* pulses since the engine last stood still */
 
 static int master = -1;
 static unsigned char out[4096];
@@ -121,12 +123,15 @@ static avr_cycle_count_t pulse_edge(struct avr_t *avr, avr_cycle_count_t when, v
   avr_cycle_count_t period;
   (void)param;
   if (rpm == 0) {
+    run_pulses = 0;
     return when + HZ / 1000; /* look again in a millisecond */
   }
   period = (avr_cycle_count_t)(60ULL * HZ / ((unsigned long long)rpm * pulses_per_rev));
   avr_raise_irq(icp_pin, 1);
   pulses++;
-  if (glitch_every != 0 && pulses % glitch_every == 0) {
+  run_pulses++;
+  /* No spike before the firmware has a period to judge it by. */
+  if (glitch_every != 0 && pulses % glitch_every == 0 && run_pulses > 2) {
     avr_cycle_timer_register(avr, (avr_cycle_count_t)(period * 15 / 100), spike_rise, NULL);
   }
   avr_cycle_timer_register(avr, HZ / 10000, pulse_fall, NULL); /* 100 us high */
@@ -302,7 +307,7 @@ int main(int argc, char **argv) {
   }
   flush_out();
 
-  printf("harness: done cycles=%llu asleep=%llu bytes=%llu lines=%llu pulses=%llu glitches=%llu", (unsigned long long)avr->cycle,
+  printf("harness: done cycles=%llu asleep=%llu bytes=%llu lines=%llu pulses=%llu spikes=%llu", (unsigned long long)avr->cycle,
          (unsigned long long)asleep, uart_bytes, uart_lines, pulses, glitches);
   if (syms != NULL) {
     char *s = strdup(syms), *tok, *save = NULL;
