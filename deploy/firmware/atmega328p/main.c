@@ -42,7 +42,7 @@ static const uint8_t input_ch[] = {PM_INPUTS(PM_CH)};
 #define PM_BAUD_ACTUAL (F_CPU / (8UL * (PM_UBRR + 1UL)))
 #define PM_T1_HZ (F_CPU / 8UL)
 #define PM_CONV_PER_FRAME ((uint32_t)PM_N_INPUTS * (PM_DISCARD + PM_OVERSAMPLE))
-#define PM_BURST_US (PM_CONV_PER_FRAME * 13UL * PM_ADC_PRESCALE * 1000000UL / F_CPU)
+#define PM_BURST_US (PM_CONV_PER_FRAME * 13UL * PM_ADC_PRESCALE / (F_CPU / 1000000UL))
 
 _Static_assert(PM_N_INPUTS >= 1 && PM_N_INPUTS <= 8, "PM_INPUTS: 1 to 8 inputs");
 _Static_assert(PM_OVERSAMPLE == 1 || PM_OVERSAMPLE == 2 || PM_OVERSAMPLE == 4 || PM_OVERSAMPLE == 8 ||
