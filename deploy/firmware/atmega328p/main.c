@@ -137,6 +137,7 @@ ISR(ADC_vect) {
 }
 
 /* ---- engine speed (Timer1 input capture) ---- */
+#if PM_SPEED
 
 static volatile uint16_t t1_high;      /* Timer1 overflows: the high half of the tick count */
 static volatile uint32_t last_edge;    /* tick of the last accepted edge */
@@ -223,6 +224,7 @@ static uint32_t speed_rpm10(void) {
   }
   return rpm10;
 }
+#endif
 
 /* ---- the UART and its ring buffer ---- */
 
@@ -293,11 +295,13 @@ static void setup(void) {
   ADMUX = PM_ADMUX(input_ch[0]);
   ADCSRA = _BV(ADEN) | _BV(ADIE) | PM_ADPS;
 
+#if PM_SPEED
   /* Timer1: normal mode, F_CPU/8, input capture with noise canceller. */
   TCCR1A = 0;
   TCCR1B = _BV(ICNC1) | (PM_EDGE_RISING ? _BV(ICES1) : 0) | _BV(CS11);
   TIFR1 = _BV(ICF1) | _BV(TOV1);
   TIMSK1 = _BV(ICIE1) | _BV(TOIE1);
+#endif
 
   /* Timer0: CTC, F_CPU/64, 250 counts: 1 kHz. */
   TCCR0A = _BV(WGM01);

@@ -17,6 +17,8 @@
  *   -n  no pseudo-terminal: count the UART's lines and drop them
  *   -o  no pseudo-terminal: write the UART's bytes to this file
  *   -y  firmware variables (uint16/uint32 in SRAM, from avr-nm) to report
+ *   -R  pace emulated time to the wall clock (to watch it in plenum run);
+ *       without it the harness runs as fast as it can
  *
  * Lines on stdout that begin "harness:" are the harness's own; libsimavr
  * may print others. With a pseudo-terminal it prints "harness: pty PATH",
@@ -32,6 +34,7 @@
 #include <stdlib.h>
 #include <string.h>
 #include <termios.h>
+#include <time.h>
 #include <unistd.h>
 
 #include <avr_adc.h>
@@ -189,13 +192,15 @@ int main(int argc, char **argv) {
   const char *elf = NULL, *syms = NULL;
   unsigned long mv[8] = {0};
   unsigned long total_ms = 10000;
-  int nmv = 0, use_pty = 1, opt, i;
+  int nmv = 0, use_pty = 1, realtime = 0, opt, i;
+  struct timespec wall0;
+  avr_cycle_count_t next_pace = 0;
   elf_firmware_t fw;
   avr_t *avr;
   avr_cycle_count_t end;
   char path[256];
 
-  while ((opt = getopt(argc, argv, "f:m:s:p:g:t:no:y:")) != -1) {
+  while ((opt = getopt(argc, argv, "f:m:s:p:g:t:no:y:R")) != -1) {
     char *p;
     switch (opt) {
     case 'f':
@@ -245,12 +250,15 @@ int main(int argc, char **argv) {
     case 'y':
       syms = optarg;
       break;
+    case 'R':
+      realtime = 1;
+      break;
     default:
       return 2;
     }
   }
   if (elf == NULL || pulses_per_rev == 0) {
-    fprintf(stderr, "usage: harness -f firmware.elf [-m mv,...] [-s rpm:ms,...] [-p ppr] [-g n] [-t ms] [-n | -o file] [-y name=addr,...]\n");
+    fprintf(stderr, "usage: harness -f firmware.elf [-m mv,...] [-s rpm:ms,...] [-p ppr] [-g n] [-t ms] [-n | -o file] [-y name=addr,...] [-R]\n");
     return 2;
   }
   setvbuf(stdout, NULL, _IOLBF, 0);
@@ -298,8 +306,23 @@ int main(int argc, char **argv) {
   }
 
   end = (avr_cycle_count_t)total_ms * (HZ / 1000);
+  clock_gettime(CLOCK_MONOTONIC, &wall0);
   while (avr->cycle < end) {
-    int st = avr_run(avr);
+    int st;
+    if (realtime && avr->cycle >= next_pace) {
+      /* Every emulated millisecond: wait until the wall clock catches up. */
+      struct timespec now;
+      long long ahead_ns;
+      clock_gettime(CLOCK_MONOTONIC, &now);
+      ahead_ns = (long long)(avr->cycle * 1000000000ULL / HZ) -
+                 ((long long)(now.tv_sec - wall0.tv_sec) * 1000000000LL + (now.tv_nsec - wall0.tv_nsec));
+      if (ahead_ns > 0) {
+        struct timespec d = {(time_t)(ahead_ns / 1000000000LL), (long)(ahead_ns % 1000000000LL)};
+        nanosleep(&d, NULL);
+      }
+      next_pace = avr->cycle + HZ / 1000;
+    }
+    st = avr_run(avr);
     if (st == cpu_Done || st == cpu_Crashed) {
       printf("harness: the firmware stopped (state %d) at cycle %llu\n", st, (unsigned long long)avr->cycle);
       return 1;
