@@ -250,3 +250,31 @@ func TestFirmwareEncoder(t *testing.T) {
 	}
 	t.Logf("%d Go-encoded lines reproduced by C, %d C-encoded lines decoded", len(goldenCases()), n)
 }
+
+// TestFirmwareReadmeExample keeps the example frame in the firmware's
+// README valid: Plenum's decoder takes it, and the C encoder's Go twin
+// (AppendFrame) writes it the same way.
+func TestFirmwareReadmeExample(t *testing.T) {
+	doc, err := os.ReadFile(filepath.Join(firmwareDir, "README.md"))
+	if err != nil {
+		t.Fatal(err)
+	}
+	var found int
+	for _, l := range strings.Split(string(doc), "\n") {
+		if !strings.HasPrefix(l, "P1,") {
+			continue
+		}
+		found++
+		var f Frame
+		if err := ParseFrame([]byte(l), &f); err != nil {
+			t.Errorf("README example %q: %v", l, err)
+			continue
+		}
+		if got := AppendFrame(nil, f.Seq, f.DeviceMS, f.Readings[:f.N]); string(got) != l+"\n" {
+			t.Errorf("re-encoded %q, README has %q", got, l)
+		}
+	}
+	if found == 0 {
+		t.Fatal("no example frame in the firmware README")
+	}
+}
