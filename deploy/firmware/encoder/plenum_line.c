@@ -1,19 +1,21 @@
 /* plenum_line.c: the protocol version 1 encoder; see plenum_line.h. */
 #include "plenum_line.h"
 
-uint16_t pl_crc16_update(uint16_t crc, uint8_t b) {
-  /* Byte-wise form of the bit-serial shift register for 0x1021:
-   * x^16 + x^12 + x^5 + 1, eight shifts folded into three terms. */
+/* crc_step is the byte-wise form of the bit-serial shift register for
+ * 0x1021 (x^16 + x^12 + x^5 + 1): eight shifts folded into three terms. */
+static inline uint16_t crc_step(uint16_t crc, uint8_t b) {
   uint8_t x = (uint8_t)((crc >> 8) ^ b);
   x ^= (uint8_t)(x >> 4);
   return (uint16_t)((uint16_t)(crc << 8) ^ (uint16_t)((uint16_t)x << 12) ^ (uint16_t)((uint16_t)x << 5) ^ x);
 }
 
+uint16_t pl_crc16_update(uint16_t crc, uint8_t b) { return crc_step(crc, b); }
+
 uint16_t pl_crc16(const void *p, size_t n) {
   const uint8_t *s = (const uint8_t *)p;
   uint16_t crc = 0xFFFF;
   while (n--) {
-    crc = pl_crc16_update(crc, *s++);
+    crc = crc_step(crc, *s++);
   }
   return crc;
 }
@@ -22,8 +24,12 @@ static const uint32_t pow10_tab[10] = {1000000000UL, 100000000UL, 10000000UL, 10
                                        10000UL,      1000UL,      100UL,      10UL,      1UL};
 
 uint8_t pl_utoa(uint32_t v, char *out) {
-  uint8_t n = 0, i;
-  for (i = 0; i < 10; i++) {
+  uint8_t n = 0, i = 0;
+  /* Most values are small: skip the places they cannot fill. */
+  if (v < 100000UL) {
+    i = 5;
+  }
+  for (; i < 10; i++) {
     char d = '0';
     while (v >= pow10_tab[i]) {
       v -= pow10_tab[i];
