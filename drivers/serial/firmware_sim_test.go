@@ -206,7 +206,9 @@ func TestFirmwareEmulated(t *testing.T) {
 	if err := cmd.Start(); err != nil {
 		t.Fatal(err)
 	}
-	defer func() { stdin.Close(); cmd.Wait() }()
+	// At the end of stdin the harness exits; one stuck writing to a terminal
+	// nobody reads any more (a failed test) is killed by the cancel.
+	defer func() { stdin.Close(); cancel(); cmd.Wait() }()
 	lines := make(chan string, 16)
 	go func() {
 		sc := bufio.NewScanner(stdout)

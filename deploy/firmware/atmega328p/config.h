@@ -1,8 +1,11 @@
 /*
  * config.h: every compile-time setting of Plenum's reference firmware for
- * the ATmega328P, in one place. Each can also be given to make, e.g.
+ * the ATmega328P, in one place. The numeric ones can also be given to
+ * make, e.g.
  *   make PM_BAUD=1000000UL PM_FRAME_PERIOD_MS=4
- * (the Makefile passes PM_* variables on as -D flags).
+ * (the Makefile passes PM_* variables on as -D flags); edit the inputs and
+ * the keys here. A key outside protocol v1's syntax makes the encoder
+ * refuse every frame (the host then sees none), so keep to it.
  */
 #ifndef PM_CONFIG_H
 #define PM_CONFIG_H
