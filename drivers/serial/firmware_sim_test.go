@@ -138,24 +138,6 @@ func (p teePort) Read(b []byte) (int, error) {
 	return n, err
 }
 
-type frameSink struct {
-	mu     sync.Mutex
-	frames [][]pipeline.Sample
-}
-
-func (s *frameSink) PutFrame(f []pipeline.Sample) bool {
-	s.mu.Lock()
-	s.frames = append(s.frames, append([]pipeline.Sample(nil), f...))
-	s.mu.Unlock()
-	return true
-}
-
-func (s *frameSink) len() int {
-	s.mu.Lock()
-	defer s.mu.Unlock()
-	return len(s.frames)
-}
-
 // speedSegment is a stretch of the pulse train at one engine speed.
 type speedSegment struct {
 	rpm, ms int
@@ -259,7 +241,7 @@ func TestFirmwareEmulated(t *testing.T) {
 		t.Fatal(err)
 	}
 	drv := NewDriver(Config{Name: "fw", Path: ptyPath, Baud: 115200, Open: open}, dec, h)
-	var sink frameSink
+	var sink collect
 	runCtx, stopDriver := context.WithCancel(ctx)
 	driverDone := make(chan error, 1)
 	go func() { driverDone <- drv.Run(runCtx, &sink) }()
@@ -327,8 +309,14 @@ func TestFirmwareEmulated(t *testing.T) {
 			frames = append(frames, f)
 		}
 	}
-	if len(frames) != sink.len() || uint64(len(frames)) != done["lines"] {
-		t.Fatalf("%d frames parsed from the line, %d delivered, %d sent", len(frames), sink.len(), done["lines"])
+	if len(frames) != sink.frames || uint64(len(frames)) != done["lines"] || sink.len() != len(frames)*len(inputs) {
+		t.Fatalf("%d frames parsed from the line, %d delivered with %d samples, %d sent", len(frames), sink.frames, sink.len(), done["lines"])
+	}
+	// Every frame carries every input, so the k-th frame's samples are
+	// the k-th run of len(inputs).
+	delivered := make([][]pipeline.Sample, len(frames))
+	for k := range delivered {
+		delivered[k] = sink.s[k*len(inputs) : (k+1)*len(inputs)]
 	}
 	if len(frames) < 2900 {
 		t.Fatalf("only %d frames", len(frames))
@@ -347,11 +335,11 @@ func TestFirmwareEmulated(t *testing.T) {
 		}
 	}
 	var faults, good int
-	for k, fr := range sink.frames {
-		if len(fr) != len(inputs) {
-			t.Fatalf("frame %d: %d samples, want %d", k, len(fr), len(inputs))
-		}
-		for _, s := range fr {
+	for k, fr := range delivered {
+		for j, s := range fr {
+			if s.Channel != inputs[j].Channel {
+				t.Fatalf("frame %d: sample %d is channel %d, want %d", k, j, s.Channel, inputs[j].Channel)
+			}
 			if s.Channel == speedCh {
 				continue
 			}
@@ -389,7 +377,7 @@ func TestFirmwareEmulated(t *testing.T) {
 	// resolution (two 0.5 us ticks of the period) and 0.1 rpm of rounding.
 	// After a stop it runs down and is 0 from the timeout (1.5 s) on.
 	var checked, zero int
-	for k, fr := range sink.frames {
+	for k, fr := range delivered {
 		var rpm float64
 		for _, s := range fr {
 			if s.Channel == speedCh {
