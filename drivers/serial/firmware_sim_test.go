@@ -150,12 +150,32 @@ type speedSegment struct {
 // pseudo-terminal. It checks every reading against the ADC's quantisation,
 // the engine speed against the pulse train, the fault rails, zero bad
 // checksums and sequence gaps, and the frame rate in emulated time.
+//
+// It runs twice: with config.h as it is (115 200 baud, 100 frames/s), and
+// at 1 Mbaud and 250 frames/s, the highest rate the default inputs allow.
 func TestFirmwareEmulated(t *testing.T) {
 	fwTools(t)
 	dir := t.TempDir()
-	elf, size := fwBuild(t, dir)
-	t.Logf("firmware (default config.h):\n%s", size)
 	harness := fwHarness(t, dir)
+	for _, c := range []struct {
+		name string
+		baud int
+		rate float64
+		defs []string
+	}{
+		{"default", 115200, 100, nil},
+		{"1Mbaud_250fps", 1000000, 250, []string{"PM_BAUD=1000000UL", "PM_FRAME_PERIOD_MS=4"}},
+	} {
+		t.Run(c.name, func(t *testing.T) {
+			out := filepath.Join(dir, c.name)
+			elf, size := fwBuild(t, out, c.defs...)
+			t.Logf("firmware (config.h %v):\n%s", c.defs, size)
+			firmwareEmulated(t, harness, elf, c.baud, c.rate)
+		})
+	}
+}
+
+func firmwareEmulated(t *testing.T, harness, elf string, baud int, wantRate float64) {
 
 	// A0 shorted to ground and A5 open with a pull-up to 5 V: the host's
 	// fault rails (50 mV, 4950 mV) must flag both; A1-A4 are in range.
@@ -240,7 +260,7 @@ func TestFirmwareEmulated(t *testing.T) {
 	if err != nil {
 		t.Fatal(err)
 	}
-	drv := NewDriver(Config{Name: "fw", Path: ptyPath, Baud: 115200, Open: open}, dec, h)
+	drv := NewDriver(Config{Name: "fw", Path: ptyPath, Baud: baud, Open: open}, dec, h)
 	var sink collect
 	runCtx, stopDriver := context.WithCancel(ctx)
 	driverDone := make(chan error, 1)
@@ -318,7 +338,7 @@ func TestFirmwareEmulated(t *testing.T) {
 	for k := range delivered {
 		delivered[k] = sink.s[k*len(inputs) : (k+1)*len(inputs)]
 	}
-	if len(frames) < 2900 {
+	if len(frames) < int(wantRate*29) {
 		t.Fatalf("only %d frames", len(frames))
 	}
 
@@ -366,8 +386,8 @@ func TestFirmwareEmulated(t *testing.T) {
 	}
 	first, last := frames[0], frames[len(frames)-1]
 	rate := float64(len(frames)-1) / (float64(last.DeviceMS-first.DeviceMS) / 1000)
-	if math.Abs(rate-100) > 0.5 {
-		t.Errorf("frame rate %.3f/s in emulated time, want 100", rate)
+	if math.Abs(rate-wantRate) > wantRate/200 {
+		t.Errorf("frame rate %.3f/s in emulated time, want %v", rate, wantRate)
 	}
 
 	// Engine speed against the pulse train. Inside a segment (past the
