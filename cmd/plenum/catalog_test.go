@@ -14,7 +14,7 @@ import (
 // otherwise; this test finds a missing entry before a user does.
 func TestEveryWrittenChannelIsCatalogued(t *testing.T) {
 	configs := map[string][]byte{"demo.yaml": demoConfig}
-	for _, path := range []string{"../../deploy/plenum.yaml", "../../deploy/delimited.yaml", "../../testdata/golden-run/config.yaml"} {
+	for _, path := range []string{"../../deploy/plenum.yaml", "../../deploy/delimited.yaml", "../../deploy/firmware/plenum-mcu.yaml", "../../testdata/golden-run/config.yaml"} {
 		b, err := os.ReadFile(path)
 		if err != nil {
 			t.Fatal(err)

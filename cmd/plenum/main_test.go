@@ -23,7 +23,7 @@ func TestCheckCommand(t *testing.T) {
 	if want := bad + ":5: boost_valve: unknown key"; !strings.Contains(errb.String(), want) {
 		t.Fatalf("stderr %q does not contain %q", errb.String(), want)
 	}
-	for _, good := range []string{"../../deploy/plenum.yaml", "../../deploy/delimited.yaml"} {
+	for _, good := range []string{"../../deploy/plenum.yaml", "../../deploy/delimited.yaml", "../../deploy/firmware/plenum-mcu.yaml"} {
 		out.Reset()
 		errb.Reset()
 		if code := run([]string{"check", "-config", good}, &out, &errb); code != 0 {
