@@ -107,7 +107,8 @@ func create(tmp string, perm fs.FileMode) (*os.File, error) {
 }
 
 // SyncDir fsyncs the directory dir, making the creations, renames and
-// removals of names in it durable.
+// removals of names in it durable. Its errors are those of os.Open and
+// (*os.File).Sync, which name dir.
 func SyncDir(dir string) error {
 	d, err := os.Open(dir)
 	if err != nil {
@@ -115,7 +116,7 @@ func SyncDir(dir string) error {
 	}
 	if err := d.Sync(); err != nil {
 		d.Close()
-		return fmt.Errorf("fsync %s: %w", dir, err)
+		return err
 	}
 	return d.Close()
 }

@@ -5,11 +5,14 @@ import (
 	"encoding/json"
 	"errors"
 	"fmt"
+	"io"
 	"os"
 	"path/filepath"
 	"strconv"
 	"strings"
 	"sync"
+
+	"github.com/plenum-engine/plenum/pipeline/durable"
 )
 
 // Message is one outbox entry: what must reach the broker at least once.
@@ -80,26 +83,16 @@ func OpenOutbox(dir string, max int) (*Outbox, error) {
 }
 
 func (o *Outbox) rewrite() error {
-	tmp := filepath.Join(o.dir, "outbox.log.tmp")
-	f, err := os.Create(tmp)
+	err := durable.Write(filepath.Join(o.dir, "outbox.log"), 0o644, func(w io.Writer) error {
+		for _, m := range o.pending {
+			b, _ := json.Marshal(m)
+			if _, err := w.Write(append(b, '\n')); err != nil {
+				return err
+			}
+		}
+		return nil
+	})
 	if err != nil {
-		return fmt.Errorf("outbox: %w", err)
-	}
-	w := bufio.NewWriter(f)
-	for _, m := range o.pending {
-		b, _ := json.Marshal(m)
-		w.Write(append(b, '\n'))
-	}
-	if err := w.Flush(); err != nil {
-		f.Close()
-		return fmt.Errorf("outbox: %w", err)
-	}
-	if err := f.Sync(); err != nil {
-		f.Close()
-		return fmt.Errorf("outbox: %w", err)
-	}
-	f.Close()
-	if err := os.Rename(tmp, filepath.Join(o.dir, "outbox.log")); err != nil {
 		return fmt.Errorf("outbox: %w", err)
 	}
 	if o.log != nil {
@@ -158,11 +151,7 @@ func (o *Outbox) Ack(seq uint64) error {
 		o.pending = o.pending[1:]
 	}
 	o.acked = seq
-	tmp := filepath.Join(o.dir, "acked.tmp")
-	if err := os.WriteFile(tmp, []byte(strconv.FormatUint(seq, 10)+"\n"), 0o644); err != nil {
-		return fmt.Errorf("outbox: %w", err)
-	}
-	if err := os.Rename(tmp, filepath.Join(o.dir, "acked")); err != nil {
+	if err := durable.WriteFile(filepath.Join(o.dir, "acked"), []byte(strconv.FormatUint(seq, 10)+"\n"), 0o644); err != nil {
 		return fmt.Errorf("outbox: %w", err)
 	}
 	if len(o.pending) == 0 {

@@ -9,6 +9,8 @@ import (
 	"strconv"
 	"strings"
 	"sync"
+
+	"github.com/plenum-engine/plenum/pipeline/durable"
 )
 
 // Marks tell when everything appended up to a point has reached the
@@ -206,26 +208,9 @@ func (m *marks) settle(acked int64, onPushed func(name string, complete bool) er
 	return firstErr
 }
 
-// write replaces the file with text (tmp, fsync, rename).
+// write replaces the file with text durably (pipeline/durable).
 func (m *marks) write(text []byte) error {
-	b := bytes.NewBuffer(text)
-	tmp := m.path + ".tmp"
-	f, err := os.Create(tmp)
-	if err != nil {
-		return fmt.Errorf("tsdbpush: marks: %w", err)
-	}
-	if _, err := f.Write(b.Bytes()); err != nil {
-		f.Close()
-		return fmt.Errorf("tsdbpush: marks: %w", err)
-	}
-	if err := f.Sync(); err != nil {
-		f.Close()
-		return fmt.Errorf("tsdbpush: marks: %w", err)
-	}
-	if err := f.Close(); err != nil {
-		return fmt.Errorf("tsdbpush: marks: %w", err)
-	}
-	if err := os.Rename(tmp, m.path); err != nil {
+	if err := durable.WriteFile(m.path, text, 0o644); err != nil {
 		return fmt.Errorf("tsdbpush: marks: %w", err)
 	}
 	return nil

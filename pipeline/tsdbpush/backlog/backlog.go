@@ -41,6 +41,7 @@ import (
 	"sync"
 	"sync/atomic"
 
+	"github.com/plenum-engine/plenum/pipeline/durable"
 	"github.com/plenum-engine/plenum/pipeline/record"
 )
 
@@ -544,9 +545,11 @@ func (b *Backlog) Ack(end int64) error {
 
 // SetAside keeps a copy of a batch under rejected/, named after its start
 // offset, and returns the file's path. It does not acknowledge the batch.
+// The copy is durable when SetAside returns nil, so that an Ack past the
+// batch afterwards cannot outlive it in a power cut.
 func (b *Backlog) SetAside(bt Batch) (string, error) {
 	path := filepath.Join(b.dir, "rejected", fmt.Sprintf("%020d.lp", bt.Start))
-	if err := os.WriteFile(path, bt.Data, 0o644); err != nil {
+	if err := durable.WriteFile(path, bt.Data, 0o644); err != nil {
 		return path, fmt.Errorf("backlog: set aside: %w", err)
 	}
 	return path, nil
@@ -569,13 +572,8 @@ func (b *Backlog) Close() error {
 }
 
 func syncDir(dir string) error {
-	d, err := os.Open(dir)
-	if err != nil {
+	if err := durable.SyncDir(dir); err != nil {
 		return fmt.Errorf("backlog: %w", err)
-	}
-	defer d.Close()
-	if err := d.Sync(); err != nil {
-		return fmt.Errorf("backlog: fsync %s: %w", dir, err)
 	}
 	return nil
 }
@@ -607,26 +605,10 @@ func cutAt(path string, n int64) (int64, error) {
 	return keep, nil
 }
 
-// writeCursor replaces the cursor file atomically.
+// writeCursor replaces the cursor file durably (pipeline/durable).
 func writeCursor(dir string, acked int64) error {
-	tmp := filepath.Join(dir, "cursor.tmp")
-	f, err := os.Create(tmp)
-	if err != nil {
+	if err := durable.WriteFile(filepath.Join(dir, "cursor"), formatCursor(acked), 0o644); err != nil {
 		return fmt.Errorf("backlog: cursor: %w", err)
 	}
-	if _, err := f.Write(formatCursor(acked)); err != nil {
-		f.Close()
-		return fmt.Errorf("backlog: cursor: %w", err)
-	}
-	if err := f.Sync(); err != nil {
-		f.Close()
-		return fmt.Errorf("backlog: cursor: %w", err)
-	}
-	if err := f.Close(); err != nil {
-		return fmt.Errorf("backlog: cursor: %w", err)
-	}
-	if err := os.Rename(tmp, filepath.Join(dir, "cursor")); err != nil {
-		return fmt.Errorf("backlog: cursor: %w", err)
-	}
-	return syncDir(dir)
+	return nil
 }
