@@ -10,6 +10,7 @@ import (
 
 	"github.com/plenum-engine/plenum/derive/turbo"
 	"github.com/plenum-engine/plenum/pipeline"
+	"github.com/plenum-engine/plenum/pipeline/durable"
 )
 
 // turboGuard wraps derive/turbo: the warm-up guard and the cool-down timer.
@@ -72,8 +73,9 @@ func b2f(b bool) float64 {
 	return 0
 }
 
-// save writes the cool-down state so that a restart keeps it: to a
-// temporary file first, then renamed over the state file.
+// save writes the cool-down state so that a restart keeps it, replacing
+// the state file durably (pipeline/durable): a power cut leaves the old
+// state or the new, whole.
 func (d *turboGuard) save() error {
 	if d.stateFile == "" {
 		return nil
@@ -82,11 +84,10 @@ func (d *turboGuard) save() error {
 	if err != nil {
 		return err
 	}
-	tmp := d.stateFile + ".tmp"
-	if err := os.WriteFile(tmp, b, 0o644); err != nil {
+	if err := durable.WriteFile(d.stateFile, b, 0o644); err != nil {
 		return fmt.Errorf("turbo state: %w", err)
 	}
-	return os.Rename(tmp, d.stateFile)
+	return nil
 }
 
 // load creates the state file's directory and restores a saved cool-down

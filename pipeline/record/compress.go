@@ -17,6 +17,7 @@ import (
 	"time"
 
 	"github.com/plenum-engine/plenum/pipeline"
+	"github.com/plenum-engine/plenum/pipeline/durable"
 )
 
 // Compressed segments. A data file the recorder has closed (at a rotation,
@@ -32,7 +33,7 @@ import (
 // RecoverCompression resolves (the .lp is removed once the .lp.gz is read
 // back equal to it, else the .lp.gz is removed). Readers take the .lp.gz of
 // such a pair (DataFiles). A failed compression leaves the .lp in place,
-// readable as before.
+// readable as before. Steps 1 and 2 are pipeline/durable's Write.
 
 // DefaultGzipLevel is the level segments are compressed with: 60 s of the
 // demo's data (136 bytes a point written) takes 8.2 bytes a point at level
@@ -96,49 +97,32 @@ func CompressSegment(ctx context.Context, path string, level int) error {
 		level = DefaultGzipLevel
 	}
 	gzPath := path + ".gz"
-	tmp := gzPath + ".tmp"
-	if err := writeGzip(ctx, in, tmp, level); err != nil {
-		os.Remove(tmp)
-		return fmt.Errorf("record: compress %s: %w", path, err)
-	}
-	dir := filepath.Dir(path)
-	if err := os.Rename(tmp, gzPath); err != nil {
-		os.Remove(tmp)
-		return fmt.Errorf("record: compress %s: %w", path, err)
-	}
-	if err := syncDir(dir); err != nil {
-		return fmt.Errorf("record: compress %s: %w", path, err) // both are there: recovery resolves
+	if err := durable.Write(gzPath, 0o644, func(w io.Writer) error { return writeGzip(ctx, w, in, level) }); err != nil {
+		return fmt.Errorf("record: compress %s: %w", path, err) // after the rename, both are there: recovery resolves
 	}
 	if err := os.Remove(path); err != nil {
 		return fmt.Errorf("record: compress %s: %w", path, err)
 	}
-	if err := syncDir(dir); err != nil {
+	if err := durable.SyncDir(filepath.Dir(path)); err != nil {
 		return fmt.Errorf("record: compress %s: %w", path, err)
 	}
 	return nil
 }
 
-// writeGzip writes src compressed into a new file at path and fsyncs it.
-func writeGzip(ctx context.Context, src io.Reader, path string, level int) error {
-	f, err := os.OpenFile(path, os.O_CREATE|os.O_TRUNC|os.O_WRONLY, 0o644)
+// writeGzip compresses src into w at level; ctx ends it between reads.
+func writeGzip(ctx context.Context, w io.Writer, src io.Reader, level int) error {
+	zw, err := gzip.NewWriterLevel(w, level)
 	if err != nil {
-		return err
-	}
-	zw, err := gzip.NewWriterLevel(f, level)
-	if err != nil {
-		f.Close()
 		return err
 	}
 	buf := make([]byte, 256<<10)
 	for {
 		if err := ctx.Err(); err != nil {
-			f.Close()
 			return err
 		}
 		n, rerr := src.Read(buf)
 		if n > 0 {
 			if _, err := zw.Write(buf[:n]); err != nil {
-				f.Close()
 				return err
 			}
 		}
@@ -146,28 +130,10 @@ func writeGzip(ctx context.Context, src io.Reader, path string, level int) error
 			break
 		}
 		if rerr != nil {
-			f.Close()
 			return rerr
 		}
 	}
-	if err := zw.Close(); err != nil {
-		f.Close()
-		return err
-	}
-	if err := f.Sync(); err != nil {
-		f.Close()
-		return err
-	}
-	return f.Close()
-}
-
-func syncDir(dir string) error {
-	d, err := os.Open(dir)
-	if err != nil {
-		return err
-	}
-	defer d.Close()
-	return d.Sync()
+	return zw.Close()
 }
 
 // RunDirs returns the run directories under dir, in name order: its
@@ -239,7 +205,7 @@ func RecoverCompression(dir string) ([]CompressRecovered, error) {
 			out = append(out, CompressRecovered{Path: victim, Action: action})
 		}
 		if len(tmps) > 0 || len(gzs) > 0 {
-			if err := syncDir(rd); err != nil {
+			if err := durable.SyncDir(rd); err != nil {
 				errs = append(errs, fmt.Errorf("record: %s: %w", rd, err))
 			}
 		}
@@ -525,15 +491,7 @@ func MarkPushed(runDir string, complete bool) error {
 	if !complete {
 		text = "incomplete: the pusher dropped lines of this run unsent\n"
 	}
-	p := filepath.Join(runDir, PushedFile)
-	os.Remove(p)
-	if err := writeSynced(p, []byte(text)); err != nil {
-		return err
-	}
-	if err := syncDir(runDir); err != nil {
-		return fmt.Errorf("record: %w", err)
-	}
-	return nil
+	return writeSynced(filepath.Join(runDir, PushedFile), []byte(text))
 }
 
 // Pushed reports whether the run directory has a pushed marker and whether

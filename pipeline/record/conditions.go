@@ -21,7 +21,8 @@ type Correction struct {
 
 // SetConditions replaces the conditions in the run's run.json, for
 // conditions known only after the start (the ambient sensors' first fresh
-// readings) or the reason there are none. The file is replaced atomically.
+// readings) or the reason there are none. The file is replaced durably:
+// a power cut leaves the old run.json or the new, whole.
 func (r *Recorder) SetConditions(c Conditions) error {
 	path := filepath.Join(r.dir, "run.json")
 	b, err := os.ReadFile(path)
@@ -37,17 +38,5 @@ func (r *Recorder) SetConditions(c Conditions) error {
 		m.Conditions = nil
 	}
 	meta, _ := json.MarshalIndent(m, "", "  ")
-	tmp := path + ".new"
-	os.Remove(tmp)
-	if err := writeSynced(tmp, meta); err != nil {
-		return err
-	}
-	if err := os.Rename(tmp, path); err != nil {
-		return fmt.Errorf("record: %w", err)
-	}
-	if d, err := os.Open(r.dir); err == nil {
-		d.Sync()
-		d.Close()
-	}
-	return nil
+	return writeSynced(path, meta)
 }

@@ -43,6 +43,7 @@ import (
 	"github.com/influxdata/line-protocol/v2/lineprotocol"
 
 	"github.com/plenum-engine/plenum/pipeline"
+	"github.com/plenum-engine/plenum/pipeline/durable"
 )
 
 // Config configures a Recorder.
@@ -265,20 +266,14 @@ func newRecorder(cfg Config, reg *pipeline.Registry) *Recorder {
 	return r
 }
 
+// writeSynced writes or replaces a file of a run directory durably
+// (pipeline/durable): after a power cut it is there whole, or as it was
+// before.
 func writeSynced(path string, b []byte) error {
-	f, err := os.OpenFile(path, os.O_CREATE|os.O_EXCL|os.O_WRONLY, 0o644)
-	if err != nil {
+	if err := durable.WriteFile(path, b, 0o644); err != nil {
 		return fmt.Errorf("record: %w", err)
 	}
-	if _, err := f.Write(b); err != nil {
-		f.Close()
-		return fmt.Errorf("record: %w", err)
-	}
-	if err := f.Sync(); err != nil {
-		f.Close()
-		return fmt.Errorf("record: %w", err)
-	}
-	return f.Close()
+	return nil
 }
 
 // rotate starts the next data file. The current one (synced by the caller)
