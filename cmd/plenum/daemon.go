@@ -191,6 +191,13 @@ func buildWith(ctx context.Context, cfg *config.Config, log *slog.Logger, open b
 		if kc, ok := cfg.Retention(log); ok {
 			kc.Current = d.rr.Current
 			d.keep = retention.New(kc)
+			if open {
+				// One pass before the compressor's first look, so that it
+				// does not compress runs that are about to go.
+				if _, err := d.keep.Pass(); err != nil {
+					log.Warn("retention at start", "err", err)
+				}
+			}
 		}
 		d.mux.Handle("/api/runs/", d.rr.Handler())
 		d.mux.Handle("/api/warnings/", d.rr.Handler())

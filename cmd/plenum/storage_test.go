@@ -266,7 +266,13 @@ func TestDaemonCompressesAndRetains(t *testing.T) {
 			break
 		}
 		if time.Now().After(deadline) {
-			t.Fatalf("metrics lack %s", missing)
+			var near []string
+			for _, l := range strings.Split(string(metrics), "\n") {
+				if strings.HasPrefix(l, "plenum_compressor") || strings.HasPrefix(l, "plenum_retention") {
+					near = append(near, l)
+				}
+			}
+			t.Fatalf("metrics lack %s; they have:\n%s", missing, strings.Join(near, "\n"))
 		}
 		time.Sleep(20 * time.Millisecond)
 	}
