@@ -325,8 +325,8 @@ func runDaemonWith(ctx context.Context, cfg *config.Config, stdout io.Writer, lo
 		fmt.Fprintf(stdout, "state:    %s\n", cfg.StateDir)
 	}
 	sm, log := svc.start(cfg, log)
-	defer sm.close()
-	d, err := buildWith(ctx, cfg, log, true, sm.extras())
+	defer sm.Notifier.Close()
+	d, err := buildWith(ctx, cfg, log, true, svc.extras(sm))
 	if err != nil {
 		return err
 	}
@@ -398,11 +398,17 @@ func runDaemonWith(ctx context.Context, cfg *config.Config, stdout io.Writer, lo
 	if d.rr != nil {
 		st = append(st, stages.Stage{{Name: "recorder", Run: d.rr.Run}})
 	}
-	st = append(st, stages.Stage{{Name: "pipeline", Run: d.p.Run}, {Name: "watchdog", Run: sm.watchdog(d.p)}})
+	// The service manager's part: READY=1 once every driver runs and the
+	// ingest loop has answered a probe (the listeners are bound before the
+	// stages start), reloads, and STOPPING=1 when the shutdown begins
+	// (this stage stops first).
+	sm.Probe, sm.Watchdog.Probe = d.p.Probe, d.p.Probe
+	sm.Status = fmt.Sprintf("running: vehicle %s, %d source(s), console %s/console/", cfg.Vehicle, len(d.srcs), d.web.URL())
+	st = append(st, stages.Stage{{Name: "pipeline", Run: d.p.Run}, {Name: "watchdog", Run: sm.Watchdog.Run}})
 	var drivers stages.Stage
 	for _, s := range d.srcs {
-		drivers = append(drivers, stages.Part{Name: s.name, Run: sm.started(func(ctx context.Context) error { return s.run(ctx, d.p) })})
+		drivers = append(drivers, stages.Part{Name: s.name, Run: sm.Started(func(ctx context.Context) error { return s.run(ctx, d.p) })})
 	}
-	drivers = append(drivers, stages.Part{Name: "service manager", Run: sm.run(d)})
+	drivers = append(drivers, stages.Part{Name: "service manager", Run: sm.Run})
 	return stages.Run(ctx, log, shutdownGrace, append(st, drivers)...)
 }

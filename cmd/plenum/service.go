@@ -1,12 +1,8 @@
 package main
 
 import (
-	"context"
-	"fmt"
 	"log/slog"
 	"os"
-	"strings"
-	"sync"
 
 	"github.com/plenum-engine/plenum/cmd/plenum/config"
 	"github.com/plenum-engine/plenum/pipeline"
@@ -26,150 +22,62 @@ type service struct {
 	derivations []pipeline.Derivation // tests only: e.g. one that stalls the ingest loop
 }
 
-// serviceRun is the service side of one daemon run.
-type serviceRun struct {
-	svc     service
-	log     *slog.Logger
-	n       *sdnotify.Notifier
-	wd      *sdnotify.Watchdog
-	level   *slog.LevelVar   // log_level, changed by a reload
-	reloads *pipeline.Health // applied and refused reloads; up while the file is what runs
-	cfg     *config.Config   // the configuration running, replaced by an applied reload
-	up      sync.WaitGroup   // one per driver, done once it runs
-}
-
-// start filters log by cfg's log_level and prepares the notifications.
-func (svc service) start(cfg *config.Config, log *slog.Logger) (*serviceRun, *slog.Logger) {
+// start filters log by cfg's log_level and prepares the service manager's
+// part (sdnotify.Service): notifications, the watchdog of the ingest loop,
+// and reloads of svc.configPath starting from cfg.
+func (svc service) start(cfg *config.Config, log *slog.Logger) (*sdnotify.Service, *slog.Logger) {
 	lvl, err := config.ParseLogLevel(cfg.LogLevel)
 	if err != nil {
 		log.Warn("log_level", "err", err)
 	}
-	sm := &serviceRun{svc: svc, n: sdnotify.New(svc.notify), level: new(slog.LevelVar), reloads: pipeline.NewHealth("reload", "config"), cfg: cfg}
-	sm.level.Set(lvl)
-	sm.reloads.SetUp(true)
-	sm.log = slog.New(loglevel.New(log.Handler(), sm.level))
-	iv, err := svc.notify.WatchdogInterval()
-	if err != nil {
-		sm.log.Error("the service manager's watchdog settings cannot be read; no watchdog pings", "err", err)
+	level := new(slog.LevelVar)
+	level.Set(lvl)
+	log = slog.New(loglevel.New(log.Handler(), level))
+	sm := sdnotify.NewService(svc.notify, log)
+	sm.Watchdog.What = "ingest loop"
+	sm.Reloads, sm.ConfigPath, sm.Level = svc.reload, svc.configPath, level
+	sm.Reload = func() (sdnotify.Reloaded, error) {
+		nc, live, err := svc.reloadOver(cfg)
+		if err != nil {
+			return sdnotify.Reloaded{}, err
+		}
+		cfg = nc
+		lvl, _ := config.ParseLogLevel(nc.LogLevel) // checked by Load
+		return sdnotify.Reloaded{Changed: live, Level: lvl}, nil
 	}
-	sm.wd = &sdnotify.Watchdog{Notifier: sm.n, Interval: iv, What: "ingest loop", Log: sm.log}
-	return sm, sm.log
+	return sm, log
 }
 
-// close closes the notification socket.
-func (sm *serviceRun) close() { sm.n.Close() }
-
-// extras are the service's health reports (the watchdog's only when
-// the service manager asked for one) and the tests' derivations.
-func (sm *serviceRun) extras() extras {
-	ex := extras{reporters: []promexport.Reporter{sm.reloads}, derivations: sm.svc.derivations}
-	if sm.wd.Interval > 0 {
-		ex.reporters = append(ex.reporters, sm.wd)
+// extras are the service's health reports (the watchdog's only when the
+// service manager asked for one) and the tests' derivations.
+func (svc service) extras(sm *sdnotify.Service) extras {
+	ex := extras{reporters: []promexport.Reporter{sm}, derivations: svc.derivations}
+	if sm.Watchdog.Interval > 0 {
+		ex.reporters = append(ex.reporters, sm.Watchdog)
 	}
 	return ex
 }
 
-// watchdog returns the watchdog's Run, probing p's ingest loop.
-func (sm *serviceRun) watchdog(p *pipeline.Pipeline) func(context.Context) error {
-	sm.wd.Probe = p.Probe
-	return sm.wd.Run
-}
-
-// started wraps a driver's Run so that readiness waits until it runs.
-func (sm *serviceRun) started(run func(context.Context) error) func(context.Context) error {
-	sm.up.Add(1)
-	return func(ctx context.Context) error {
-		sm.up.Done()
-		return run(ctx)
+// reloadOver reads svc.configPath again and returns it with the keys that
+// changed from cur, if only keys that apply live changed; otherwise a
+// *sdnotify.Refusal says why, naming the keys.
+func (svc service) reloadOver(cur *config.Config) (*config.Config, []string, error) {
+	if svc.configPath == "" {
+		return nil, nil, &sdnotify.Refusal{Why: "this daemon has no configuration file to read again"}
 	}
-}
-
-// run is the service manager's part, in the drivers' stage: READY=1 once
-// every driver runs and the ingest loop has answered a probe (the
-// listeners are bound before the stages start), reloads on SIGHUP, and
-// STOPPING=1 when the shutdown begins (this stage stops first).
-func (sm *serviceRun) run(d *daemon) func(context.Context) error {
-	status := fmt.Sprintf("running: vehicle %s, %d source(s), console %s/console/", d.cfg.Vehicle, len(d.srcs), d.web.URL())
-	return func(ctx context.Context) error {
-		defer func() {
-			if err := sm.n.Stopping("stopping: flushing and closing"); err != nil {
-				sm.log.Warn("the service manager was not told of the shutdown", "err", err)
-			}
-		}()
-		up := make(chan struct{})
-		go func() { sm.up.Wait(); close(up) }()
-		select {
-		case <-up:
-		case <-ctx.Done():
-			return nil
-		}
-		if err := d.p.Probe(ctx); err != nil {
-			return nil // stopped before the ingest loop ran
-		}
-		if err := sm.n.Ready(status); err != nil {
-			sm.log.Warn("the service manager was not told the daemon is ready", "err", err)
-		}
-		for {
-			select {
-			case <-ctx.Done():
-				return nil
-			case <-sm.svc.reload:
-				sm.reload()
-				if err := sm.n.Ready(status); err != nil {
-					sm.log.Warn("the service manager was not told the reload is over", "err", err)
-				}
-			}
-		}
-	}
-}
-
-// reload reads the configuration file again and applies it if only keys
-// that apply live changed; otherwise it refuses, naming the keys, and the
-// daemon runs on with the configuration it has.
-func (sm *serviceRun) reload() {
-	path := sm.svc.configPath
-	if err := sm.n.Reloading("reloading " + path); err != nil {
-		sm.log.Warn("the service manager was not told of the reload", "err", err)
-	}
-	refuse := func(msg string, args ...any) {
-		sm.reloads.Counter("refused").Add(1)
-		sm.reloads.SetUp(false)
-		sm.log.Error("reload refused: "+msg+"; running on with the configuration loaded before", append([]any{"config", path}, args...)...)
-	}
-	if path == "" {
-		refuse("this daemon has no configuration file to read again")
-		return
-	}
-	nc, err := config.Load(path)
+	nc, err := config.Load(svc.configPath)
 	if err == nil {
-		err = nc.ExpandCredentials(sm.svc.credentials)
+		err = nc.ExpandCredentials(svc.credentials)
 	}
 	if err == nil {
 		_, err = checkConfig(nc)
 	}
 	if err != nil {
-		refuse("the new file does not pass the check", "err", err)
-		return
+		return nil, nil, &sdnotify.Refusal{Why: "the new file does not pass the check", Err: err}
 	}
-	plan := config.PlanReload(sm.cfg, nc)
+	plan := config.PlanReload(cur, nc)
 	if why := plan.Refused(); why != "" {
-		refuse(why)
-		return
+		return nil, nil, &sdnotify.Refusal{Why: why}
 	}
-	lvl, _ := config.ParseLogLevel(nc.LogLevel) // checked by Load
-	sm.cfg = nc
-	sm.reloads.Counter("applied").Add(1)
-	sm.reloads.SetUp(true)
-	if len(plan.Live) == 0 {
-		sm.log.Info("reload: the configuration is unchanged", "config", path)
-		return
-	}
-	// The line saying so is written under the less strict of the two
-	// levels, so that a person sees the change either way.
-	raise := lvl > sm.level.Level()
-	if !raise {
-		sm.level.Set(lvl)
-	}
-	sm.log.Info("reload applied", "config", path, "changed", strings.Join(plan.Live, ","), "log_level", lvl.String())
-	sm.level.Set(lvl)
+	return nc, plan.Live, nil
 }
