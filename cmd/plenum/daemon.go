@@ -148,23 +148,11 @@ func buildWith(ctx context.Context, cfg *config.Config, log *slog.Logger, open b
 			return nil, err
 		}
 		if open {
-			fixedGz, err := record.RecoverCompression(cfg.Record.Dir)
-			if err != nil {
-				log.Warn("recovering compressions cut short", "err", err)
+			var cutShort func(run string) // pushed once what the backlog holds of it is acknowledged
+			if d.pusher != nil {
+				cutShort = d.pusher.Mark
 			}
-			for _, f := range fixedGz {
-				log.Warn("a compression was cut short; finished", "file", f.Path, "action", f.Action)
-			}
-			if fixed, err := record.Recover(cfg.Record.Dir); err != nil {
-				log.Warn("recovering earlier runs", "err", err)
-			} else {
-				for _, f := range fixed {
-					log.Warn("a run was cut short; its torn tail was cut and it is marked ended_abnormally", "run", f.Run, "cut_bytes", f.CutBytes)
-					if d.pusher != nil {
-						d.pusher.Mark(f.Run) // pushed once what the backlog holds of it is acknowledged
-					}
-				}
-			}
+			record.RecoverAtStart(cfg.Record.Dir, log, cutShort)
 		}
 		if cc, ok := cfg.Compressor(log); ok {
 			d.comp = record.NewCompressor(cc)

@@ -31,6 +31,7 @@ import (
 	"errors"
 	"fmt"
 	"io"
+	"log/slog"
 	"math"
 	"os"
 	"path/filepath"
@@ -665,6 +666,37 @@ func (r *Recorder) Close() error {
 			ErrDataLost, r.cfg.Run, sum.SamplesLost, sum.EventsLost, sum.Samples))
 	}
 	return errors.Join(errs...)
+}
+
+// RecoverAtStart is the recovery a daemon runs on dir before it records:
+// it finishes the compressions cut short (RecoverCompression), then cuts
+// the torn tails of runs cut short and marks them ended_abnormally
+// (Recover). Each thing done is logged as a warning, and so are the
+// errors, which do not stop the start (a nil log discards them); cutShort
+// (when set) is called with every run cut short, e.g. to push it once its
+// lines are acknowledged.
+func RecoverAtStart(dir string, log *slog.Logger, cutShort func(run string)) {
+	if log == nil {
+		log = slog.New(slog.DiscardHandler)
+	}
+	fixedGz, err := RecoverCompression(dir)
+	if err != nil {
+		log.Warn("recovering compressions cut short", "err", err)
+	}
+	for _, f := range fixedGz {
+		log.Warn("a compression was cut short; finished", "file", f.Path, "action", f.Action)
+	}
+	fixed, err := Recover(dir)
+	if err != nil {
+		log.Warn("recovering earlier runs", "err", err)
+		return
+	}
+	for _, f := range fixed {
+		log.Warn("a run was cut short; its torn tail was cut and it is marked ended_abnormally", "run", f.Run, "cut_bytes", f.CutBytes)
+		if cutShort != nil {
+			cutShort(f.Run)
+		}
+	}
 }
 
 // Recovered says what Recover did to one run.
