@@ -3,6 +3,7 @@ package main
 import (
 	"bufio"
 	"context"
+	"fmt"
 	"log/slog"
 	"net"
 	"net/http"
@@ -179,20 +180,14 @@ func TestDaemonNotifiesServiceManager(t *testing.T) {
 	// Block the ingest loop inside a frame.
 	stall.stall.Store(true)
 	<-stall.entered
-	deadline := time.Now().Add(20 * time.Second)
-	for missed() < 1 {
-		if time.Now().After(deadline) {
-			t.Fatal("the watchdog did not miss a probe while the ingest loop was blocked")
-		}
-		time.Sleep(10 * time.Millisecond)
-	}
+	waitUntil(t, 20*time.Second, "the watchdog to miss a probe while the ingest loop is blocked", func() (bool, string) {
+		return missed() >= 1, fmt.Sprintf("%v probes unanswered", missed())
+	})
 	before := pings()
-	for missed() < 4 { // four more half-intervals, two whole watchdog timeouts
-		if time.Now().After(deadline) {
-			t.Fatal("the watchdog stopped probing")
-		}
-		time.Sleep(10 * time.Millisecond)
-	}
+	// Four more half-intervals: two whole watchdog timeouts.
+	waitUntil(t, 20*time.Second, "the watchdog to go on probing", func() (bool, string) {
+		return missed() >= 4, fmt.Sprintf("%v probes unanswered", missed())
+	})
 	if after := pings(); after != before {
 		t.Fatalf("%v pings were counted while the ingest loop was blocked", after-before)
 	}
