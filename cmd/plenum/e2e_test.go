@@ -8,11 +8,9 @@ import (
 	"io"
 	"log/slog"
 	"math"
-	"net"
 	"net/http"
 	"os"
 	"os/exec"
-	"path/filepath"
 	"regexp"
 	"strings"
 	"sync"
@@ -233,29 +231,19 @@ func spans(v []float64, d float64) bool {
 // TestMosquittoInterop publishes through Debian's mosquitto as the external
 // broker and reads back with mosquitto_sub.
 func TestMosquittoInterop(t *testing.T) {
-	interop.Need(t, "mosquitto mosquitto-clients", "mosquitto", "mosquitto_sub")
-	port := interop.FreePort(t)
-	dir := t.TempDir()
-	conf := filepath.Join(dir, "mosquitto.conf")
-	os.WriteFile(conf, []byte(fmt.Sprintf("listener %d 127.0.0.1\nallow_anonymous true\npersistence false\n", port)), 0o644)
-	mq := exec.Command("mosquitto", "-c", conf)
-	var mqOut syncBuffer
-	mq.Stdout, mq.Stderr = &mqOut, &mqOut
-	if err := mq.Start(); err != nil {
-		t.Fatal(err)
-	}
-	defer func() { mq.Process.Kill(); mq.Wait() }()
-	waitPort(t, port)
+	paths := interop.Need(t, "mosquitto mosquitto-clients", "mosquitto", "mosquitto_sub")
+	mq := interop.StartMosquitto(t, paths[0], "allow_anonymous true\n")
+	port := mq.Port
 
 	ctx, cancel := context.WithCancel(context.Background())
 	defer cancel()
 	_, _, done := startDemo(t, ctx, 4, func(c *config.Config) {
 		c.MQTT.Broker = fmt.Sprintf("tcp://127.0.0.1:%d", port)
 	})
-	sub := exec.Command("mosquitto_sub", "-h", "127.0.0.1", "-p", fmt.Sprint(port), "-t", "plenum/brackenfell-rs/#", "-v", "-C", "40", "-W", "20")
+	sub := exec.Command(paths[1], "-h", "127.0.0.1", "-p", fmt.Sprint(port), "-t", "plenum/brackenfell-rs/#", "-v", "-C", "40", "-W", "20")
 	out, err := sub.Output()
 	if err != nil {
-		t.Fatalf("mosquitto_sub: %v\n%s\nbroker log:\n%s", err, out, mqOut.String())
+		t.Fatalf("mosquitto_sub: %v\n%s\nbroker log:\n%s", err, out, mq.Output())
 	}
 	sc := bufio.NewScanner(bytes.NewReader(out))
 	n := 0
@@ -292,17 +280,4 @@ func TestPromtoolChecksScrape(t *testing.T) {
 	}
 	cancel()
 	<-done
-}
-
-func waitPort(t *testing.T, port int) {
-	t.Helper()
-	for i := 0; i < 100; i++ {
-		c, err := net.Dial("tcp", fmt.Sprintf("127.0.0.1:%d", port))
-		if err == nil {
-			c.Close()
-			return
-		}
-		time.Sleep(50 * time.Millisecond)
-	}
-	t.Fatalf("nothing listening on port %d", port)
 }

@@ -5,11 +5,7 @@ import (
 	"encoding/json"
 	"fmt"
 	"log/slog"
-	"net"
 	"net/http"
-	"os"
-	"os/exec"
-	"path/filepath"
 	"strings"
 	"sync"
 	"testing"
@@ -217,25 +213,7 @@ func startCar(t *testing.T, ctx context.Context, name, broker string, wg *sync.W
 func TestBrowserWallFollowsTwoVehicles(t *testing.T) {
 	paths := interop.Need(t, "mosquitto", "mosquitto")
 	chromiumPath(t)
-	port := interop.FreePort(t)
-	dir := t.TempDir()
-	conf := filepath.Join(dir, "mosquitto.conf")
-	if err := os.WriteFile(conf, []byte(fmt.Sprintf("listener %d 127.0.0.1\nallow_anonymous true\npersistence false\n", port)), 0o644); err != nil {
-		t.Fatal(err)
-	}
-	mq := exec.Command(paths[0], "-c", conf)
-	if err := mq.Start(); err != nil {
-		t.Fatal(err)
-	}
-	t.Cleanup(func() { mq.Process.Kill(); mq.Wait() })
-	addr := fmt.Sprintf("127.0.0.1:%d", port)
-	waitFor(t, "mosquitto listening", func() bool {
-		c, err := net.Dial("tcp", addr)
-		if err == nil {
-			c.Close()
-		}
-		return err == nil
-	})
+	addr := interop.StartMosquitto(t, paths[0], "allow_anonymous true\n").Addr
 
 	ctx, cancel := context.WithCancel(context.Background())
 	var wg sync.WaitGroup

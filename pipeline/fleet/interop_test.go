@@ -3,12 +3,7 @@ package fleet
 import (
 	"context"
 	"errors"
-	"fmt"
 	"log/slog"
-	"net"
-	"os"
-	"os/exec"
-	"path/filepath"
 	"sync"
 	"testing"
 	"time"
@@ -70,34 +65,7 @@ func startCar(t *testing.T, ctx context.Context, name, broker string, wg *sync.W
 // connection drops, its will marks it offline.
 func TestFollowTwoVehiclesThroughMosquitto(t *testing.T) {
 	paths := interop.Need(t, "mosquitto", "mosquitto")
-	port := interop.FreePort(t)
-	dir := t.TempDir()
-	conf := filepath.Join(dir, "mosquitto.conf")
-	if err := os.WriteFile(conf, []byte(fmt.Sprintf("listener %d 127.0.0.1\nallow_anonymous true\npersistence false\n", port)), 0o644); err != nil {
-		t.Fatal(err)
-	}
-	var mqOut syncBuf
-	mq := exec.Command(paths[0], "-c", conf)
-	mq.Stdout, mq.Stderr = &mqOut, &mqOut
-	if err := mq.Start(); err != nil {
-		t.Fatal(err)
-	}
-	t.Cleanup(func() { mq.Process.Kill(); mq.Wait() })
-	addr := fmt.Sprintf("127.0.0.1:%d", port)
-	waitFor(t, "mosquitto listening", func() bool {
-		c, err := net.Dial("tcp", addr)
-		if err == nil {
-			c.Close()
-		}
-		return err == nil
-	})
-	defer func() {
-		if t.Failed() {
-			mqOut.mu.Lock()
-			t.Logf("mosquitto:\n%s", mqOut.b.String())
-			mqOut.mu.Unlock()
-		}
-	}()
+	addr := interop.StartMosquitto(t, paths[0], "allow_anonymous true\n").Addr
 
 	ctx, cancel := context.WithCancel(context.Background())
 	var wg sync.WaitGroup

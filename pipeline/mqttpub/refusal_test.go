@@ -69,15 +69,13 @@ func waitUntil(t *testing.T, what string, within time.Duration, cond func() bool
 // mosquitto is a broker started for one test.
 type mosquitto struct {
 	url string
-	out logBuffer
 }
 
 // startMosquitto runs mosquitto with the given listener lines (the listener
-// itself is added) and the users user:password, each with an ACL line.
+// itself is added) and the user plenum:secret with the ACL line.
 func startMosquitto(t *testing.T, dir string, tlsLines string, acl string) *mosquitto {
 	t.Helper()
 	paths := interop.Need(t, "mosquitto", "mosquitto", "mosquitto_passwd")
-	port := interop.FreePort(t)
 	pw := filepath.Join(dir, "passwd")
 	if out, err := exec.Command(paths[1], "-c", "-b", pw, "plenum", "secret").CombinedOutput(); err != nil {
 		t.Fatalf("mosquitto_passwd: %v\n%s", err, out)
@@ -87,35 +85,12 @@ func startMosquitto(t *testing.T, dir string, tlsLines string, acl string) *mosq
 	if err := os.WriteFile(aclFile, []byte("user plenum\n"+acl+"\n"), 0o600); err != nil {
 		t.Fatal(err)
 	}
-	conf := fmt.Sprintf("listener %d 127.0.0.1\n%sallow_anonymous false\npassword_file %s\nacl_file %s\npersistence false\n",
-		port, tlsLines, pw, aclFile)
-	if os.Geteuid() == 0 {
-		conf += "user root\n" // else mosquitto drops to a user that cannot read the test's files
-	}
-	cf := filepath.Join(dir, "mosquitto.conf")
-	if err := os.WriteFile(cf, []byte(conf), 0o600); err != nil {
-		t.Fatal(err)
-	}
-	b := &mosquitto{}
-	mq := exec.Command(paths[0], "-c", cf)
-	mq.Stdout, mq.Stderr = &b.out, &b.out
-	if err := mq.Start(); err != nil {
-		t.Fatal(err)
-	}
-	t.Cleanup(func() { mq.Process.Kill(); mq.Wait() })
-	waitUntil(t, "mosquitto listening", 5*time.Second, func() bool {
-		c, err := net.Dial("tcp", fmt.Sprintf("127.0.0.1:%d", port))
-		if err == nil {
-			c.Close()
-		}
-		return err == nil
-	})
+	m := interop.StartMosquitto(t, paths[0], fmt.Sprintf("%sallow_anonymous false\npassword_file %s\nacl_file %s\n", tlsLines, pw, aclFile))
 	scheme := "tcp"
 	if tlsLines != "" {
 		scheme = "ssl"
 	}
-	b.url = fmt.Sprintf("%s://127.0.0.1:%d", scheme, port)
-	return b
+	return &mosquitto{url: fmt.Sprintf("%s://%s", scheme, m.Addr)}
 }
 
 // makeCA returns a self-made CA's certificate and key.
